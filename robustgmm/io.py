@@ -1,0 +1,56 @@
+"""Atomic output: every file is written to a temporary sibling and renamed.
+
+A failed write (full disk, read-only folder, interrupt) therefore never leaves a
+half-written output behind; readers see either the old file or the new one.
+"""
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+
+
+def atomic_write_bytes(path, data: bytes) -> Path:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            handle.write(data)
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path
+
+
+def atomic_write_text(path, text: str) -> Path:
+    return atomic_write_bytes(path, text.encode("utf-8"))
+
+
+def _json_default(value):
+    # numpy scalars and arrays reach the writers through results objects
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    if isinstance(value, Path):
+        return str(value)
+    raise TypeError(f"cannot write {type(value).__name__} as JSON")
+
+
+def to_json_text(obj) -> str:
+    return json.dumps(obj, indent=2, sort_keys=False, default=_json_default, allow_nan=True) + "\n"
+
+
+def atomic_write_json(path, obj) -> Path:
+    return atomic_write_text(path, to_json_text(obj))
+
+
+def atomic_write_csv(path, frame) -> Path:
+    # repr-exact floats so that a reread equals what was computed
+    return atomic_write_text(path, frame.to_csv(index=False, float_format="%.17g", lineterminator="\n"))

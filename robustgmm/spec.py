@@ -1,0 +1,185 @@
+"""The model specification: one frozen, flat object per model (and per variant).
+
+A variant of an audit is ``dataclasses.replace(spec, **settings)``, which is why the
+fields are flat rather than nested by model-file section. Reading and validating the
+model file lives in :mod:`robustgmm.modelfile`; this module holds the data types and
+the label conventions that every other layer shares.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+ROLES = ("endogenous", "predetermined", "exogenous")
+EQUATIONS = ("difference", "system")
+TRANSFORMS = ("fd", "fod")
+STEPS = (1, 2, "iterated")
+ERRORS = ("robust", "conventional")
+FORMS = ("per-period", "collapsed")
+
+
+@dataclass(frozen=True)
+class Regressor:
+    """A regressor with the lags that enter the model and its role.
+
+    Roles follow Arellano & Bond (1991) and Arellano & Bover (1995): an *endogenous*
+    regressor is correlated with the current shock (levels lagged ``first_lag`` and
+    more are valid instruments), a *predetermined* one only with past shocks
+    (lags ``first_lag - 1`` and more), an *exogenous* one with no shock (it
+    instruments itself).
+    """
+
+    name: str
+    lags: tuple[int, ...] = (0,)
+    role: str = "exogenous"
+
+
+@dataclass(frozen=True)
+class SampleFilter:
+    """A structured sample restriction: nothing in it is evaluated.
+
+    Keeps periods in ``[period_from, period_to]`` and drops every unit that has any
+    row whose ``exclude_column`` value is in ``exclude_values``.
+    """
+
+    name: str = "full sample"
+    period_from: int | None = None
+    period_to: int | None = None
+    exclude_column: str | None = None
+    exclude_values: tuple[Any, ...] = ()
+
+    @property
+    def is_full(self) -> bool:
+        return (self.period_from is None and self.period_to is None
+                and self.exclude_column is None)
+
+
+@dataclass(frozen=True)
+class Vary:
+    """Values to try for each varied setting (``[audit.vary]``); empty = not varied.
+
+    ``roles`` maps a regressor name to the roles to try; ``samples`` lists extra
+    sample filters (the base sample is always included).
+    """
+
+    equations: tuple[str, ...] = ()
+    transform: tuple[str, ...] = ()
+    steps: tuple[Any, ...] = ()
+    form: tuple[str, ...] = ()
+    first_lag: tuple[int, ...] = ()
+    last_lag: tuple[int | None, ...] = ()
+    time_effects: tuple[bool, ...] = ()
+    errors: tuple[str, ...] = ()
+    roles: tuple[tuple[str, tuple[str, ...]], ...] = ()
+    samples: tuple[SampleFilter, ...] = ()
+
+    def is_empty(self) -> bool:
+        return not any(getattr(self, f) for f in self.__dataclass_fields__)
+
+
+@dataclass(frozen=True)
+class Thresholds:
+    """Verdict thresholds (``[audit.thresholds]``); each default is documented in
+    :mod:`robustgmm.verdicts` beside the rule that uses it, with its source."""
+
+    hansen_reject: float = 0.05
+    hansen_too_high: float = 0.25
+    ar2_reject: float = 0.05
+    difference_hansen_reject: float = 0.05
+    instruments_per_unit: float = 1.0
+    spread_in_se: float = 2.0
+    significant_share: float = 0.9
+
+
+@dataclass(frozen=True)
+class Spec:
+    """One dynamic panel model; see DEVELOPERS.md for the model-file keys."""
+
+    unit: str
+    period: str
+    outcome: str
+    data_file: Path | None = None
+    outcome_lags: tuple[int, ...] = (1,)
+    regressors: tuple[Regressor, ...] = ()
+    time_effects: bool = True
+    equations: str = "system"
+    transform: str = "fd"
+    steps: int | str = 2
+    errors: str = "robust"
+    first_lag: int = 2
+    last_lag: int | None = None
+    form: str = "per-period"
+    extra_instruments: tuple[str, ...] = ()
+    sample: SampleFilter = field(default_factory=SampleFilter)
+    focus: tuple[str, ...] = ()
+    alpha: float = 0.05
+    vary: Vary = field(default_factory=Vary)
+    thresholds: Thresholds = field(default_factory=Thresholds)
+    source: str = "<dict>"
+
+    # -- derived names -------------------------------------------------------
+    def used_columns(self) -> tuple[str, ...]:
+        """Data columns the model needs (outcome, regressors, extra instruments)."""
+        seen: dict[str, None] = {self.outcome: None}
+        for reg in self.regressors:
+            seen[reg.name] = None
+        for name in self.extra_instruments:
+            seen[name] = None
+        return tuple(seen)
+
+    def regressor_terms(self) -> tuple[tuple[str, int, str], ...]:
+        """(variable, lag, label) for every non-deterministic regressor, in order."""
+        out = [(self.outcome, lag, term_label(self.outcome, lag)) for lag in self.outcome_lags]
+        for reg in self.regressors:
+            out.extend((reg.name, lag, term_label(reg.name, lag)) for lag in reg.lags)
+        return tuple(out)
+
+    def ar_terms(self) -> tuple[str, ...]:
+        """Labels of the autoregressive coefficients (lags of the outcome)."""
+        return tuple(term_label(self.outcome, lag) for lag in self.outcome_lags)
+
+    def focus_terms(self) -> tuple[str, ...]:
+        return self.focus or tuple(label for _, _, label in self.regressor_terms())
+
+    def max_lag(self) -> int:
+        lags = list(self.outcome_lags)
+        for reg in self.regressors:
+            lags.extend(reg.lags)
+        return max(lags) if lags else 0
+
+
+def term_label(name: str, lag: int) -> str:
+    """``NAME[t]`` for lag 0, ``NAME[t-l]`` for lag l (the contract's labels)."""
+    return f"{name}[t]" if lag == 0 else f"{name}[t-{lag}]"
+
+
+def period_label(period: int) -> str:
+    return f"period[{int(period)}]"
+
+
+CONST_LABEL = "const"
+
+
+def term_labels(spec: Spec) -> tuple[str, ...]:
+    return tuple(label for _, _, label in spec.regressor_terms())
+
+
+def is_deterministic_label(label: str) -> bool:
+    return label == CONST_LABEL or label.startswith("period[")
+
+
+def settings_of(spec: Spec) -> Mapping[str, Any]:
+    """The estimation settings as plain values (for results and manifests)."""
+    return {
+        "equations": spec.equations,
+        "transform": spec.transform,
+        "steps": spec.steps,
+        "errors": spec.errors,
+        "first_lag": spec.first_lag,
+        "last_lag": "all" if spec.last_lag is None else spec.last_lag,
+        "form": spec.form,
+        "time_effects": spec.time_effects,
+        "roles": {reg.name: reg.role for reg in spec.regressors},
+        "sample": spec.sample.name,
+    }
