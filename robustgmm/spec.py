@@ -142,6 +142,11 @@ class Spec:
     def focus_terms(self) -> tuple[str, ...]:
         return self.focus or tuple(label for _, _, label in self.regressor_terms())
 
+    def to_dict(self) -> dict:
+        """The model-file dict of this spec (see :func:`robustgmm.modelfile.spec_to_dict`)."""
+        from .modelfile import spec_to_dict  # modelfile imports this module
+        return spec_to_dict(self)
+
     def max_lag(self) -> int:
         lags = list(self.outcome_lags)
         for reg in self.regressors:
