@@ -1,0 +1,466 @@
+"""The estimation design: which rows, regressors and instruments a model uses, and
+the per-chunk arrays (transformed equation, level equation, instrument blocks).
+
+Rows live on the calendar. For unit ``i`` and calendar index ``t``:
+
+* ``complete[i, t]``: the outcome and every regressor term (with its lag) are
+  observed at ``t``.
+* transformed equation, first differences (Arellano & Bond 1991): row ``t`` exists
+  when ``complete[t]`` and ``complete[t-1]``; values ``v_t - v_{t-1}``.
+* transformed equation, forward orthogonal deviations (Arellano & Bover 1995):
+  the deviation of complete period ``s`` from the mean of the unit's later complete
+  periods, ``c_s (v_s - mean_{r>s} v_r)``, ``c_s = sqrt(n_s / (n_s + 1))`` with
+  ``n_s`` later complete periods. It is *stored at row* ``s + 1``: instrument lags are
+  counted from there, so that ``first_lag = 2`` gives the outcome's levels up to
+  ``s - 1`` (all valid for a deviation that starts at ``s``) and the same lag
+  windows describe the same instrument sets under both transforms.
+* level equation (system GMM; Arellano & Bover 1995, Blundell & Bond 1998): row
+  ``t`` exists when ``complete[t]`` and ``complete[t-1]``, so that the lagged
+  difference instruments are defined (as in Blundell & Bond 1998).
+
+Instruments (all zero where a row or a source value is missing):
+
+* transformed equation, lagged levels (GMM style): for the outcome and endogenous
+  regressors lags ``first_lag .. last_lag``; for predetermined regressors the window
+  starts and ends one lag sooner. Per-period: one column per (row period, lag);
+  collapsed: one column per lag (Roodman 2009).
+* level equation, lagged differences: ``Δv`` dated ``first_lag - 1`` periods back
+  (one period less for predetermined regressors); per-period or collapsed. Deeper
+  lags are redundant given the transformed-equation instruments (Blundell & Bond 1998).
+* exogenous regressors and extra instrument columns instrument themselves: the
+  transformed value in the transformed equation and the first difference in the
+  level equation (valid when the variable's correlation with the unit effect is
+  constant over time, the same condition that system GMM imposes on the others).
+* time effects: the transformed period dummies in the transformed equation; the
+  constant and the period dummies in the level equation.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..data import Panel
+from ..errors import EstimationError
+from ..spec import CONST_LABEL, Spec, period_label, term_label
+
+TRANSFORMED = 0
+LEVEL = 1
+
+
+@dataclass(frozen=True)
+class Term:
+    """A column built from data: variable ``var`` lagged ``lag`` periods."""
+
+    var: str
+    lag: int
+    label: str
+
+
+@dataclass
+class InstrumentColumn:
+    group: str
+    equation: int
+    description: str
+
+
+@dataclass
+class RowBlock:
+    """Instrument entries of one row (equation, calendar index) of every unit.
+
+    ``cols``: global instrument columns; the values of the entries come from
+    ``sources`` (see :meth:`Design._block_values`).
+    """
+
+    equation: int
+    t: int
+    cols: np.ndarray
+    lev_var: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    lev_src: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    lev_cols: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    dif_var: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    dif_src: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    dif_cols: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    own_idx: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+    own_cols: np.ndarray = field(default_factory=lambda: np.zeros(0, int))
+
+
+@dataclass
+class Chunk:
+    """Arrays of one chunk of units (``n`` units, ``P`` calendar periods).
+
+    ``y[e]`` (n, P) and ``x[e]`` (n, P, K) hold equation ``e`` (0 transformed,
+    1 level) with zeros where the row is absent; ``blocks`` hold the instrument
+    values of each row, ``(block, values (n, m))``. ``ylev``/``xlev`` are the levels
+    on ``complete`` periods, used for the AR tests.
+    """
+
+    n: int
+    y: list
+    x: list
+    rows: list
+    blocks: list
+    ylev: np.ndarray
+    xlev: np.ndarray
+    complete: np.ndarray
+
+
+class Design:
+    """Everything about a model that does not depend on the coefficients."""
+
+    def __init__(self, spec: Spec, panel: Panel):
+        self.spec = spec
+        self.panel = panel
+        self.system = spec.equations == "system"
+        self.fod = spec.transform == "fod"
+        missing = [c for c in spec.used_columns() if c not in panel.values]
+        if missing:
+            raise EstimationError(f"columns missing from the panel: {', '.join(missing)}")
+        self.P = panel.n_periods
+        # raw variables stacked once: (N, V, P)
+        self.var_names = list(spec.used_columns())
+        self.var_index = {v: i for i, v in enumerate(self.var_names)}
+        self.terms = [Term(v, lag, lab) for v, lag, lab in spec.regressor_terms()]
+        self.extra_terms = [Term(v, 0, term_label(v, 0)) for v in spec.extra_instruments]
+        self.term_roles = []
+        for reg in spec.regressors:
+            self.term_roles.extend([reg.role] * len(reg.lags))
+        self.term_roles = ["outcome"] * len(spec.outcome_lags) + self.term_roles
+        self._global_masks()
+        self._x_columns()
+        self._instrument_layout()
+
+    # ------------------------------------------------------------------ rows
+    def _term_levels(self, var_block: dict, lo: int, hi: int, term: Term) -> np.ndarray:
+        return _shift(var_block[term.var][lo:hi], term.lag)
+
+    def _complete(self, values: dict) -> np.ndarray:
+        spec = self.spec
+        ok = ~np.isnan(values[spec.outcome])
+        for term in self.terms:
+            ok &= ~np.isnan(_shift(values[term.var], term.lag))
+        for term in self.extra_terms:
+            ok &= ~np.isnan(values[term.var])
+        return ok
+
+    def _rows_from_complete(self, complete: np.ndarray):
+        prev = np.zeros_like(complete)
+        prev[:, 1:] = complete[:, :-1]
+        both = complete & prev
+        if self.fod:
+            later = _later_count(complete)
+            dev = complete & (later > 0)
+            rows_t = np.zeros_like(complete)
+            rows_t[:, 1:] = dev[:, :-1]
+        else:
+            rows_t = both
+        rows_l = both if self.system else np.zeros_like(complete)
+        return rows_t, rows_l
+
+    def _global_masks(self):
+        values = self.panel.values
+        complete = self._complete(values)
+        rows_t, rows_l = self._rows_from_complete(complete)
+        self.row_any = [rows_t.any(axis=0), rows_l.any(axis=0)]
+        self.unit_has_rows = rows_t.any(axis=1) | rows_l.any(axis=1)
+        self.n_rows = [int(rows_t.sum()), int(rows_l.sum())]
+        self.complete_any = complete.any(axis=0)
+        if self.n_rows[0] == 0:
+            raise EstimationError(
+                "no observations left: no unit has enough consecutive complete periods "
+                f"for the lags and the {'deviations' if self.fod else 'differences'}")
+        self.sample_mask = self._sample_mask(complete, rows_t, rows_l)
+
+    def _sample_mask(self, complete, rows_t, rows_l):
+        used = rows_l.copy()
+        if self.fod:
+            dev = np.zeros_like(rows_t)
+            dev[:, :-1] = rows_t[:, 1:]
+            has_dev = dev.any(axis=1)
+            used |= complete & has_dev[:, None]
+        else:
+            used |= rows_t
+            used[:, :-1] |= rows_t[:, 1:]
+        return used
+
+    # --------------------------------------------------------------- columns
+    def _x_columns(self):
+        spec = self.spec
+        labels = [t.label for t in self.terms]
+        kinds = ["term"] * len(self.terms)
+        self.dummy_periods = []
+        if self.system:
+            labels.append(CONST_LABEL)
+            kinds.append("const")
+        if spec.time_effects:
+            idx = np.flatnonzero(self.complete_any)
+            self.dummy_periods = [int(i) for i in idx]
+            for i in idx:
+                labels.append(period_label(self.panel.periods[i]))
+                kinds.append("dummy")
+        self.x_labels_all = labels
+        self.x_kinds_all = kinds
+        self.keep_x = np.arange(len(labels))
+
+    def set_kept_columns(self, keep: np.ndarray):
+        """Restrict the regressors to ``keep`` (after the collinearity scan)."""
+        self.keep_x = np.asarray(keep, dtype=int)
+        self.x_labels = [self.x_labels_all[i] for i in self.keep_x]
+        kept = set(self.keep_x.tolist())
+        # an instrument that is a dropped dummy would only repeat the others
+        self.keep_z = np.asarray([j for j in range(self.L_all)
+                                  if self.z_xdep[j] < 0 or self.z_xdep[j] in kept], dtype=int)
+
+    # ------------------------------------------------------------ instruments
+    def _gmm_windows(self):
+        """(variable, first lag, last lag) of each lagged-level instrument set."""
+        spec = self.spec
+        first = spec.first_lag
+        last = spec.last_lag if spec.last_lag is not None else self.P
+        out = [(spec.outcome, first, last)]
+        for reg in spec.regressors:
+            if reg.role == "endogenous":
+                out.append((reg.name, first, last))
+            elif reg.role == "predetermined":
+                out.append((reg.name, max(first - 1, 1), max(last - 1, 1)))
+        return out
+
+    def _instrument_layout(self):
+        spec = self.spec
+        P = self.P
+        values = self.panel.values
+        cols: list[InstrumentColumn] = []
+        xdep: list[int] = []  # X column an instrument copies (dummies), else -1
+        entries = {}  # (eq, t) -> dict of lists
+
+        def entry(eq, t):
+            return entries.setdefault((eq, t), {"lev": [], "dif": [], "own": []})
+
+        def new_col(group, eq, desc, dep=-1):
+            cols.append(InstrumentColumn(group, eq, desc))
+            xdep.append(dep)
+            return len(cols) - 1
+
+        rows_t_any, rows_l_any = self.row_any
+        observed = {v: ~np.isnan(values[v]) for v in self.var_names}
+        # rows per period with at least one unit, used to drop empty columns early
+        complete = self._complete(values)
+        rows_t, rows_l = self._rows_from_complete(complete)
+        collapsed = spec.form == "collapsed"
+
+        for var, lo, hi in self._gmm_windows():
+            vi = self.var_index[var]
+            group = f"levels of {var}"
+            lag_col = {}
+            for t in np.flatnonzero(rows_t_any):
+                for lag in range(lo, hi + 1):
+                    src = t - lag
+                    if src < 0:
+                        break
+                    if not (rows_t[:, t] & observed[var][:, src]).any():
+                        continue
+                    if collapsed:
+                        if lag not in lag_col:
+                            lag_col[lag] = new_col(group, TRANSFORMED, f"{var} lag {lag}")
+                        c = lag_col[lag]
+                    else:
+                        c = new_col(group, TRANSFORMED,
+                                    f"{var} lag {lag} for period {self.panel.periods[t]}")
+                    entry(TRANSFORMED, t)["lev"].append((vi, src, c))
+        if self.system:
+            for var, lo, _ in self._gmm_windows():
+                vi = self.var_index[var]
+                dlag = lo - 1
+                group = "level equation"
+                col = None
+                for t in np.flatnonzero(rows_l_any):
+                    src = t - dlag
+                    if src < 1 or src > P - 1:
+                        continue
+                    ok = rows_l[:, t] & observed[var][:, src] & observed[var][:, src - 1]
+                    if not ok.any():
+                        continue
+                    if collapsed:
+                        if col is None:
+                            col = new_col(group, LEVEL, f"difference of {var} lag {dlag}")
+                        c = col
+                    else:
+                        c = new_col(group, LEVEL, f"difference of {var} lag {dlag} "
+                                    f"for period {self.panel.periods[t]}")
+                    entry(LEVEL, t)["dif"].append((vi, src, c))
+        # exogenous regressors and extra columns: "own" entries point at the
+        # augmented transformed/level arrays (terms + extra terms)
+        own_terms = [j for j, role in enumerate(self.term_roles) if role == "exogenous"]
+        own_terms += [len(self.terms) + j for j in range(len(self.extra_terms))]
+        all_terms = self.terms + self.extra_terms
+        n_terms = len(self.terms)
+        k_all = len(self.x_labels_all)
+        for j in own_terms:
+            c = new_col("exogenous", TRANSFORMED, f"{all_terms[j].label} (transformed)")
+            for t in np.flatnonzero(rows_t_any):
+                entry(TRANSFORMED, t)["own"].append((self._aug_index(j, n_terms, k_all), c))
+        if self.system:
+            for j in own_terms:
+                c = new_col("exogenous", LEVEL, f"{all_terms[j].label} (difference, level equation)")
+                term = all_terms[j]
+                vi = self.var_index[term.var]
+                for t in np.flatnonzero(rows_l_any):
+                    src = t - term.lag
+                    if src < 1:
+                        continue
+                    entry(LEVEL, t)["dif"].append((vi, src, c))
+        # time effects
+        for k, kind in enumerate(self.x_kinds_all):
+            if kind not in ("const", "dummy"):
+                continue
+            label = self.x_labels_all[k]
+            if kind == "dummy":
+                c = new_col("time effects", TRANSFORMED, f"{label} (transformed)", dep=k)
+                for t in np.flatnonzero(rows_t_any):
+                    entry(TRANSFORMED, t)["own"].append((k, c))
+            if self.system:
+                c = new_col("time effects", LEVEL, f"{label} (level equation)", dep=k)
+                for t in np.flatnonzero(rows_l_any):
+                    entry(LEVEL, t)["own"].append((k, c))
+
+        self.z_columns = cols
+        self.z_xdep = np.asarray(xdep, dtype=int)
+        self.L_all = len(cols)
+        blocks = []
+        for (eq, t), ent in sorted(entries.items()):
+            lev = np.asarray(ent["lev"], dtype=int).reshape(-1, 3)
+            dif = np.asarray(ent["dif"], dtype=int).reshape(-1, 3)
+            own = np.asarray(ent["own"], dtype=int).reshape(-1, 2)
+            block = RowBlock(
+                equation=eq, t=int(t),
+                cols=np.concatenate([lev[:, 2], dif[:, 2], own[:, 1]]),
+                lev_var=lev[:, 0], lev_src=lev[:, 1], lev_cols=lev[:, 2],
+                dif_var=dif[:, 0], dif_src=dif[:, 1], dif_cols=dif[:, 2],
+                own_idx=own[:, 0], own_cols=own[:, 1])
+            blocks.append(block)
+        self.blocks = blocks
+        self.keep_z = np.arange(self.L_all)
+
+    @staticmethod
+    def _aug_index(j, n_terms, k_all):
+        # extra instrument terms sit after all X columns in the augmented arrays
+        return j if j < n_terms else k_all + (j - n_terms)
+
+    # ----------------------------------------------------------------- chunks
+    def chunk(self, lo: int, hi: int) -> Chunk:
+        """Build the arrays of units ``lo:hi`` (all X columns, all instruments)."""
+        values = {v: self.panel.values[v][lo:hi] for v in self.var_names}
+        n = hi - lo
+        P = self.P
+        complete = self._complete(values)
+        rows_t, rows_l = self._rows_from_complete(complete)
+        terms = self.terms + self.extra_terms
+        n_x = len(self.x_labels_all)
+        # augmented levels: X columns then extra instrument terms, NaN-free on complete
+        aug = np.zeros((n, P, n_x + len(self.extra_terms)))
+        for j, term in enumerate(self.terms):
+            aug[:, :, j] = _shift(values[term.var], term.lag)
+        for j, kind in enumerate(self.x_kinds_all):
+            if kind == "const":
+                aug[:, :, j] = 1.0
+        dummy_cols = [j for j, kind in enumerate(self.x_kinds_all) if kind == "dummy"]
+        for j, t in zip(dummy_cols, self.dummy_periods):
+            aug[:, t, j] = 1.0
+        for j, term in enumerate(self.extra_terms):
+            aug[:, :, n_x + j] = values[term.var]
+        ylev = np.where(complete, values[self.spec.outcome], 0.0)
+        aug = np.where(complete[:, :, None], aug, 0.0)
+
+        if self.fod:
+            ytr, augtr = _fod(ylev, aug, complete)
+        else:
+            ytr = np.zeros_like(ylev)
+            ytr[:, 1:] = ylev[:, 1:] - ylev[:, :-1]
+            augtr = np.zeros_like(aug)
+            augtr[:, 1:] = aug[:, 1:] - aug[:, :-1]
+        ytr = np.where(rows_t, ytr, 0.0)
+        augtr = np.where(rows_t[:, :, None], augtr, 0.0)
+        ylv = np.where(rows_l, ylev, 0.0)
+        auglv = np.where(rows_l[:, :, None], aug, 0.0)
+
+        stacked = np.stack([values[v] for v in self.var_names], axis=1)  # (n, V, P)
+        blocks = []
+        for block in self.blocks:
+            eq, t = block.equation, block.t
+            rmask = (rows_t if eq == TRANSFORMED else rows_l)[:, t]
+            parts = []
+            if block.lev_var.size:
+                parts.append(stacked[:, block.lev_var, block.lev_src])
+            if block.dif_var.size:
+                parts.append(stacked[:, block.dif_var, block.dif_src]
+                             - stacked[:, block.dif_var, block.dif_src - 1])
+            if block.own_idx.size:
+                src = augtr if eq == TRANSFORMED else auglv
+                parts.append(src[:, t, block.own_idx])
+            vals = np.concatenate(parts, axis=1) if len(parts) > 1 else parts[0]
+            vals = np.where(rmask[:, None] & ~np.isnan(vals), vals, 0.0)
+            blocks.append((block, vals))
+        return Chunk(
+            n=n,
+            y=[ytr, ylv],
+            x=[augtr[:, :, :n_x], auglv[:, :, :n_x]],
+            rows=[rows_t, rows_l],
+            blocks=blocks,
+            ylev=ylev,
+            xlev=aug[:, :, :n_x],
+            complete=complete,
+        )
+
+    # ------------------------------------------------------------- summaries
+    def instrument_groups(self) -> dict[str, np.ndarray]:
+        """Positions (within the kept instruments) of each instrument group."""
+        groups: dict[str, list[int]] = {}
+        for pos, j in enumerate(self.keep_z):
+            groups.setdefault(self.z_columns[j].group, []).append(pos)
+        return {g: np.asarray(p, dtype=int) for g, p in groups.items()}
+
+
+def _shift(arr: np.ndarray, lag: int) -> np.ndarray:
+    """Lag along the calendar axis (axis 1); NaN where the lag falls off the panel."""
+    if lag == 0:
+        return arr
+    out = np.full(arr.shape, np.nan)
+    if lag < arr.shape[1]:
+        out[:, lag:] = arr[:, :-lag]
+    return out
+
+
+def _later_count(complete: np.ndarray) -> np.ndarray:
+    """Number of complete periods strictly after each period, per unit."""
+    rev = np.cumsum(complete[:, ::-1], axis=1)[:, ::-1]
+    later = np.zeros(complete.shape, dtype=np.int64)
+    later[:, :-1] = rev[:, 1:]
+    return later
+
+
+def _fod(ylev, aug, complete):
+    """Forward orthogonal deviations stored at row ``s + 1`` (see module docstring).
+
+    ``c_s (v_s - mean of later complete v)``, ``c_s = sqrt(n_s/(n_s+1))``
+    (Arellano & Bover 1995, eq. for the forward orthogonal deviations operator,
+    applied to each unit's sequence of complete periods).
+    """
+    later = _later_count(complete)
+    w = complete.astype(float)
+
+    def later_sum(arr):
+        rev = np.cumsum((arr * (w if arr.ndim == 2 else w[:, :, None]))[:, ::-1], axis=1)[:, ::-1]
+        out = np.zeros_like(arr)
+        out[:, :-1] = rev[:, 1:]
+        return out
+
+    ok = complete & (later > 0)
+    cnt = np.where(ok, later, 1).astype(float)
+    c = np.where(ok, np.sqrt(cnt / (cnt + 1.0)), 0.0)
+    ydev = c * (ylev - later_sum(ylev) / cnt)
+    adev = c[:, :, None] * (aug - later_sum(aug) / cnt[:, :, None])
+    yout = np.zeros_like(ylev)
+    aout = np.zeros_like(aug)
+    yout[:, 1:] = ydev[:, :-1]
+    aout[:, 1:] = adev[:, :-1]
+    return yout, aout
