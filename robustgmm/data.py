@@ -185,16 +185,25 @@ def _file_columns(path: Path, kind: str) -> list:
 def _read_csv(path: Path, **kw) -> pd.DataFrame:
     # Files saved by spreadsheets in a non-UTF-8 code page are common; latin-1 reads
     # any byte sequence, and ids/column names then still compare consistently.
+    kw.setdefault("sep", _csv_separator(path))
     try:
-        frame = pd.read_csv(path, **kw)
+        return pd.read_csv(path, **kw)
     except UnicodeDecodeError:
-        frame = pd.read_csv(path, encoding="latin-1", **kw)
-    if frame.shape[1] == 1 and "sep" not in kw:
-        header = str(frame.columns[0])
+        return pd.read_csv(path, encoding="latin-1", **kw)
+
+
+def _csv_separator(path: Path) -> str:
+    """"," unless the header is one field holding ";" or tabs (a file saved with a
+    semicolon or tab separator under a .csv name)."""
+    try:
+        head = pd.read_csv(path, nrows=0)
+    except UnicodeDecodeError:
+        head = pd.read_csv(path, nrows=0, encoding="latin-1")
+    if head.shape[1] == 1:
         for sep in (";", "\t"):
-            if sep in header:  # a semicolon- or tab-separated file saved as .csv
-                return _read_csv(path, sep=sep, **kw)
-    return frame
+            if sep in str(head.columns[0]):
+                return sep
+    return ","
 
 
 def _read(path: Path, kind: str, columns: list) -> pd.DataFrame:
@@ -237,6 +246,12 @@ def read_frame(spec, samples=None) -> pd.DataFrame:
     if path.is_dir():
         raise InputError(f"{where}: is a folder, not a data file ([data] file in {model})")
 
+    try:
+        size = path.stat().st_size
+    except OSError as exc:
+        raise InputError(f"{where}: cannot read the data file ({exc.strerror or exc})") from None
+    if size == 0:
+        raise InputError(f"{where}: the data file is empty")
     samples = spec.vary.samples if samples is None else samples
     needed = list(dict.fromkeys([spec.unit, spec.period, *spec.used_columns(),
                                  *filter_columns(spec, samples)]))
