@@ -1,0 +1,261 @@
+"""The numbers every document shares, computed once from the audit files.
+
+Each document (HTML, Markdown, LaTeX, referee paragraph) prints these same figures,
+so that they can never disagree with each other or with ``estimates.csv``.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .figures import diagnostics_table, setting_name, value_text
+from .inputs import AuditFolder, Rule
+
+VALUE_WORDS = {
+    ("transform", "fd"): "first differences",
+    ("transform", "fod"): "forward orthogonal deviations",
+    ("steps", "1"): "one-step",
+    ("steps", "2"): "two-step",
+    ("steps", "iterated"): "iterated",
+    ("time_effects", "True"): "with",
+    ("time_effects", "False"): "without",
+}
+
+SETTING_PHRASES = {
+    "equations": "the equations",
+    "transform": "the transform",
+    "steps": "the weighting",
+    "form": "the instrument form",
+    "first_lag": "the first instrument lag",
+    "last_lag": "the last instrument lag",
+    "time_effects": "time effects",
+    "errors": "the standard errors",
+    "sample": "the sample",
+}
+
+
+def fmt(x, digits: int = 3) -> str:
+    """A number as printed in every document: fixed ``digits`` decimals, small
+    non-zero numbers in three significant digits, NaN as 'n/a'."""
+    if x is None:
+        return "n/a"
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    if math.isnan(x):
+        return "n/a"
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    if x != 0 and abs(x) < 0.5 * 10 ** (-digits):
+        return f"{x:.{digits - 1}e}"
+    out = f"{x:.{digits}f}"
+    return "0." + "0" * digits if out in ("-0." + "0" * digits,) else out
+
+
+def fmt_p(p) -> str:
+    """A p-value: three decimals, '<0.001' below that."""
+    try:
+        p = float(p)
+    except (TypeError, ValueError):
+        return "n/a"
+    if math.isnan(p):
+        return "n/a"
+    return "<0.001" if p < 0.001 else f"{p:.3f}"
+
+
+def fmt_int(x) -> str:
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return str(x)
+    return "n/a" if math.isnan(x) else f"{int(round(x))}"
+
+
+def value_word(column: str, value) -> str:
+    text = value_text(value)
+    return VALUE_WORDS.get((column, text), text)
+
+
+def setting_phrase(column: str) -> str:
+    """'the role of leverage' for a role column; the table above otherwise."""
+    if column in SETTING_PHRASES:
+        return SETTING_PHRASES[column]
+    if "role" in column.lower():
+        name = column
+        for token in ("roles", "role"):
+            name = name.replace(token, "")
+        name = name.strip(":_.- []")
+        return f"the role of {name}" if name else "the regressor roles"
+    return setting_name(column)
+
+
+@dataclass(frozen=True)
+class TermSummary:
+    term: str
+    verdict: str
+    n: int                # estimated (ok) variants with an estimate for this term
+    low: float
+    high: float
+    median: float
+    base_estimate: float
+    base_std_error: float
+    base_p_value: float
+    n_significant: int
+    n_positive: int
+    n_negative: int
+    fired: tuple[Rule, ...]
+    truth: float | None
+
+    @property
+    def sign_stable(self) -> bool:
+        return self.n_positive == self.n or self.n_negative == self.n
+
+    @property
+    def share_significant(self) -> float:
+        return self.n_significant / self.n if self.n else float("nan")
+
+
+@dataclass(frozen=True)
+class BandSummary:
+    term: str
+    fe: float
+    ols: float
+    n_inside: int
+    n: int
+
+
+@dataclass(frozen=True)
+class AuditSummary:
+    n_variants: int
+    n_ok: int
+    n_failed: int
+    n_skipped: int
+    varied: tuple[tuple[str, tuple[Any, ...]], ...]
+    terms: tuple[TermSummary, ...]
+    bands: tuple[BandSummary, ...]
+    hansen_low: float
+    hansen_high: float
+    n_hansen_reject: int
+    n_hansen_high: int
+    n_ar2_reject: int
+    n_ar2: int
+    instruments_low: float
+    instruments_high: float
+    units_low: float
+    units_high: float
+    n_too_many_instruments: int
+    alpha: float
+    model_flags: tuple[Rule, ...]
+
+    def term(self, label: str) -> TermSummary:
+        for t in self.terms:
+            if t.term == label:
+                return t
+        raise KeyError(label)
+
+
+def _count(mask) -> int:
+    return int(np.count_nonzero(np.asarray(mask, bool)))
+
+
+def summarize(audit: AuditFolder) -> AuditSummary:
+    v = audit.variants
+    ok = audit.ok_variants
+    varied = tuple((col, tuple(pd.unique(v[col]))) for col in audit.varied_settings)
+    terms = []
+    for tv in audit.term_verdicts:
+        frame = audit.term_estimates(tv.term)
+        est = frame["estimate"].to_numpy(float)
+        p = frame["p_value"].to_numpy(float)
+        base = frame[frame["variant"] == audit.base_variant]
+        b = base.iloc[0] if not base.empty else None
+        terms.append(TermSummary(
+            term=tv.term, verdict=tv.verdict, n=len(frame),
+            low=float(est.min()) if est.size else float("nan"),
+            high=float(est.max()) if est.size else float("nan"),
+            median=float(np.median(est)) if est.size else float("nan"),
+            base_estimate=float(b["estimate"]) if b is not None else float("nan"),
+            base_std_error=float(b["std_error"]) if b is not None else float("nan"),
+            base_p_value=float(b["p_value"]) if b is not None else float("nan"),
+            n_significant=_count(p < audit.alpha),
+            n_positive=_count(est > 0), n_negative=_count(est < 0),
+            fired=tv.fired, truth=audit.truth_value(tv.term)))
+    diag = diagnostics_table(audit)
+    bands = []
+    inside_col = "AR coef. inside OLS-FE band"
+    for term in audit.ar_terms:
+        band = audit.band(term)
+        frame = audit.term_estimates(term)
+        if band is None or frame.empty:
+            continue
+        if inside_col in diag.columns and term == audit.ar_terms[0]:
+            states = diag.loc[frame["variant"], inside_col].to_numpy(float)
+            n_inside = _count(states == 0)
+        else:
+            lo, hi = min(band), max(band)
+            est = frame["estimate"].to_numpy(float)
+            n_inside = _count((est >= lo) & (est <= hi))
+        bands.append(BandSummary(term, band[0], band[1], n_inside, len(frame)))
+    hansen = ok["hansen_p"].to_numpy(float)
+    hansen_f = hansen[np.isfinite(hansen)]
+    ar2 = ok["ar2_p"].to_numpy(float)
+    ar2_f = ar2[np.isfinite(ar2)]
+    inst = ok["instruments"].to_numpy(float)
+    units = ok["units"].to_numpy(float)
+    t = audit.thresholds
+
+    def lohi(a):
+        a = a[np.isfinite(a)]
+        return (float(a.min()), float(a.max())) if a.size else (float("nan"), float("nan"))
+
+    return AuditSummary(
+        n_variants=len(v), n_ok=len(ok), n_failed=_count(v["status"] == "failed"),
+        n_skipped=_count(v["status"] == "skipped"), varied=varied, terms=tuple(terms),
+        bands=tuple(bands),
+        hansen_low=lohi(hansen)[0], hansen_high=lohi(hansen)[1],
+        n_hansen_reject=_count(hansen_f < t["hansen_reject"]),
+        n_hansen_high=_count(hansen_f >= t["hansen_too_high"]),
+        n_ar2_reject=_count(ar2_f < t["ar2_reject"]), n_ar2=int(ar2_f.size),
+        instruments_low=lohi(inst)[0], instruments_high=lohi(inst)[1],
+        units_low=lohi(units)[0], units_high=lohi(units)[1],
+        n_too_many_instruments=_count(inst > units * t["instruments_per_unit"]),
+        alpha=audit.alpha, model_flags=audit.model_flags)
+
+
+def varied_text(summary: AuditSummary) -> str:
+    """'the equations (difference, system), the transform (first differences, ...)
+    and the last instrument lag (2, 3, all)'."""
+    parts = [f"{setting_phrase(col)} ({', '.join(value_word(col, x) for x in values)})"
+             for col, values in summary.varied]
+    if not parts:
+        return ""
+    if len(parts) == 1:
+        return parts[0]
+    return ", ".join(parts[:-1]) + " and " + parts[-1]
+
+
+def rule_figures_text(rule: Rule) -> str:
+    """The figures of a fired rule as 'key = value' pairs."""
+    items = []
+    for key, value in rule.figures.items():
+        if isinstance(value, float):
+            value = fmt(value)
+        elif isinstance(value, (list, tuple)):
+            value = ", ".join(fmt(x) if isinstance(x, float) else str(x) for x in value)
+        items.append(f"{key} = {value}")
+    return "; ".join(items)
+
+
+def threshold_text(value) -> str:
+    if value is None or value == "" or (isinstance(value, float) and math.isnan(value)):
+        return "—"
+    if isinstance(value, dict):
+        return "; ".join(f"{k} = {threshold_text(v)}" for k, v in value.items())
+    if isinstance(value, float):
+        return f"{value:g}"
+    return str(value)
