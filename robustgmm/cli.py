@@ -1,0 +1,415 @@
+"""The ``robustgmm`` command line: argument parsing, exit codes, one-line errors.
+
+Subcommands: ``fit``, ``audit``, ``report``, ``demo``, ``bench``. Exit codes (design
+contract): 0 done; 2 bad input or a model that cannot be estimated (each problem on
+its own ``robustgmm: error:`` line on stderr, no traceback); 1 internal error (one
+line; the traceback only with ``ROBUSTGMM_DEBUG=1``); 3 an audit run with
+``--fail-on-fragile`` found a fragile focus term; 130 interrupted.
+
+The estimation, audit, report, demo and bench modules are imported inside their
+subcommand, so that ``robustgmm --help`` and the input checks stay fast.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import sys
+import traceback
+from pathlib import Path
+from typing import Sequence
+
+from . import __version__
+from .errors import EstimationError, InputError
+
+EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_FRAGILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+#: Written into an output folder as soon as robustgmm starts using it, so that a
+#: rerun of an interrupted audit (no manifest.json yet) is recognised as ours.
+OUTPUT_MARKER = ".robustgmm-output"
+DEBUG_ENV = "ROBUSTGMM_DEBUG"
+
+
+# ---------------------------------------------------------------------------
+# argument parsing
+# ---------------------------------------------------------------------------
+class _UsageError(Exception):
+    """A command-line problem found by argparse (reported as one line, exit 2)."""
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # argparse would print usage and exit; we want one line
+        raise _UsageError(f"{message} (see '{self.prog} --help')")
+
+
+def _jobs(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"--jobs {text!r}: must be a positive whole number, or -1 for every core") from None
+    if value == 0 or value < -1:
+        raise argparse.ArgumentTypeError(
+            f"--jobs {value}: must be a positive whole number, or -1 for every core")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="robustgmm",
+                     description="Audit how robust a dynamic panel GMM result is.")
+    parser.add_argument("--version", action="version", version=f"robustgmm {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    sub.required = True
+
+    p = sub.add_parser("fit", help="estimate the model of a model file and print a summary")
+    p.add_argument("model", metavar="MODEL.toml", help="model file")
+    p.add_argument("--json", metavar="OUT.json", help="also write the results as JSON")
+    p.add_argument("--all-terms", action="store_true",
+                   help="also list the period dummies in the summary")
+
+    p = sub.add_parser("audit", help="estimate every variant of a model and judge robustness")
+    p.add_argument("model", metavar="MODEL.toml", help="model file with an [audit] section")
+    p.add_argument("--out", metavar="DIR", required=True, help="output folder")
+    p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
+                   help="parallel workers (-1 = every core; default: the runner's choice)")
+    p.add_argument("--plan", action="store_true",
+                   help="list the variants and their instrument counts without estimating")
+    p.add_argument("--no-cache", action="store_true", help="do not reuse or keep cached variants")
+    p.add_argument("--fail-on-fragile", action="store_true",
+                   help="exit with code 3 when a focus term is fragile")
+    p.add_argument("--force", action="store_true",
+                   help="write into an existing non-empty folder that robustgmm did not create")
+
+    p = sub.add_parser("report", help="rebuild the report of an audit output folder")
+    p.add_argument("dir", metavar="DIR", help="an audit output folder")
+
+    p = sub.add_parser("demo", help="run an audit on an invented scenario with known truth")
+    p.add_argument("--out", metavar="DIR", default="robustgmm-demo",
+                   help="output folder (default: ./robustgmm-demo)")
+    p.add_argument("--jobs", type=_jobs, default=None, metavar="N", help="parallel workers")
+    p.add_argument("--force", action="store_true",
+                   help="write into an existing non-empty folder that robustgmm did not create")
+
+    p = sub.add_parser("bench", help="measure speed on simulated workloads")
+    p.add_argument("--quick", action="store_true", help="small workloads only")
+    p.add_argument("--out", metavar="DIR", default=None, help="where to write the bench report")
+    return parser
+
+
+# ---------------------------------------------------------------------------
+# path checks
+# ---------------------------------------------------------------------------
+def check_model_path(path: str) -> Path:
+    p = Path(path)
+    if p.suffix.lower() in (".csv", ".parquet", ".dta", ".xlsx") and p.is_file():
+        raise InputError(f"{path}: this is a data file; pass the model file (.toml) that names it")
+    return p
+
+
+def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
+    """Create (or accept) an output folder and check that it can be written.
+
+    Refuses a non-empty folder that holds neither an audit (``manifest.json``) nor
+    the marker robustgmm leaves when it starts using a folder, unless ``force``.
+    """
+    out = Path(path)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{path}: {what} must be a folder; this is a file")
+    if out.is_dir():
+        try:
+            entries = [e.name for e in out.iterdir()]
+        except OSError as exc:
+            raise InputError(f"{path}: cannot read the {what} folder ({exc.strerror or exc})") from None
+        ours = "manifest.json" in entries or OUTPUT_MARKER in entries
+        if entries and not ours and not force:
+            raise InputError(
+                f"{path}: folder exists, is not empty and holds no robustgmm output; "
+                "choose a new folder or add --force to write into it")
+    else:
+        try:
+            out.mkdir(parents=True)
+        except OSError as exc:
+            raise InputError(f"{path}: cannot create the {what} folder "
+                             f"({exc.strerror or type(exc).__name__})") from None
+    try:  # os.access is not reliable (e.g. for root or on network drives): try a write
+        from .io import atomic_write_text
+        atomic_write_text(out / OUTPUT_MARKER,
+                          json.dumps({"created_by": "robustgmm", "version": __version__}) + "\n")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot write into the {what} folder "
+                         f"({exc.strerror or type(exc).__name__})") from None
+    return out
+
+
+def check_json_path(path: str) -> Path:
+    out = Path(path)
+    if out.is_dir():
+        raise InputError(f"{path}: --json must name a file; this is a folder")
+    parent = out.parent
+    while not parent.exists() and parent != parent.parent:
+        parent = parent.parent
+    if parent.exists() and not parent.is_dir():
+        raise InputError(f"{path}: --json cannot be written: {parent} is a file, not a folder")
+    return out
+
+
+# ---------------------------------------------------------------------------
+# fit summary
+# ---------------------------------------------------------------------------
+def _num(x, width: int, digits: int) -> str:
+    if x is None:
+        return " " * (width - 1) + "-"
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return str(x).rjust(width)
+    if not math.isfinite(x):
+        return " " * (width - 1) + "-"
+    return f"{x:{width}.{digits}f}"
+
+
+def _p(x) -> str:
+    if x is None or not math.isfinite(float(x)):
+        return "      -"
+    return "  <.001" if float(x) < 0.001 else f"{float(x):7.3f}"
+
+
+_STEPS = {1: "one-step", 2: "two-step", "iterated": "iterated"}
+_TRANSFORM = {"fd": "first differences", "fod": "forward orthogonal deviations"}
+_SE_KIND = {"windmeijer": "Windmeijer-corrected", "robust": "cluster-robust (by unit)",
+            "conventional": "conventional", "cluster": "cluster-robust (by unit)"}
+
+
+def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
+    """A compact plain-text summary of one fit (our own layout)."""
+    from .spec import is_deterministic_label
+
+    c = result.counts
+    lines = [
+        f"Model {spec.source}: {spec.outcome} on its lags "
+        f"{', '.join(map(str, spec.outcome_lags))}"
+        + (f" and {len(spec.regressors)} regressor(s)" if spec.regressors else ""),
+        f"{spec.equations} GMM, {_TRANSFORM.get(spec.transform, spec.transform)}, "
+        f"{_STEPS.get(spec.steps, spec.steps)}; instruments: lags {spec.first_lag}-"
+        f"{'all' if spec.last_lag is None else spec.last_lag}, {spec.form}"
+        + ("; time effects" if spec.time_effects else ""),
+        f"Sample: {spec.sample.name}; {c.observations} observations, {c.units} units, "
+        f"{c.periods} periods; {c.instruments} instruments "
+        f"({c.instruments_per_unit:.2f} per unit)",
+    ]
+    if panel is not None and panel.dropped_missing:
+        lines.append(f"Rows with a missing value in a used column: {panel.dropped_missing} "
+                     "(the observations they touch are left out)")
+    kind = _SE_KIND.get(result.std_error_kind, result.std_error_kind)
+    lines += ["", f"Coefficients (standard errors: {kind})"]
+    shown = [t for t in result.terms if all_terms or not t.label.startswith("period[")]
+    hidden = len(result.terms) - len(shown)
+    width = max([len("term")] + [len(t.label) for t in shown])
+    lines.append(f"  {'term':<{width}}  {'estimate':>10}  {'std.error':>10}  {'z':>8}  {'p':>7}")
+    for t in shown:
+        lines.append(f"  {t.label:<{width}}  {_num(t.estimate, 10, 4)}  "
+                     f"{_num(t.std_error, 10, 4)}  {_num(t.z, 8, 2)}  {_p(t.p_value)}")
+    if hidden:
+        lines.append(f"  ({hidden} period dummies not shown; use --all-terms or --json)")
+
+    names = {"ar1": "AR(1) in differences", "ar2": "AR(2) in differences",
+             "sargan": "Sargan (not robust)", "hansen": "Hansen J (robust)"}
+    rows = [(names.get(k, k), t) for k, t in result.tests.items() if t is not None]
+    dh = list(result.difference_hansen.items())
+    if rows or dh:
+        width = max([len("test")] + [len(n) for n, _ in rows] + [len(g) + 2 for g, _ in dh])
+        lines += ["", "Specification tests",
+                  f"  {'test':<{width}}  {'statistic':>10}  {'df':>4}  {'p':>7}"]
+        for name, t in rows:
+            df = "" if t.df is None else str(t.df)
+            lines.append(f"  {name:<{width}}  {_num(t.statistic, 10, 3)}  {df:>4}  {_p(t.p_value)}")
+        if dh:
+            lines.append("  difference-in-Hansen (excluding each instrument group):")
+            for group, t in dh:
+                df = "" if t.df is None else str(t.df)
+                lines.append(f"  {'  ' + group:<{width}}  {_num(t.statistic, 10, 3)}  "
+                             f"{df:>4}  {_p(t.p_value)}")
+    if result.warnings:
+        lines += ["", "Warnings"] + [f"  - {w}" for w in result.warnings]
+    lines += ["", "Passing these tests does not prove the instruments valid; validity rests "
+              "on economic reasoning about the model."]
+    return "\n".join(lines)
+
+
+# ---------------------------------------------------------------------------
+# subcommands
+# ---------------------------------------------------------------------------
+def _out(text: str = "") -> None:
+    print(text, file=sys.stdout, flush=True)
+
+
+def cmd_fit(args) -> int:
+    from .data import load_panel
+    from .modelfile import read_model
+
+    json_path = check_json_path(args.json) if args.json else None
+    spec = read_model(check_model_path(args.model))
+    panel = load_panel(spec)
+    from .core import fit
+    try:
+        result = fit(spec, panel)
+    except EstimationError as exc:
+        raise EstimationError(f"{spec.source}: cannot estimate the model: {exc}") from None
+    _out(format_fit_summary(spec, panel, result, all_terms=args.all_terms))
+    if json_path is not None:
+        from .io import atomic_write_json
+        try:
+            atomic_write_json(json_path, result.to_dict())
+        except OSError as exc:
+            raise InputError(f"{args.json}: cannot write the JSON file "
+                             f"({exc.strerror or type(exc).__name__})") from None
+        _out(f"\nWrote {json_path}")
+    return EXIT_OK
+
+
+def _plan_frame(spec):
+    try:
+        from .audit import plan_frame
+    except ImportError:
+        from .grid import plan_frame
+    return plan_frame(spec)
+
+
+def cmd_audit(args) -> int:
+    from .modelfile import read_model
+
+    spec = read_model(check_model_path(args.model))
+    if args.plan:
+        import pandas as pd
+        frame = _plan_frame(spec)
+        with pd.option_context("display.max_rows", None, "display.max_columns", None,
+                               "display.width", 200, "display.max_colwidth", 60):
+            _out(frame.to_string(index=False))
+        counts = frame["status"].value_counts() if "status" in frame else None
+        if counts is not None:
+            _out("\n" + ", ".join(f"{n} {s}" for s, n in counts.items()))
+        return EXIT_OK
+    out = check_output_folder(args.out, args.force)
+    from . import audit as audit_mod
+
+    result = audit_mod.audit(spec, jobs=args.jobs,
+                             cache_dir=None if args.no_cache else out / ".cache",
+                             progress=sys.stderr.isatty())
+    audit_mod.write_audit(result, out, model_file=Path(args.model))
+    _build_report_if_available(out)
+    fragile = _fragile_terms(result.verdict)
+    _out(_audit_summary(result, out, fragile))
+    if args.fail_on_fragile and fragile:
+        return EXIT_FRAGILE
+    return EXIT_OK
+
+
+def _fragile_terms(verdict) -> list[str]:
+    terms = (verdict or {}).get("terms", {}) if isinstance(verdict, dict) else {}
+    return [label for label, v in terms.items()
+            if isinstance(v, dict) and v.get("verdict") == "fragile"]
+
+
+def _audit_summary(result, out: Path, fragile: list[str]) -> str:
+    lines = []
+    variants = getattr(result, "variants", None)
+    if variants is not None and "status" in getattr(variants, "columns", ()):
+        counts = variants["status"].value_counts()
+        lines.append("Variants: " + ", ".join(f"{n} {s}" for s, n in counts.items()))
+    terms = (result.verdict or {}).get("terms", {}) if isinstance(result.verdict, dict) else {}
+    for label, v in terms.items():
+        verdict = v.get("verdict") if isinstance(v, dict) else v
+        lines.append(f"  {label}: {verdict}")
+    if fragile:
+        lines.append("Fragile: " + ", ".join(fragile))
+    lines.append(f"Wrote the audit to {out}")
+    return "\n".join(lines)
+
+
+def _build_report_if_available(out: Path) -> None:
+    try:
+        from .report import build_report
+    except ImportError:
+        print("robustgmm: note: the report module is not available; wrote the data files only",
+              file=sys.stderr)
+        return
+    build_report(out)
+
+
+def cmd_report(args) -> int:
+    folder = Path(args.dir)
+    if not folder.is_dir():
+        raise InputError(f"{args.dir}: no such folder")
+    if not (folder / "manifest.json").is_file():
+        raise InputError(f"{args.dir}: no audit here (manifest.json missing); "
+                         "run 'robustgmm audit MODEL.toml --out DIR' first")
+    from .report import build_report
+    build_report(folder)
+    _out(f"Wrote the report in {folder}")
+    return EXIT_OK
+
+
+def cmd_demo(args) -> int:
+    out = check_output_folder(args.out, args.force)
+    from .demo import run_demo
+    run_demo(out, jobs=args.jobs)
+    _out(f"Wrote the demo audit to {out}")
+    return EXIT_OK
+
+
+def cmd_bench(args) -> int:
+    out = None
+    if args.out is not None:
+        out = Path(args.out)
+        if out.exists() and not out.is_dir():
+            raise InputError(f"{args.out}: --out must be a folder; this is a file")
+    from .bench import run
+    run(quick=args.quick, out_dir=out)
+    return EXIT_OK
+
+
+COMMANDS = {"fit": cmd_fit, "audit": cmd_audit, "report": cmd_report,
+            "demo": cmd_demo, "bench": cmd_bench}
+
+
+# ---------------------------------------------------------------------------
+# entry point
+# ---------------------------------------------------------------------------
+def _error(line: str) -> None:
+    print(f"robustgmm: error: {line}", file=sys.stderr, flush=True)
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the exit code (the console script exits with it)."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    try:
+        try:
+            args = build_parser().parse_args(argv)
+        except SystemExit as exc:  # --help / --version
+            return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_INPUT
+        return COMMANDS[args.command](args)
+    except _UsageError as exc:
+        _error(str(exc))
+        return EXIT_INPUT
+    except InputError as exc:
+        for line in exc.problems:
+            _error(line)
+        return EXIT_INPUT
+    except EstimationError as exc:
+        for line in str(exc).splitlines() or ["the model cannot be estimated"]:
+            _error(line)
+        return EXIT_INPUT
+    except KeyboardInterrupt:
+        print("robustgmm: interrupted", file=sys.stderr, flush=True)
+        return EXIT_INTERRUPTED
+    except Exception as exc:  # anything else is our bug: one line, traceback on request
+        if os.environ.get(DEBUG_ENV):
+            traceback.print_exc()
+        text = " ".join(str(exc).split()) or type(exc).__name__
+        print(f"robustgmm: internal error: {type(exc).__name__}: {text} "
+              f"(set {DEBUG_ENV}=1 to see the traceback)", file=sys.stderr, flush=True)
+        return EXIT_INTERNAL
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
