@@ -1,0 +1,434 @@
+"""The variant grid: expand ``[audit.vary]`` into variant specs and plan them.
+
+Expansion (:func:`expand`) is pure: the grid is the Cartesian product of the values
+listed for each varied setting, in the fixed order of :data:`DIMENSIONS` (the last
+one varies fastest). The base model is always a variant, listed first and marked
+``is_base``, even when a listed value set does not contain its settings. Identical
+variants (the same estimation settings) appear once.
+
+Each variant has a stable short id: the first 8 hex digits of the sha256 of its
+canonical estimation settings (:func:`canonical_settings`; the sample enters by its
+restrictions, not its name). The id does not depend on the grid it sits in, so the
+same model gives the same id in every audit; the plan's ``order`` column keeps the
+readable order.
+
+Planning (:func:`plan`) looks at the data. A variant is *skipped*, with the reason
+stated, only when it cannot be estimated or would repeat another variant exactly:
+
+* ``last_lag < first_lag``: the lag window is empty;
+* ``first_lag`` beyond the panel: no period has a level that many periods back
+  (a panel of ``P`` periods has lags up to ``P - 1``);
+* the model's own lags leave no transformed equation (``max lag + 1 > P - 1``);
+* the core reports it cannot build the design (``EstimationError``: no observations
+  left, a missing column);
+* the sample restriction leaves no data;
+* fewer instruments than parameters (order condition; the counts are stated);
+* a ``last_lag`` that reaches past the deepest lag the panel has gives exactly the
+  instruments of ``last_lag = "all"`` (the instrument count is the same and the set
+  with a shorter window is a subset): when such a twin is in the grid the later one
+  is skipped as a duplicate of the earlier, so nothing is estimated twice.
+
+Everything else is estimable and is *planned*, even when a setting makes no
+difference on these data (e.g. collapsed vs per-period with two periods): the audit
+shows that it made no difference rather than hiding the variant. Settings that are
+unusual but well defined (conventional errors with iterated weighting, one-step
+errors with ``errors = "conventional"``) are not impossible either.
+
+Instrument counts come from :func:`robustgmm.core.count_instruments` before any
+estimation (the plan that ``robustgmm audit --plan`` prints).
+"""
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import itertools
+import json
+from dataclasses import dataclass
+from typing import Any, Callable, Mapping, Sequence
+
+import pandas as pd
+
+from .errors import EstimationError, InputError
+from .spec import Regressor, SampleFilter, Spec
+
+#: Varied settings in grid order (the last varies fastest). Roles and samples are
+#: handled specially: one dimension per regressor whose role is varied
+#: (column ``role:NAME``) and one for the sample (column ``sample``).
+DIMENSIONS = ("equations", "transform", "steps", "errors", "form", "first_lag",
+              "last_lag", "time_effects", "roles", "samples")
+
+ID_LENGTH = 8
+PLANNED, SKIPPED = "planned", "skipped"
+
+
+# ---------------------------------------------------------------------------
+# canonical settings and ids
+# ---------------------------------------------------------------------------
+def sample_restrictions(sample: SampleFilter) -> dict:
+    """The restrictions of a sample filter, without its display name."""
+    return {
+        "period_from": sample.period_from,
+        "period_to": sample.period_to,
+        "exclude_column": sample.exclude_column,
+        "exclude_values": list(sample.exclude_values),
+    }
+
+
+def sample_key(sample: SampleFilter) -> str:
+    """A string that identifies a sample by its restrictions (for grouping)."""
+    return json.dumps(sample_restrictions(sample), sort_keys=True, default=str)
+
+
+def canonical_settings(spec: Spec) -> dict:
+    """Every setting that changes an estimate, as plain JSON values.
+
+    Display-only fields (source, focus, alpha, thresholds, vary, the data file path,
+    the sample's name) are left out, so the same model gives the same id and cache
+    key whatever it is called.
+    """
+    return {
+        "outcome": spec.outcome,
+        "outcome_lags": list(spec.outcome_lags),
+        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
+        "time_effects": bool(spec.time_effects),
+        "equations": spec.equations,
+        "transform": spec.transform,
+        "steps": spec.steps,
+        "errors": spec.errors,
+        "first_lag": spec.first_lag,
+        "last_lag": "all" if spec.last_lag is None else spec.last_lag,
+        "form": spec.form,
+        "extra_instruments": list(spec.extra_instruments),
+        "sample": sample_restrictions(spec.sample),
+    }
+
+
+def canonical_json(obj: Any) -> str:
+    """Deterministic JSON text (sorted keys, no whitespace) for hashing."""
+    return json.dumps(obj, sort_keys=True, separators=(",", ":"), default=str)
+
+
+def settings_hash(spec: Spec) -> str:
+    return hashlib.sha256(canonical_json(canonical_settings(spec)).encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------
+# variants
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Variant:
+    """One variant of the audit.
+
+    ``settings``: (column, display value) of every varied setting, in column order.
+    ``status``: ``planned`` or ``skipped`` (after :func:`plan`); ``reason`` says why a
+    variant is skipped. ``instruments``/``units``/``observations`` are filled by
+    :func:`plan` (``None`` when the design could not be built).
+    """
+
+    id: str
+    order: int
+    spec: Spec
+    settings: tuple[tuple[str, Any], ...]
+    is_base: bool = False
+    status: str = PLANNED
+    reason: str = ""
+    instruments: int | None = None
+    parameters: int | None = None
+    units: int | None = None
+    observations: int | None = None
+
+    def settings_dict(self) -> dict:
+        return dict(self.settings)
+
+
+def _display(value: Any) -> Any:
+    return "all" if value is None else value
+
+
+def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], None]]]:
+    """(column, values, apply) for every varied setting, in :data:`DIMENSIONS` order.
+
+    ``apply(changes, value)`` records the replacement of one setting into ``changes``
+    (a dict of Spec field → value, plus per-regressor role changes under "_roles").
+    """
+    vary = spec.vary
+    dims = []
+
+    def scalar(field):
+        def apply(changes, value):
+            changes[field] = value
+        return apply
+
+    for field in DIMENSIONS[:-2]:
+        values = list(getattr(vary, field))
+        if values:
+            dims.append((field, values, scalar(field)))
+    names = [r.name for r in spec.regressors]
+    for name, roles in vary.roles:
+        if name not in names:
+            raise InputError(f"{spec.source}: [audit.vary.roles] {name} is not a regressor "
+                             f"of the model (regressors: {', '.join(names) or 'none'})")
+
+        def apply_role(changes, value, name=name):
+            changes.setdefault("_roles", {})[name] = value
+        dims.append((f"role:{name}", list(roles), apply_role))
+    if vary.samples:
+        samples = [spec.sample] + [s for s in vary.samples]
+
+        def apply_sample(changes, value):
+            changes["sample"] = value
+        dims.append(("sample", samples, apply_sample))
+    return dims
+
+
+def _apply(spec: Spec, changes: dict) -> Spec:
+    changes = dict(changes)
+    roles = changes.pop("_roles", None)
+    if roles:
+        changes["regressors"] = tuple(
+            dataclasses.replace(r, role=roles.get(r.name, r.role)) for r in spec.regressors)
+    return dataclasses.replace(spec, **changes)
+
+
+def _base_value(spec: Spec, column: str) -> Any:
+    if column.startswith("role:"):
+        name = column[len("role:"):]
+        return next(r.role for r in spec.regressors if r.name == name)
+    if column == "sample":
+        return spec.sample
+    return getattr(spec, column)
+
+
+def _shown(column: str, value: Any) -> Any:
+    if column == "sample":
+        return value.name
+    return _display(value)
+
+
+def expand(spec: Spec) -> list[Variant]:
+    """All variants of ``spec`` (base first, then the product grid), deduplicated.
+
+    Static skips (those that need no data) are applied here: ``last_lag <
+    first_lag``.
+    """
+    dims = _dimensions(spec)
+    columns = [c for c, _, _ in dims]
+    candidates: list[tuple[Spec, tuple, bool]] = []
+    base_settings = tuple((c, _shown(c, _base_value(spec, c))) for c in columns)
+    candidates.append((spec, base_settings, True))
+    for combo in itertools.product(*[values for _, values, _ in dims]):
+        changes: dict = {}
+        for (_, _, apply), value in zip(dims, combo):
+            apply(changes, value)
+        variant_spec = _apply(spec, changes)
+        shown = tuple((c, _shown(c, v)) for c, v in zip(columns, combo))
+        candidates.append((variant_spec, shown, False))
+
+    seen: dict[str, int] = {}
+    unique: list[tuple[Spec, tuple, bool, str]] = []
+    for vspec, shown, is_base in candidates:
+        digest = settings_hash(vspec)
+        if digest in seen:
+            continue  # identical estimation settings: the earlier one stands (base first)
+        seen[digest] = len(unique)
+        unique.append((vspec, shown, is_base, digest))
+
+    length = ID_LENGTH
+    while len({d[:length] for *_, d in unique}) < len(unique):
+        length += 4  # a prefix collision: lengthen every id (deterministically)
+    variants = []
+    for order, (vspec, shown, is_base, digest) in enumerate(unique, start=1):
+        status, reason = PLANNED, ""
+        if vspec.last_lag is not None and vspec.last_lag < vspec.first_lag:
+            status = SKIPPED
+            reason = (f"last_lag = {vspec.last_lag} is below first_lag = {vspec.first_lag}: "
+                      "the instrument lag window is empty")
+        variants.append(Variant(id=digest[:length], order=order, spec=vspec,
+                                settings=shown, is_base=is_base, status=status, reason=reason))
+    return variants
+
+
+def setting_columns(spec: Spec) -> list[str]:
+    """The varied-setting columns of the grid, in order."""
+    return [c for c, _, _ in _dimensions(spec)]
+
+
+# ---------------------------------------------------------------------------
+# panels per sample
+# ---------------------------------------------------------------------------
+def samples_of(spec: Spec) -> list[SampleFilter]:
+    """The distinct samples of the audit: the base sample, then the varied ones."""
+    out, keys = [], set()
+    for sample in (spec.sample, *spec.vary.samples):
+        key = sample_key(sample)
+        if key not in keys:
+            keys.add(key)
+            out.append(sample)
+    return out
+
+
+def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
+    """``sample_key -> Panel`` for every sample of the audit, each built once.
+
+    ``panel``, when given, is the panel of the base sample. A sample that leaves no
+    data maps to the one-line reason (a string) instead of a panel, so that its
+    variants are skipped with that reason rather than stopping the audit.
+    Problems with the data file itself (missing file, bad columns) are raised as
+    :class:`InputError` by the data layer.
+    """
+    from . import data
+
+    panels: dict[str, Any] = {}
+    frame = None
+    for sample in samples_of(spec):
+        key = sample_key(sample)
+        if panel is not None and key == sample_key(spec.sample):
+            panels[key] = panel
+            continue
+        if frame is None:
+            frame = data.read_frame(spec)  # read once, filtered per sample below
+        try:
+            panels[key] = data.build_panel(frame, spec, sample=sample)
+        except InputError as exc:
+            if key == sample_key(spec.sample):
+                raise  # the base sample must exist: that is bad input, not a variant
+            panels[key] = f"sample {sample.name!r}: " + "; ".join(exc.problems)
+    return panels
+
+
+# ---------------------------------------------------------------------------
+# planning on the data
+# ---------------------------------------------------------------------------
+def _core():
+    from . import core
+    return core
+
+
+def count_parameters(spec: Spec, panel) -> int:
+    """Number of coefficients of a variant.
+
+    Uses ``core.count_parameters`` when the core provides it. Otherwise the count of
+    regressor terms plus the constant (system GMM) is used: a lower bound (period
+    dummies, which instrument themselves, are left out), so the order-condition skip
+    is then necessary but not sufficient; the core's own ``EstimationError`` marks
+    the rest as failed.
+    """
+    core = _core()
+    counter = getattr(core, "count_parameters", None)
+    if counter is not None:
+        return int(counter(spec, panel))
+    return len(spec.regressor_terms()) + (1 if spec.equations == "system" else 0)
+
+
+def _panel_checks(spec: Spec, panel) -> str:
+    """Reason a variant is impossible on this panel ('' when it is not)."""
+    P = panel.n_periods
+    where = f"the {spec.sample.name} has {P} period{'s' if P != 1 else ''}"
+    max_lag = spec.max_lag()
+    if max_lag + 1 > P - 1:
+        return (f"the model's longest lag ({max_lag}) leaves no transformed equation: "
+                f"{where}")
+    if spec.first_lag > P - 1:
+        return (f"first_lag = {spec.first_lag} reaches past the panel: {where}, "
+                f"so the deepest lag is {P - 1}")
+    return ""
+
+
+def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | None = None
+         ) -> list[Variant]:
+    """Check every variant on its sample's panel and count its instruments.
+
+    Returns the variants (same order) with status, reason, instruments, parameters,
+    units and observations filled in.
+    """
+    core = _core()
+    variants = list(expand(spec) if variants is None else variants)
+    out: list[Variant] = []
+    effective: dict[str, str] = {}  # effective-settings hash -> id of the first variant
+    for v in variants:
+        if v.status == SKIPPED:
+            out.append(v)
+            continue
+        panel = panels[sample_key(v.spec.sample)]
+        if isinstance(panel, str):
+            out.append(dataclasses.replace(v, status=SKIPPED, reason=panel))
+            continue
+        reason = _panel_checks(v.spec, panel)
+        if reason:
+            out.append(dataclasses.replace(v, status=SKIPPED, reason=reason))
+            continue
+        try:
+            n_instr = int(core.count_instruments(v.spec, panel))
+            n_par = count_parameters(v.spec, panel)
+            mask = core.estimation_sample(v.spec, panel)
+        except EstimationError as exc:
+            out.append(dataclasses.replace(v, status=SKIPPED, reason=_one_line(exc)))
+            continue
+        units = int(mask.any(axis=1).sum())
+        obs = int(mask.sum())
+        filled = dataclasses.replace(v, instruments=n_instr, parameters=n_par,
+                                     units=units, observations=obs)
+        if n_instr < n_par:
+            out.append(dataclasses.replace(
+                filled, status=SKIPPED,
+                reason=f"fewer instruments ({n_instr}) than parameters ({n_par}): "
+                       "the coefficients are not identified"))
+            continue
+        # a window reaching past the deepest lag is the "all" window: detect it by
+        # the instrument count (the shorter window's set is a subset of "all")
+        eff_spec = v.spec
+        if v.spec.last_lag is not None:
+            all_spec = dataclasses.replace(v.spec, last_lag=None)
+            try:
+                if int(core.count_instruments(all_spec, panel)) == n_instr:
+                    eff_spec = all_spec
+            except EstimationError:
+                pass
+        key = settings_hash(eff_spec)
+        twin = effective.get(key)
+        if twin is not None and not v.is_base:
+            out.append(dataclasses.replace(
+                filled, status=SKIPPED,
+                reason=f"same instruments as variant {twin}: last_lag = {v.spec.last_lag} "
+                       f"reaches past the deepest lag the {v.spec.sample.name} has "
+                       f"({panel.n_periods - 1}), which is last_lag = all"))
+            continue
+        effective.setdefault(key, v.id)
+        out.append(filled)
+    return out
+
+
+def _one_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split())
+    return text or type(exc).__name__
+
+
+def plan_table(spec: Spec, variants: Sequence[Variant]) -> pd.DataFrame:
+    """The plan as a table: id, order, base flag, varied settings, status, reason,
+    instruments, parameters, units, instruments per unit."""
+    columns = setting_columns(spec)
+    rows = []
+    for v in variants:
+        row = {"variant": v.id, "order": v.order, "is_base": v.is_base}
+        row.update(v.settings_dict())
+        ipu = (v.instruments / v.units) if (v.instruments is not None and v.units) else None
+        row.update({"status": v.status, "reason": v.reason, "instruments": v.instruments,
+                    "parameters": v.parameters, "units": v.units,
+                    "instruments_per_unit": ipu})
+        rows.append(row)
+    frame = pd.DataFrame(rows, columns=["variant", "order", "is_base", *columns, "status",
+                                        "reason", "instruments", "parameters", "units",
+                                        "instruments_per_unit"])
+    for col in ("instruments", "parameters", "units"):
+        frame[col] = frame[col].astype("Int64")
+    frame["instruments_per_unit"] = frame["instruments_per_unit"].astype(float)
+    return frame
+
+
+def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
+    """Plan the audit of ``spec`` without estimating (``robustgmm audit --plan``).
+
+    Loads the data when ``panel`` (the base sample's panel) is not given.
+    """
+    panels = load_panels(spec, panel)
+    return plan_table(spec, plan(spec, panels))
