@@ -1,0 +1,280 @@
+"""Command line: exit codes, one-line messages, the fit summary and JSON.
+
+Exit codes and the JSON layout are the design contract (design.md "Outputs").
+The fitted data is an invented AR(1) panel with an exogenous regressor
+(known truth rho = 0.5, beta = 1.0); the summary checks only that the numbers shown
+are the numbers of the result, and the estimate is checked loosely against the truth.
+"""
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from robustgmm import cli
+from robustgmm.cli import main
+
+MODEL = """\
+[data]
+file = "panel.csv"
+unit = "id"
+period = "year"
+
+[model]
+outcome = "y"
+outcome_lags = [1]
+
+[[model.regressors]]
+name = "x"
+lags = [0]
+role = "exogenous"
+
+[method]
+equations = "system"
+steps = 2
+
+[instruments]
+form = "collapsed"
+last_lag = 3
+"""
+
+
+def simulate(n=200, periods=8, rho=0.5, beta=1.0, seed=1):
+    """y_it = rho y_i,t-1 + beta x_it + a_i + e_it, started near its stationary mean."""
+    rng = np.random.default_rng(seed)
+    a = rng.normal(size=n)
+    x = rng.normal(size=(n, periods + 20))
+    y = np.zeros((n, periods + 20))
+    y[:, 0] = a / (1 - rho)
+    for t in range(1, periods + 20):
+        y[:, t] = rho * y[:, t - 1] + beta * x[:, t] + a + rng.normal(size=n)
+    rows = [(i, 2000 + t, y[i, t + 20], x[i, t + 20]) for i in range(n) for t in range(periods)]
+    return pd.DataFrame(rows, columns=["id", "year", "y", "x"])
+
+
+@pytest.fixture
+def project(tmp_path):
+    simulate().to_csv(tmp_path / "panel.csv", index=False)
+    (tmp_path / "model.toml").write_text(MODEL)
+    return tmp_path
+
+
+def run(args, capsys):
+    code = main([str(a) for a in args])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def assert_clean_error(code, err, *fragments):
+    assert code == 2
+    assert "Traceback" not in err
+    lines = err.strip().splitlines()
+    assert lines and all(line.startswith("robustgmm: error: ") for line in lines), err
+    for f in fragments:
+        assert f in err, err
+
+
+# -- fit -------------------------------------------------------------------------
+def test_fit_prints_summary_and_writes_contract_json(project, capsys):
+    out_json = project / "res" / "fit.json"
+    code, out, err = run(["fit", project / "model.toml", "--json", out_json], capsys)
+    assert code == 0, err
+    data = json.loads(out_json.read_text())
+    assert set(data) >= {"terms", "std_error_kind", "tests", "counts"}
+    assert set(data["tests"]) >= {"ar1", "ar2", "sargan", "hansen", "difference_hansen"}
+    assert set(data["counts"]) >= {"observations", "units", "instruments", "periods"}
+    rho = data["terms"]["y[t-1]"]
+    # known truth 0.5; 200 units, a loose band (about 4 standard errors)
+    assert abs(rho["estimate"] - 0.5) < 4 * rho["std_error"] + 0.02
+    # the summary shows the result's own numbers
+    assert f"{rho['estimate']:.4f}" in out and f"{rho['std_error']:.4f}" in out
+    assert f"{data['counts']['units']} units" in out
+    assert "AR(2)" in out and "Hansen" in out and "Sargan" in out
+    assert "does not prove the instruments valid" in out
+    assert "period dummies not shown" in out and "period[2005]" not in out
+    assert not list((project / "res").glob(".*.tmp"))   # atomic write left no temp file
+
+
+def test_fit_all_terms_lists_dummies(project, capsys):
+    code, out, _ = run(["fit", project / "model.toml", "--all-terms"], capsys)
+    assert code == 0 and "period[2005]" in out
+
+
+def test_fit_unestimable_model_is_exit_2(project, capsys):
+    df = pd.read_csv(project / "panel.csv")
+    df["z"] = df["id"] * 1.0          # constant within every unit
+    df.to_csv(project / "panel.csv", index=False)
+    text = MODEL.replace('name = "x"', 'name = "z"').replace("[method]", "[method]\n")
+    (project / "model.toml").write_text(text.replace('equations = "system"', 'equations = "difference"'))
+    code, _, err = run(["fit", project / "model.toml"], capsys)
+    assert_clean_error(code, err, "cannot estimate the model", "z[t]")
+
+
+def test_python_dash_m_and_version():
+    env = {**os.environ, "MPLBACKEND": "Agg"}
+    proc = subprocess.run([sys.executable, "-m", "robustgmm", "--version"],
+                          capture_output=True, text=True, env=env)
+    assert proc.returncode == 0 and proc.stdout.startswith("robustgmm ")
+    proc = subprocess.run([sys.executable, "-m", "robustgmm", "fit", "no/such/model.toml"],
+                          capture_output=True, text=True, env=env)
+    assert proc.returncode == 2
+    assert proc.stderr == "robustgmm: error: no/such/model.toml: model file not found\n"
+
+
+# -- command-line errors --------------------------------------------------------------
+def test_help_is_exit_0(capsys):
+    code, out, _ = run(["--help"], capsys)
+    assert code == 0 and "audit" in out
+
+
+@pytest.mark.parametrize("args,fragment", [
+    ([], "required: COMMAND"),
+    (["estimate", "m.toml"], "invalid choice: 'estimate'"),
+    (["fit"], "MODEL.toml"),
+    (["fit", "m.toml", "--jsn", "x.json"], "unrecognized arguments: --jsn"),
+    (["audit", "m.toml"], "--out"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "0"], "--jobs 0: must be a positive whole number"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "two"], "--jobs 'two'"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "-3"], "--jobs -3"),
+    (["demo", "--jobs", "1.5"], "--jobs '1.5'"),
+])
+def test_usage_errors_are_one_line(args, fragment, capsys):
+    code, out, err = run(args, capsys)
+    assert_clean_error(code, err, fragment)
+    assert len(err.strip().splitlines()) == 1
+
+
+def test_audit_refuses_foreign_non_empty_folder(project, capsys):
+    out = project / "mine"
+    out.mkdir()
+    (out / "thesis.docx").write_text("precious")
+    code, _, err = run(["audit", project / "model.toml", "--out", out], capsys)
+    assert_clean_error(code, err, str(out), "not empty", "--force")
+    assert sorted(p.name for p in out.iterdir()) == ["thesis.docx"]
+
+
+def test_audit_output_folder_that_is_a_file_or_below_a_file(project, capsys):
+    target = project / "panel.csv"
+    code, _, err = run(["audit", project / "model.toml", "--out", target], capsys)
+    assert_clean_error(code, err, "must be a folder")
+    code, _, err = run(["audit", project / "model.toml", "--out", target / "sub"], capsys)
+    assert_clean_error(code, err, f"{target / 'sub'}: cannot create the --out folder")
+
+
+@pytest.mark.skipif(hasattr(os, "geteuid") and os.geteuid() == 0,
+                    reason="root can write into read-only folders")
+def test_audit_read_only_folder(project, capsys):
+    out = project / "ro"
+    out.mkdir()
+    out.chmod(0o500)
+    try:
+        code, _, err = run(["audit", project / "model.toml", "--out", out], capsys)
+    finally:
+        out.chmod(0o700)
+    assert_clean_error(code, err, "cannot write into the --out folder")
+
+
+def test_report_needs_an_audit_folder(tmp_path, capsys):
+    code, _, err = run(["report", tmp_path / "nothing"], capsys)
+    assert_clean_error(code, err, "no such folder")
+    code, _, err = run(["report", tmp_path], capsys)
+    assert_clean_error(code, err, "manifest.json missing")
+
+
+def test_json_path_that_is_a_folder(project, capsys):
+    code, _, err = run(["fit", project / "model.toml", "--json", project], capsys)
+    assert_clean_error(code, err, "--json must name a file")
+
+
+def test_data_file_passed_as_model(project, capsys):
+    code, _, err = run(["fit", project / "panel.csv"], capsys)
+    assert_clean_error(code, err, "this is a data file")
+
+
+# -- internal errors and interrupts -----------------------------------------------------
+def test_internal_error_is_one_line_exit_1(project, capsys, monkeypatch):
+    def boom(*a, **k):
+        raise RuntimeError("unexpected\nstate")
+    monkeypatch.setattr("robustgmm.data.load_panel", boom)
+    monkeypatch.delenv(cli.DEBUG_ENV, raising=False)
+    code, _, err = run(["fit", project / "model.toml"], capsys)
+    assert code == 1 and "Traceback" not in err
+    assert err == ("robustgmm: internal error: RuntimeError: unexpected state "
+                   f"(set {cli.DEBUG_ENV}=1 to see the traceback)\n")
+    monkeypatch.setenv(cli.DEBUG_ENV, "1")
+    code, _, err = run(["fit", project / "model.toml"], capsys)
+    assert code == 1 and "Traceback" in err
+
+
+def test_keyboard_interrupt_is_130(project, capsys, monkeypatch):
+    def stop(*a, **k):
+        raise KeyboardInterrupt
+    monkeypatch.setattr("robustgmm.data.load_panel", stop)
+    code, _, err = run(["fit", project / "model.toml"], capsys)
+    assert code == 130 and err == "robustgmm: interrupted\n"
+
+
+# -- audit plumbing (audit module stubbed: this tests the CLI's wiring only) ----------------
+class _FakeResult:
+    def __init__(self, verdicts):
+        self.variants = pd.DataFrame({"status": ["ok", "ok", "failed"]})
+        self.verdict = {"terms": {k: {"verdict": v} for k, v in verdicts.items()}}
+
+
+@pytest.fixture
+def fake_audit(monkeypatch):
+    import types
+    calls = {}
+    mod = types.ModuleType("robustgmm.audit")
+
+    def audit(spec, *, jobs=None, cache_dir=None, progress=None):
+        calls["audit"] = dict(jobs=jobs, cache_dir=cache_dir, progress=progress)
+        return _FakeResult(calls.get("verdicts", {"y[t-1]": "robust"}))
+
+    def write_audit(result, out_dir, model_file=None):
+        calls["write"] = (Path(out_dir), model_file)
+        (Path(out_dir) / "manifest.json").write_text("{}")
+
+    mod.audit, mod.write_audit = audit, write_audit
+    monkeypatch.setitem(sys.modules, "robustgmm.audit", mod)
+    monkeypatch.setattr(cli, "_build_report_if_available", lambda out: calls.setdefault("report", out))
+    return calls
+
+
+def test_audit_wiring_and_fail_on_fragile(project, capsys, fake_audit):
+    out = project / "audit"
+    code, stdout, err = run(["audit", project / "model.toml", "--out", out, "--jobs", "2"], capsys)
+    assert code == 0, err
+    assert fake_audit["audit"] == {"jobs": 2, "cache_dir": out / ".cache", "progress": False}
+    assert fake_audit["write"][0] == out and fake_audit["report"] == out
+    assert "y[t-1]: robust" in stdout
+    fake_audit["verdicts"] = {"y[t-1]": "fragile", "x[t]": "robust"}
+    code, stdout, _ = run(["audit", project / "model.toml", "--out", out, "--no-cache"], capsys)
+    assert code == 0 and fake_audit["audit"]["cache_dir"] is None   # rerun into our own folder
+    code, stdout, _ = run(["audit", project / "model.toml", "--out", out, "--fail-on-fragile"], capsys)
+    assert code == 3 and "Fragile: y[t-1]" in stdout
+
+
+def test_interrupted_audit_folder_can_be_reused(project, capsys, fake_audit):
+    # an interrupted run leaves the marker and a cache but no manifest.json
+    out = project / "audit"
+    out.mkdir()
+    (out / cli.OUTPUT_MARKER).write_text("{}")
+    (out / ".cache").mkdir()
+    code, _, err = run(["audit", project / "model.toml", "--out", out], capsys)
+    assert code == 0, err
+
+
+def test_force_writes_into_foreign_folder(project, capsys, fake_audit):
+    out = project / "mine"
+    out.mkdir()
+    (out / "notes.txt").write_text("x")
+    code, _, err = run(["audit", project / "model.toml", "--out", out, "--force"], capsys)
+    assert code == 0, err
+    assert (out / "notes.txt").read_text() == "x"
