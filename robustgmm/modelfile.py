@@ -298,10 +298,10 @@ class _Parser:
             home = [sec for sec, keys in SECTIONS.items()
                     if key in keys and sec != where]
             hint = _closest(key, allowed)
-            if hint is not None:
-                msg = f"unknown key (did you mean {_fmt(hint)}?)"
-            elif home:
+            if home:  # a valid key in the wrong table: say where it goes
                 msg = f"unknown key here; it belongs in [{home[0]}]"
+            elif hint is not None:
+                msg = f"unknown key (did you mean {_fmt(hint)}?)"
             else:
                 msg = "unknown key; valid keys: " + ", ".join(allowed)
             prefix = f"{header} " if header else ""
