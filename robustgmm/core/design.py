@@ -31,8 +31,10 @@ Instruments (all zero where a row or a source value is missing):
   transformed value in the transformed equation and the first difference in the
   level equation (valid when the variable's correlation with the unit effect is
   constant over time, the same condition that system GMM imposes on the others).
-* time effects: the transformed period dummies in the transformed equation; the
-  constant and the period dummies in the level equation.
+* time effects: in difference GMM the transformed period dummies; in system GMM the
+  constant and the period dummies in the level equation only. Their moments in the
+  transformed equation would repeat the level ones (a differenced residual is the
+  difference of two level residuals), which makes the robust weight matrix singular.
 """
 from __future__ import annotations
 
@@ -314,7 +316,7 @@ class Design:
             if kind not in ("const", "dummy"):
                 continue
             label = self.x_labels_all[k]
-            if kind == "dummy":
+            if kind == "dummy" and not self.system:
                 c = new_col("time effects", TRANSFORMED, f"{label} (transformed)", dep=k)
                 for t in np.flatnonzero(rows_t_any):
                     entry(TRANSFORMED, t)["own"].append((k, c))
