@@ -376,6 +376,8 @@ COMMANDS = {"fit": cmd_fit, "audit": cmd_audit, "report": cmd_report,
 # entry point
 # ---------------------------------------------------------------------------
 def _error(line: str) -> None:
+    # one problem, one line: a stray line break inside a message must not split it
+    line = " ".join(str(line).splitlines())
     print(f"robustgmm: error: {line}", file=sys.stderr, flush=True)
 
 

@@ -75,12 +75,24 @@ def _fmt(value: Any, limit: int = 60) -> str:
     elif isinstance(value, (list, tuple)):
         text = "[" + ", ".join(_fmt(v, limit) for v in value) + "]"
     elif isinstance(value, dict):
-        text = "{" + ", ".join(f"{k} = {_fmt(v, limit)}" for k, v in value.items()) + "}"
+        text = "{" + ", ".join(f"{_key(k)} = {_fmt(v, limit)}" for k, v in value.items()) + "}"
     elif isinstance(value, float):
         text = repr(value)
     else:
         text = str(value)
+        if not text.isprintable():
+            text = json.dumps(text)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _key(key: Any) -> str:
+    """A key or name as shown in a message: bare when plain, else quoted and escaped
+    (so that a name holding a newline never splits a message line)."""
+    text = str(key)
+    if text and all(c.isprintable() for c in text) and not text.startswith(" ") \
+            and not text.endswith(" "):
+        return text
+    return json.dumps(text)
 
 
 def _closest(word: Any, options) -> str | None:
@@ -122,6 +134,8 @@ def v_name(v):
         raise _Bad("must not be empty")
     if v != v.strip():
         raise _Bad("has leading or trailing spaces")
+    if not all(c.isprintable() for c in v):
+        raise _Bad("holds a control character (e.g. a line break)")
     return v
 
 
@@ -305,7 +319,7 @@ class _Parser:
             else:
                 msg = "unknown key; valid keys: " + ", ".join(allowed)
             prefix = f"{header} " if header else ""
-            self.problems.append(f"{self.source}: {prefix}{key}: {msg}")
+            self.problems.append(f"{self.source}: {prefix}{_key(key)}: {msg}")
 
     def table(self, parent: dict, key: str, header: str) -> dict:
         value = parent.get(key, {})
@@ -344,9 +358,9 @@ class _Parser:
                 else:
                     msg = "unknown section; valid sections: " + ", ".join(
                         f"[{s}]" for s in SECTIONS)
-                self.problems.append(f"{self.source}: [{key}]: {msg}"
+                self.problems.append(f"{self.source}: [{_key(key)}]: {msg}"
                                      if isinstance(value, dict)
-                                     else f"{self.source}: {key}: {msg}")
+                                     else f"{self.source}: {_key(key)}: {msg}")
         fields: dict[str, Any] = {"source": self.source}
 
         data = self.table(d, "data", "[data]")
@@ -422,7 +436,7 @@ class _Parser:
         out = []
         for i, table in enumerate(value, start=1):
             label = table.get("name")
-            header = (f"[[model.regressors]] #{i} ({label})" if isinstance(label, str)
+            header = (f"[[model.regressors]] #{i} ({_key(label)})" if isinstance(label, str)
                       else f"[[model.regressors]] #{i}")
             self.unknown_keys(table, REGRESSOR_KEYS, "model.regressors", header)
             name = self.get(table, "name", header, v_name, required=True)
@@ -484,7 +498,7 @@ class _Parser:
             roles = self.table(table, "roles", "[audit.vary.roles]")
             pairs = []
             for reg, raw in roles.items():
-                got = self._vary_list(raw, v_role, f"[audit.vary.roles] {reg}")
+                got = self._vary_list(raw, v_role, f"[audit.vary.roles] {_key(reg)}")
                 if got is not None:
                     pairs.append((reg, got))
             values["roles"] = tuple(pairs)
@@ -499,7 +513,7 @@ class _Parser:
                 samples = []
                 for i, s in enumerate(raw, start=1):
                     label = s.get("name")
-                    head = (f"[[audit.vary.sample]] #{i} ({label})" if isinstance(label, str)
+                    head = (f"[[audit.vary.sample]] #{i} ({_key(label)})" if isinstance(label, str)
                             else f"[[audit.vary.sample]] #{i}")
                     samples.append(self.sample(s, head, "audit.vary.sample"))
                 values["samples"] = tuple(samples)
@@ -541,7 +555,7 @@ class _Parser:
                 "(period[1984]); rename the column", spec.outcome)
         seen: dict[str, int] = {}
         for i, reg in enumerate(spec.regressors, start=1):
-            header = f"[[model.regressors]] #{i} ({reg.name}) name"
+            header = f"[[model.regressors]] #{i} ({_key(reg.name)}) name"
             if reg.name == spec.outcome:
                 add(header, "is the outcome; its lags go in [model] outcome_lags", reg.name)
             elif reg.name in (spec.unit, spec.period):
@@ -598,12 +612,12 @@ class _Parser:
         for reg, _roles in vary.roles:
             if reg not in seen:
                 hint = _closest(reg, list(seen))
-                add(f"[audit.vary.roles] {reg}", "is not a regressor of the model"
+                add(f"[audit.vary.roles] {_key(reg)}", "is not a regressor of the model"
                     + (f" (did you mean {_fmt(hint)}?)" if hint else
                        ("; regressors: " + ", ".join(seen) if seen else "; the model has none")))
         names = [spec.sample.name]
         for i, s in enumerate(vary.samples, start=1):
-            head = f"[[audit.vary.sample]] #{i} ({s.name})"
+            head = f"[[audit.vary.sample]] #{i} ({_key(s.name)})"
             if s.name in names:
                 add(f"{head} name", "is used by another sample; give each a distinct name", s.name)
             names.append(s.name)
