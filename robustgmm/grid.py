@@ -24,9 +24,10 @@ stated, only when it cannot be estimated or would repeat another variant exactly
 * the sample restriction leaves no data;
 * fewer instruments than parameters (order condition; the counts are stated);
 * a ``last_lag`` that reaches past the deepest lag the panel has gives exactly the
-  instruments of ``last_lag = "all"`` (the instrument count is the same and the set
-  with a shorter window is a subset): when such a twin is in the grid the later one
-  is skipped as a duplicate of the earlier, so nothing is estimated twice.
+  estimation of ``last_lag = "all"`` (a level lagged ``P`` or more periods does not
+  exist on a ``P``-period calendar; see :func:`reaches_past_panel`): when such a
+  twin is in the grid the later one is skipped as a duplicate of the earlier, so
+  nothing is estimated twice.
 
 Everything else is estimable and is *planned*, even when a setting makes no
 difference on these data (e.g. collapsed vs per-period with two periods): the audit
@@ -34,8 +35,8 @@ shows that it made no difference rather than hiding the variant. Settings that a
 unusual but well defined (conventional errors with iterated weighting, one-step
 errors with ``errors = "conventional"``) are not impossible either.
 
-Instrument counts come from :func:`robustgmm.core.count_instruments` before any
-estimation (the plan that ``robustgmm audit --plan`` prints).
+Instrument and parameter counts come from the core before any estimation
+(:func:`design_counts`; the plan that ``robustgmm audit --plan`` prints).
 """
 from __future__ import annotations
 
@@ -304,20 +305,38 @@ def _core():
     return core
 
 
-def count_parameters(spec: Spec, panel) -> int:
-    """Number of coefficients of a variant.
+def design_counts(spec: Spec, panel) -> tuple[int, int]:
+    """(instruments, parameters) of a variant on its panel, before estimation.
 
-    Uses ``core.count_parameters`` when the core provides it. Otherwise the count of
-    regressor terms plus the constant (system GMM) is used: a lower bound (period
-    dummies, which instrument themselves, are left out), so the order-condition skip
-    is then necessary but not sufficient; the core's own ``EstimationError`` marks
-    the rest as failed.
+    Uses the core's moment-sum setup (``core.GMMProblem``: the instrument columns
+    left after dropping empty ones, and the coefficients left after dropping
+    collinear period dummies), which is also what ``core.count_instruments``
+    reports. Raises :class:`EstimationError` when the design cannot be built,
+    including the order condition (fewer instruments than parameters), whose
+    message states both counts.
     """
     core = _core()
-    counter = getattr(core, "count_parameters", None)
-    if counter is not None:
-        return int(counter(spec, panel))
-    return len(spec.regressor_terms()) + (1 if spec.equations == "system" else 0)
+    problem = getattr(core, "GMMProblem", None)
+    if problem is not None:
+        prob = problem(spec, panel)
+        return int(prob.L), int(prob.K)
+    n_instr = int(core.count_instruments(spec, panel))
+    return n_instr, int(core.count_parameters(spec, panel))
+
+
+def reaches_past_panel(spec: Spec, n_periods: int) -> bool:
+    """Whether ``last_lag`` gives exactly the ``"all"`` window on ``n_periods`` periods.
+
+    A level lagged ``n_periods`` or more does not exist on the calendar, so a window
+    ending there is the full window. Predetermined regressors use the window one
+    lag sooner (``last_lag - 1``), so with them ``last_lag = n_periods - 1`` still
+    differs from "all"; without them it is the same.
+    """
+    if spec.last_lag is None:
+        return False
+    has_predetermined = any(r.role == "predetermined" for r in spec.regressors)
+    deepest = n_periods if has_predetermined else n_periods - 1
+    return spec.last_lag >= deepest
 
 
 def _panel_checks(spec: Spec, panel) -> str:
@@ -358,8 +377,7 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
             out.append(dataclasses.replace(v, status=SKIPPED, reason=reason))
             continue
         try:
-            n_instr = int(core.count_instruments(v.spec, panel))
-            n_par = count_parameters(v.spec, panel)
+            n_instr, n_par = design_counts(v.spec, panel)
             mask = core.estimation_sample(v.spec, panel)
         except EstimationError as exc:
             out.append(dataclasses.replace(v, status=SKIPPED, reason=_one_line(exc)))
@@ -368,30 +386,24 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
         obs = int(mask.sum())
         filled = dataclasses.replace(v, instruments=n_instr, parameters=n_par,
                                      units=units, observations=obs)
-        if n_instr < n_par:
+        if n_instr < n_par:  # the core raises first; kept for other counters
             out.append(dataclasses.replace(
                 filled, status=SKIPPED,
                 reason=f"fewer instruments ({n_instr}) than parameters ({n_par}): "
-                       "the coefficients are not identified"))
+                       "the model is not identified"))
             continue
-        # a window reaching past the deepest lag is the "all" window: detect it by
-        # the instrument count (the shorter window's set is a subset of "all")
+        # a window reaching past the deepest lag is the "all" window
         eff_spec = v.spec
-        if v.spec.last_lag is not None:
-            all_spec = dataclasses.replace(v.spec, last_lag=None)
-            try:
-                if int(core.count_instruments(all_spec, panel)) == n_instr:
-                    eff_spec = all_spec
-            except EstimationError:
-                pass
+        if reaches_past_panel(v.spec, panel.n_periods):
+            eff_spec = dataclasses.replace(v.spec, last_lag=None)
         key = settings_hash(eff_spec)
         twin = effective.get(key)
         if twin is not None and not v.is_base:
             out.append(dataclasses.replace(
                 filled, status=SKIPPED,
-                reason=f"same instruments as variant {twin}: last_lag = {v.spec.last_lag} "
-                       f"reaches past the deepest lag the {v.spec.sample.name} has "
-                       f"({panel.n_periods - 1}), which is last_lag = all"))
+                reason=f"same estimation as variant {twin}: last_lag = {v.spec.last_lag} "
+                       f"reaches past the deepest lag of the {v.spec.sample.name} "
+                       f"({panel.n_periods} periods), which makes it last_lag = all"))
             continue
         effective.setdefault(key, v.id)
         out.append(filled)

@@ -1,0 +1,250 @@
+"""Audit one model: spec → panels → grid → runner → bounds → verdicts → tables.
+
+:func:`audit` returns an :class:`AuditResult` whose tables are the contract files
+(design.md, "Outputs"); :func:`write_audit` writes them atomically. Columns:
+
+``variants.csv`` — one row per variant, in plan order (base first): ``variant`` (stable
+id), ``order``, ``is_base``, every varied setting (``equations``, ``transform``,
+``steps``, ``errors``, ``form``, ``first_lag``, ``last_lag``, ``time_effects``,
+``role:NAME``, ``sample`` — only those varied), ``status`` (ok / failed / skipped),
+``reason``, ``instruments``, ``parameters``, ``units``, ``observations``,
+``instruments_per_unit``, ``hansen_p``, ``hansen_df``, ``sargan_p``, ``ar1_p``,
+``ar2_p``, ``diff_hansen_level_p`` (difference-in-Hansen of the level-equation
+instruments, system GMM), ``std_error_kind``, ``ar_term`` (the AR coefficient the
+band check uses: the single lag, or the sum of the lags), ``ar_coefficient``,
+``ar_ols``, ``ar_fe``, ``in_bounds``, ``acceptable`` and ``flags`` (variant rules of
+:mod:`robustgmm.verdicts` that fired), ``warnings``.
+
+``estimates.csv`` — one row per ok variant × term (all terms, including the constant
+and period dummies): ``variant``, ``term``, ``estimate``, ``std_error``, ``z``,
+``p_value``.
+
+``bounds.csv`` — one row per ok variant × AR term (and the sum of the AR terms when
+the outcome has several lags), base variant first: ``variant``, ``is_base``, ``term``,
+``ols``, ``ols_std_error``, ``fe``, ``fe_std_error`` (pooled OLS and within estimates
+on that variant's estimation sample, unit-clustered errors), ``gmm`` (the variant's
+estimate), ``in_bounds``, ``observations``, ``units``. The contract's one-row-per-term
+view is the ``is_base`` rows.
+
+``verdict.json`` — :func:`robustgmm.verdicts.judge`. ``manifest.json`` — package
+version, data hash(es), model file, settings, thresholds, run figures and timings.
+Everything but the manifest is identical whatever the number of jobs and whether
+results came from the cache.
+"""
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+import numpy as np
+import pandas as pd
+
+from . import __version__, grid, runner, verdicts
+from .grid import SKIPPED, plan_frame  # noqa: F401  (re-exported: robustgmm.audit.plan_frame)
+from .io import atomic_write_csv, atomic_write_json
+from .spec import Spec, settings_of
+
+__all__ = ["AuditResult", "audit", "write_audit", "plan_frame", "default_cache_dir"]
+
+
+@dataclass(frozen=True)
+class AuditResult:
+    """The audit of one model: the contract tables, the verdict and the manifest."""
+
+    variants: pd.DataFrame
+    estimates: pd.DataFrame
+    bounds: pd.DataFrame
+    verdict: Mapping[str, Any]
+    manifest: Mapping[str, Any]
+    spec: Spec | None = field(default=None, repr=False, compare=False)
+
+    def term_verdicts(self) -> dict[str, str]:
+        return {t: v["verdict"] for t, v in self.verdict["terms"].items()}
+
+
+def default_cache_dir(out_dir) -> Path:
+    """The cache folder the command line uses: inside the output folder, so that a
+    rerun with the same ``--out`` resumes."""
+    return Path(out_dir) / ".cache"
+
+
+def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool | None = False,
+          backend: str | None = None, panel=None, fit=None) -> AuditResult:
+    """Estimate every variant of ``spec`` and judge the focus terms.
+
+    ``jobs``: workers (None: every core). ``cache_dir``: folder of the variant cache
+    (None: no cache). ``progress``: tqdm bar on stderr (None: when it is a terminal).
+    ``backend``: a joblib backend name (default loky; "dask" with a distributed
+    client). ``panel``: the base sample's panel when already loaded. ``fit``: a
+    replacement estimator (tests).
+    """
+    t0 = time.perf_counter()
+    panels = grid.load_panels(spec, panel)
+    t_load = time.perf_counter()
+    planned = grid.plan(spec, panels)
+    t_plan = time.perf_counter()
+    outcomes, stats = runner.run_variants(planned, panels, jobs=jobs, cache_dir=cache_dir,
+                                          progress=progress, backend=backend, fit=fit)
+    t_run = time.perf_counter()
+    variants, estimates, bounds = _tables(spec, planned, outcomes)
+    verdict = verdicts.judge(spec, variants, estimates, bounds)
+    extra = verdicts.variant_columns(variants, spec)
+    variants = variants.assign(acceptable=extra["acceptable"], flags=extra["flags"])
+    variants = variants[[c for c in variants.columns if c != "warnings"] + ["warnings"]]
+    t_end = time.perf_counter()
+
+    base_panel = panels[grid.sample_key(spec.sample)]
+    manifest = {
+        "package": "robustgmm",
+        "version": __version__,
+        "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "model_file": spec.source,
+        "data_file": None if spec.data_file is None else str(spec.data_file),
+        "data_hash": getattr(base_panel, "data_hash", None),
+        "sample_hashes": {s.name: getattr(panels[grid.sample_key(s)], "data_hash", None)
+                          for s in grid.samples_of(spec)
+                          if not isinstance(panels[grid.sample_key(s)], str)},
+        "outcome": spec.outcome,
+        "base_variant": verdict.get("base_variant"),
+        "settings": dict(settings_of(spec)),
+        "spec": _spec_dict(spec),
+        "vary": grid.setting_columns(spec),
+        "focus": list(spec.focus_terms()),
+        "alpha": spec.alpha,
+        "thresholds": verdicts.threshold_values(spec),
+        "counts": verdict["variants"],
+        "run": stats.to_dict(),
+        "timings": {
+            "load_seconds": t_load - t0,
+            "plan_seconds": t_plan - t_load,
+            "run_seconds": t_run - t_plan,
+            "verdict_seconds": t_end - t_run,
+            "total_seconds": t_end - t0,
+        },
+        "environment": {"python": platform.python_version(), "numpy": np.__version__,
+                        "pandas": pd.__version__, "platform": platform.platform()},
+        "disclaimer": verdicts.DISCLAIMER,
+    }
+    return AuditResult(variants=variants, estimates=estimates, bounds=bounds,
+                       verdict=verdict, manifest=manifest, spec=spec)
+
+
+def _spec_dict(spec: Spec) -> dict | None:
+    to_dict = getattr(spec, "to_dict", None)
+    if to_dict is None:
+        return None
+    try:
+        return to_dict()
+    except Exception:  # the manifest must not fail an audit over a display detail
+        return None
+
+
+def _p(test) -> float:
+    return np.nan if not test or test.get("p_value") is None else float(test["p_value"])
+
+
+def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    columns = grid.setting_columns(spec)
+    vrows, erows, brows = [], [], []
+    for v in planned:
+        o = outcomes.get(v.id)
+        row: dict[str, Any] = {"variant": v.id, "order": v.order, "is_base": v.is_base}
+        row.update(v.settings_dict())
+        status = v.status if o is None else o.status
+        reason = v.reason if o is None else o.reason
+        row.update(status=status, reason=reason, instruments=v.instruments,
+                   parameters=v.parameters, units=v.units, observations=None)
+        fit = o.fit if (o is not None and o.status == runner.OK) else None
+        bnd = o.bounds if (o is not None and o.status == runner.OK) else None
+        row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, ar1_p=np.nan, ar2_p=np.nan,
+                   diff_hansen_level_p=np.nan, std_error_kind=None, ar_term=None,
+                   ar_coefficient=np.nan, ar_ols=np.nan, ar_fe=np.nan, in_bounds=None,
+                   warnings="")
+        if fit is not None:
+            c = fit["counts"]
+            tests = fit["tests"]
+            row.update(instruments=c.get("instruments"), parameters=c.get("parameters"),
+                       units=c.get("units"), observations=c.get("observations"),
+                       hansen_p=_p(tests.get("hansen")),
+                       hansen_df=(tests.get("hansen") or {}).get("df"),
+                       sargan_p=_p(tests.get("sargan")), ar1_p=_p(tests.get("ar1")),
+                       ar2_p=_p(tests.get("ar2")),
+                       diff_hansen_level_p=_p(fit["difference_hansen"].get(verdicts.LEVEL_GROUP)),
+                       std_error_kind=fit["std_error_kind"],
+                       warnings=" | ".join(fit.get("warnings", [])))
+            gmm = {t["term"]: t["estimate"] for t in fit["terms"]}
+            for t in fit["terms"]:
+                erows.append({"variant": v.id, "term": t["term"], "estimate": t["estimate"],
+                              "std_error": t["std_error"], "z": t["z"], "p_value": t["p_value"]})
+            if "ar_sum" in fit:
+                from .bounds import sum_label
+                gmm[sum_label(spec)] = fit["ar_sum"]["estimate"]
+            if bnd is not None and "terms" in bnd:
+                for b in bnd["terms"]:
+                    est = gmm.get(b["term"], np.nan)
+                    brows.append({"variant": v.id, "is_base": v.is_base, "term": b["term"],
+                                  "ols": b["ols"], "ols_std_error": b["ols_std_error"],
+                                  "fe": b["fe"], "fe_std_error": b["fe_std_error"],
+                                  "gmm": est, "in_bounds": _inside(est, b["ols"], b["fe"]),
+                                  "observations": bnd["observations"], "units": bnd["units"]})
+                pers = next(b for b in bnd["terms"] if b["term"] == bnd["persistence"])
+                est = gmm.get(pers["term"], np.nan)
+                row.update(ar_term=pers["term"], ar_coefficient=est, ar_ols=pers["ols"],
+                           ar_fe=pers["fe"], in_bounds=_inside(est, pers["ols"], pers["fe"]))
+            elif bnd is not None:
+                row["warnings"] = " | ".join(filter(None, [row["warnings"],
+                                                           "bounds: " + bnd.get("error", "")]))
+        row["instruments_per_unit"] = (row["instruments"] / row["units"]
+                                       if row["instruments"] is not None and row["units"] else np.nan)
+        vrows.append(row)
+
+    lead = ["variant", "order", "is_base", *columns, "status", "reason", "instruments",
+            "parameters", "units", "observations", "instruments_per_unit", "hansen_p",
+            "hansen_df", "sargan_p", "ar1_p", "ar2_p", "diff_hansen_level_p", "std_error_kind",
+            "ar_term", "ar_coefficient", "ar_ols", "ar_fe", "in_bounds", "warnings"]
+    variants = pd.DataFrame(vrows, columns=lead)
+    for col in ("instruments", "parameters", "units", "observations", "hansen_df"):
+        variants[col] = variants[col].astype("Int64")
+    variants["in_bounds"] = variants["in_bounds"].astype("boolean")
+    estimates = pd.DataFrame(erows, columns=["variant", "term", "estimate", "std_error", "z",
+                                             "p_value"])
+    bounds = pd.DataFrame(brows, columns=["variant", "is_base", "term", "ols", "ols_std_error",
+                                          "fe", "fe_std_error", "gmm", "in_bounds",
+                                          "observations", "units"])
+    if len(bounds):
+        # base rows first (the contract's one-row-per-term view), then plan order
+        bounds = bounds.sort_values("is_base", ascending=False, kind="mergesort")
+        bounds = bounds.reset_index(drop=True)
+    bounds["in_bounds"] = bounds["in_bounds"].astype("boolean")
+    return variants, estimates, bounds
+
+
+def _inside(est, ols, fe) -> bool | None:
+    vals = [est, ols, fe]
+    if any(v is None or not np.isfinite(v) for v in vals):
+        return None
+    return bool(min(ols, fe) <= est <= max(ols, fe))
+
+
+def write_audit(result: AuditResult, out_dir, *, model_file=None) -> Path:
+    """Write variants.csv, estimates.csv, bounds.csv, verdict.json and manifest.json
+    into ``out_dir`` (created if needed), each atomically; the manifest last, so a
+    folder with a manifest holds a complete audit."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    atomic_write_csv(out / "variants.csv", result.variants)
+    atomic_write_csv(out / "estimates.csv", result.estimates)
+    atomic_write_csv(out / "bounds.csv", result.bounds)
+    atomic_write_json(out / "verdict.json", result.verdict)
+    manifest = dict(result.manifest)
+    if model_file is not None:
+        manifest["model_file"] = str(model_file)
+    manifest["files"] = ["variants.csv", "estimates.csv", "bounds.csv", "verdict.json",
+                         "manifest.json"]
+    atomic_write_json(out / "manifest.json", manifest)
+    return out

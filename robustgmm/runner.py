@@ -1,0 +1,393 @@
+"""Run the variants of an audit: joblib over variants, on-disk cache, progress bar.
+
+* **Parallel**: one joblib task per variant. The default backend is loky (processes)
+  with ``jobs`` workers (default: every core, except that an audit too small to
+  repay starting worker processes — judged by timing its first variant against
+  :data:`WORKER_STARTUP_SECONDS` — runs in this process); each worker's BLAS is limited to
+  ``cores // workers`` threads through joblib's ``inner_max_num_threads``, so two
+  workers on two cores do not oversubscribe them. Any other joblib backend works
+  the same way: pass ``backend="dask"`` (or run the audit inside
+  ``joblib.parallel_config("dask")`` / ``parallel_backend("dask")``), with a
+  ``dask.distributed`` client, and the variants run on the cluster. Dask is not
+  required otherwise.
+* **Determinism**: each variant is estimated on its own, from the same inputs,
+  whatever the number of workers; results are returned in plan order.
+* **Panels**: the panel of each sample is built once by the caller and shared by
+  every variant of that sample; tasks are dispatched grouped by sample and by
+  instrument family (settings other than ``steps`` and ``errors``), so siblings that
+  could share moment matrices run next to each other.
+* **Cache**: one JSON file per variant under ``cache_dir``, named by a key that
+  hashes the data (the panel's content hash), the variant's canonical estimation
+  settings and the package version. The file stores the result with a sha256 of its
+  canonical text; an entry that does not parse or whose checksum does not match is
+  treated as missing and recomputed (and counted as corrupted). Entries are written
+  atomically by the parent process as soon as each result arrives, so an interrupted
+  audit (Ctrl-C, a killed worker) resumes where it stopped and an unchanged rerun
+  estimates nothing. Variants that fail with :class:`EstimationError` (a property of
+  the model and data) are cached as failed; unexpected errors are not cached, so a
+  rerun tries them again.
+* **Failure isolation**: an exception in a variant marks it ``failed`` with a one-line
+  reason; the other variants go on.
+"""
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import math
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterable, Mapping, Sequence
+
+import joblib
+import numpy as np
+
+from . import __version__
+from .errors import EstimationError
+from .grid import PLANNED, Variant, canonical_json, canonical_settings, sample_key
+from .io import atomic_write_text
+
+CACHE_FORMAT = 1
+OK, FAILED = "ok", "failed"
+#: Rough cost of starting loky workers (process start and imports of numpy, scipy and
+#: the package; 1–5 s measured on a loaded 2-core machine). With ``jobs=None`` an
+#: audit whose estimated sequential time is below this runs in-process.
+WORKER_STARTUP_SECONDS = 2.0
+
+
+# ---------------------------------------------------------------------------
+# results of one variant as plain JSON-able records
+# ---------------------------------------------------------------------------
+def _num(x) -> float | None:
+    """A float for a record; NaN/inf are kept as NaN (JSON ``NaN``) but None stays None."""
+    if x is None:
+        return None
+    return float(x)
+
+
+def _test(t) -> dict | None:
+    if t is None:
+        return None
+    return {"statistic": _num(t.statistic), "p_value": _num(t.p_value),
+            "df": None if getattr(t, "df", None) is None else int(t.df)}
+
+
+def fit_record(result, spec) -> dict:
+    """The parts of a :class:`~robustgmm.core.FitResult` an audit keeps, as plain values.
+
+    Adds the sum of the autoregressive coefficients with its standard error
+    ``sqrt(1' V 1)`` from the variant's covariance when the outcome has several lags.
+    """
+    terms = [{"term": t.label, "estimate": _num(t.estimate), "std_error": _num(t.std_error),
+              "z": _num(t.z), "p_value": _num(t.p_value)} for t in result.terms]
+    counts = result.counts
+    record = {
+        "terms": terms,
+        "std_error_kind": result.std_error_kind,
+        "tests": {name: _test(result.tests.get(name)) for name in ("ar1", "ar2", "sargan", "hansen")},
+        "difference_hansen": {g: _test(t) for g, t in result.difference_hansen.items()},
+        "counts": {k: int(getattr(counts, k)) for k in
+                   ("observations", "units", "instruments", "periods", "parameters")
+                   if hasattr(counts, k)},
+        "warnings": list(result.warnings),
+    }
+    ar = list(spec.ar_terms())
+    labels = [t.label for t in result.terms]
+    if len(ar) > 1 and all(a in labels for a in ar):
+        idx = [labels.index(a) for a in ar]
+        vcov = np.asarray(result.vcov, dtype=float)
+        est = float(sum(result.terms[i].estimate for i in idx))
+        var = float(vcov[np.ix_(idx, idx)].sum())
+        record["ar_sum"] = {"estimate": est, "std_error": math.sqrt(var) if var >= 0 else math.nan}
+    return record
+
+
+def estimate_variant(spec, panel, fit: Callable | None = None,
+                     sample: Callable | None = None) -> dict:
+    """Estimate one variant and its OLS/within bounds; never raises for a bad variant.
+
+    Returns ``{"status", "reason", "fit", "bounds", "seconds", "cacheable"}``. ``fit``
+    and ``sample`` default to :func:`robustgmm.core.fit` and
+    :func:`robustgmm.core.estimation_sample` (the parameters exist for tests).
+    """
+    from . import bounds as bounds_mod
+
+    if fit is None or sample is None:
+        from . import core
+        fit = fit or core.fit
+        sample = sample or core.estimation_sample
+    start = time.perf_counter()
+    out: dict[str, Any] = {"status": OK, "reason": "", "fit": None, "bounds": None,
+                           "cacheable": True}
+    try:
+        result = fit(spec, panel)
+        out["fit"] = fit_record(result, spec)
+    except EstimationError as exc:
+        out.update(status=FAILED, reason=one_line(exc))
+    except Exception as exc:  # a bug or a numerical breakdown: isolate it, do not cache
+        out.update(status=FAILED, reason=f"{type(exc).__name__}: {one_line(exc)}",
+                   cacheable=False)
+    if out["status"] == OK:
+        try:
+            out["bounds"] = bounds_mod.ar_bounds(spec, panel, sample(spec, panel)).to_dict()
+        except EstimationError as exc:
+            out["bounds"] = {"error": one_line(exc)}
+        except Exception as exc:
+            out["bounds"] = {"error": f"{type(exc).__name__}: {one_line(exc)}"}
+    out["seconds"] = time.perf_counter() - start
+    return out
+
+
+def one_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split())
+    return text or type(exc).__name__
+
+
+# ---------------------------------------------------------------------------
+# cache
+# ---------------------------------------------------------------------------
+class Cache:
+    """One checksummed JSON file per variant (see the module docstring)."""
+
+    def __init__(self, directory):
+        self.directory = Path(directory)
+        self.directory.mkdir(parents=True, exist_ok=True)
+        self.corrupted = 0
+
+    @staticmethod
+    def key(data_hash: str, spec) -> str:
+        text = canonical_json({"format": CACHE_FORMAT, "version": __version__,
+                               "data": data_hash, "settings": canonical_settings(spec)})
+        return hashlib.sha256(text.encode()).hexdigest()
+
+    def path(self, key: str) -> Path:
+        return self.directory / f"{key}.json"
+
+    def load(self, key: str) -> dict | None:
+        path = self.path(key)
+        try:
+            text = path.read_text(encoding="utf-8")
+        except FileNotFoundError:
+            return None
+        except OSError:
+            self.corrupted += 1
+            return None
+        try:
+            entry = json.loads(text)
+            payload = entry["payload"]
+            ok = (entry.get("key") == key and entry.get("format") == CACHE_FORMAT
+                  and entry.get("sha256") == _checksum(payload))
+        except (ValueError, KeyError, TypeError, AttributeError):
+            ok = False
+        if not ok:
+            self.corrupted += 1  # recomputed and overwritten by the caller
+            return None
+        return payload
+
+    def store(self, key: str, variant_id: str, payload: dict) -> None:
+        entry = {"format": CACHE_FORMAT, "key": key, "version": __version__,
+                 "variant": variant_id, "sha256": _checksum(payload), "payload": payload}
+        atomic_write_text(self.path(key), json.dumps(entry, allow_nan=True) + "\n")
+
+
+def _checksum(payload: dict) -> str:
+    return hashlib.sha256(canonical_json(payload).encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Outcome:
+    """What happened to one planned variant."""
+
+    variant: str
+    status: str
+    reason: str
+    fit: dict | None
+    bounds: dict | None
+    seconds: float
+    cached: bool
+
+
+@dataclass(frozen=True)
+class RunStats:
+    """Figures of one run (for the manifest and the benchmark)."""
+
+    variants: int
+    computed: int
+    cached: int
+    corrupted: int
+    failed: int
+    jobs: int
+    backend: str
+    wall_seconds: float
+    variant_seconds: float  # sum of the per-variant estimation times (workers' clocks)
+    extra: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        out = {k: getattr(self, k) for k in ("variants", "computed", "cached", "corrupted",
+                                             "failed", "jobs", "backend", "wall_seconds",
+                                             "variant_seconds")}
+        out["variants_per_second"] = (self.computed / self.wall_seconds
+                                      if self.computed and self.wall_seconds > 0 else None)
+        out.update(self.extra)
+        return out
+
+
+def _family_key(spec) -> str:
+    """Settings that fix the instrument set and transform (not steps/errors)."""
+    s = canonical_settings(spec)
+    s.pop("steps"); s.pop("errors")
+    return canonical_json(s)
+
+
+def _is_loky(backend_obj) -> bool:
+    return type(backend_obj).__name__ == "LokyBackend"
+
+
+def _default_is_loky() -> bool:
+    """True unless the caller activated another joblib backend (e.g. dask)."""
+    return _is_loky(joblib.parallel.get_active_backend()[0])
+
+
+@contextlib.contextmanager
+def _backend_context(backend: str | None, n_workers: int):
+    """The joblib configuration of a run.
+
+    ``backend=None`` keeps whatever backend the caller activated (e.g. dask through
+    ``joblib.parallel_config``) and otherwise uses loky. With loky, BLAS threads per
+    worker are capped at ``cores // workers`` (joblib sets the usual thread-count
+    environment variables in the worker processes).
+    """
+    if backend is None:
+        active, _ = joblib.parallel.get_active_backend()
+        backend = "loky" if _is_loky(active) else None
+    if backend is None:
+        yield _backend_name(joblib.parallel.get_active_backend()[0])
+    elif backend == "loky":
+        threads = max(1, joblib.cpu_count() // max(n_workers, 1))
+        with joblib.parallel_config(backend="loky", inner_max_num_threads=threads):
+            yield "loky"
+    else:
+        with joblib.parallel_config(backend=backend):
+            yield backend
+
+
+def _backend_name(obj) -> str:
+    name = type(obj).__name__
+    return name[:-len("Backend")].lower() if name.endswith("Backend") else name
+
+
+def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
+                 jobs: int | None = None, cache_dir=None, progress: bool | None = False,
+                 backend: str | None = None, fit: Callable | None = None,
+                 sample: Callable | None = None) -> tuple[dict[str, Outcome], RunStats]:
+    """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
+
+    ``panels`` maps :func:`robustgmm.grid.sample_key` to the sample's panel.
+    ``jobs``: worker count (None or -1: every core; 1: in this process).
+    ``progress``: a tqdm bar on stderr (None: only when stderr is a terminal).
+    ``fit``/``sample``: replacements for the core's functions (tests).
+    """
+    start = time.perf_counter()
+    todo = [v for v in variants if v.status == PLANNED]
+    cache = Cache(cache_dir) if cache_dir is not None else None
+    outcomes: dict[str, Outcome] = {}
+    keys: dict[str, str] = {}
+    pending = []
+    for v in todo:
+        panel = panels[sample_key(v.spec.sample)]
+        if cache is not None:
+            keys[v.id] = cache.key(panel.data_hash, v.spec)
+            payload = cache.load(keys[v.id])
+            if payload is not None:
+                outcomes[v.id] = _outcome(v.id, payload, cached=True)
+                continue
+        pending.append(v)
+    # siblings next to each other: same panel, then same instrument family
+    pending.sort(key=lambda v: (sample_key(v.spec.sample), _family_key(v.spec), v.order))
+
+    n_jobs = -1 if jobs is None else int(jobs)
+    if progress is None:
+        progress = sys.stderr.isatty()
+    bar = None
+    if progress:
+        from tqdm import tqdm
+        bar = tqdm(total=len(todo), initial=len(outcomes), file=sys.stderr,
+                   desc="variants", unit="variant", leave=False)
+
+    def record(vid, payload):
+        cacheable = payload.pop("cacheable", True)
+        if cache is not None and cacheable:
+            cache.store(keys[vid], vid, payload)
+        outcomes[vid] = _outcome(vid, payload, cached=False)
+        if bar is not None:
+            bar.update(1)
+
+    backend_used = "in-process"
+    n_workers = 1
+    try:
+        if pending and jobs is None and backend is None and _default_is_loky():
+            # jobs not set: time the first variant here; when the whole audit would
+            # take less than starting worker processes costs, stay in this process
+            first = pending.pop(0)
+            record(first.id, estimate_variant(first.spec, panels[sample_key(first.spec.sample)],
+                                              fit, sample))
+            if len(pending) * outcomes[first.id].seconds < WORKER_STARTUP_SECONDS:
+                n_jobs = 1
+        if pending:
+            n_workers = joblib.effective_n_jobs(n_jobs)
+            with _backend_context(backend, n_workers) as backend_used:
+                n_workers = joblib.effective_n_jobs(n_jobs)  # as the active backend sees it
+                tasks = (joblib.delayed(_task)(v.id, v.spec, panels[sample_key(v.spec.sample)],
+                                               fit, sample) for v in pending)
+                for vid, payload in _parallel(n_jobs)(tasks):
+                    record(vid, payload)
+            if n_workers == 1:
+                backend_used = "in-process"
+    except Exception as exc:
+        if type(exc).__name__ == "TerminatedWorkerError":
+            done = sum(1 for o in outcomes.values() if not o.cached)
+            raise RuntimeError(
+                f"a worker process died (killed or out of memory) after {done} of "
+                f"{len(pending)} variants were estimated"
+                + ("; the finished ones are cached: rerun to resume" if cache else "")) from exc
+        raise
+    finally:
+        if bar is not None:
+            bar.close()
+    ordered = {v.id: outcomes[v.id] for v in todo}
+    stats = RunStats(
+        variants=len(todo),
+        computed=sum(1 for o in ordered.values() if not o.cached),
+        cached=sum(1 for o in ordered.values() if o.cached),
+        corrupted=cache.corrupted if cache else 0,
+        failed=sum(1 for o in ordered.values() if o.status == FAILED),
+        jobs=n_workers,
+        backend=backend_used,
+        wall_seconds=time.perf_counter() - start,
+        variant_seconds=sum(o.seconds for o in ordered.values() if not o.cached),
+    )
+    return ordered, stats
+
+
+def _parallel(n_jobs: int) -> joblib.Parallel:
+    # results stream back as they finish, so each is cached at once (resume)
+    try:
+        return joblib.Parallel(n_jobs=n_jobs, return_as="generator_unordered")
+    except ValueError:  # a backend without unordered generators
+        return joblib.Parallel(n_jobs=n_jobs, return_as="generator")
+
+
+def _task(vid: str, spec, panel, fit, sample):
+    return vid, estimate_variant(spec, panel, fit, sample)
+
+
+def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:
+    return Outcome(variant=vid, status=payload["status"], reason=payload["reason"],
+                   fit=payload.get("fit"), bounds=payload.get("bounds"),
+                   seconds=float(payload.get("seconds", 0.0)), cached=cached)
