@@ -35,10 +35,13 @@ def _grid(n_variants: int):
 
 
 def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
-                     failed: int = 1, truth: bool = False, seed: int = 1) -> Path:
+                     failed: int = 1, truth: bool = False, seed: int = 1,
+                     role_column: str | None = None) -> Path:
     """Write variants.csv, estimates.csv, bounds.csv, verdict.json, manifest.json.
 
-    ``fragile_term`` may contain markup (to test escaping). The first variant is the
+    ``fragile_term`` and ``role_column`` (the name of an extra varied setting
+    column, e.g. a regressor-role column) may contain markup (to test escaping). The
+    first variant is the
     base model; when ``failed`` > 0 and there are enough variants, the last ``failed``
     variants are marked failed with a reason and no estimates.
     """
@@ -68,6 +71,8 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
             "ar2_p": float(rng.uniform(0.01, 0.9)) if ok else np.nan,
             "is_base": i == 0,
         }
+        if role_column is not None:
+            row[role_column] = "predetermined" if i % 3 == 1 else "endogenous"
         rho = 0.55 + (0.1 if settings["equations"] == "system" else -0.12) + rng.normal(0, 0.02)
         row["in_bounds"] = bool(0.35 < rho < 0.75) if ok else np.nan
         row["ar_coefficient"] = rho if ok else np.nan

@@ -398,7 +398,8 @@ def read_audit_folder(out_dir) -> AuditFolder:
     variants["status"] = variants["status"].astype(str).str.strip().str.lower()
     if "reason" not in variants.columns:
         variants["reason"] = ""
-    variants["reason"] = variants["reason"].fillna("").astype(str)
+    variants["reason"] = variants["reason"].astype(object).where(
+        variants["reason"].notna(), "").astype(str)
     estimates = estimates.copy()
     estimates["variant"] = estimates["variant"].astype(str)
     estimates["term"] = estimates["term"].astype(str)

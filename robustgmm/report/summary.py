@@ -5,6 +5,7 @@ so that they can never disagree with each other or with ``estimates.csv``.
 """
 from __future__ import annotations
 
+import json
 import math
 from dataclasses import dataclass
 from typing import Any
@@ -259,3 +260,88 @@ def threshold_text(value) -> str:
     if isinstance(value, float):
         return f"{value:g}"
     return str(value)
+
+
+# ---------------------------------------------------------------------------
+# tables shared by the HTML and Markdown reports
+
+@dataclass(frozen=True)
+class Cell:
+    text: str
+    sort: Any = None  # raw value for sorting (numbers stay numbers)
+
+
+def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str, list[Cell]]]]:
+    """Headers and rows ``(is_base, status, cells)`` of the variants table: id,
+    settings, status and reason, counts, test p-values, then each focus term's
+    estimate with its standard error."""
+    v = audit.variants
+    settings = list(audit.setting_columns)
+    headers = (["variant"] + [setting_name(c) for c in settings]
+               + ["status", "reason", "instruments", "units", "observations",
+                  "Hansen p", "Sargan p", "AR(1) p", "AR(2) p"]
+               + [f"{t} (s.e.)" for t in audit.focus])
+    est = audit.estimates.set_index(["variant", "term"])
+    rows = []
+    for _, r in v.iterrows():
+        cells = [Cell(r["variant"] + (" (base)" if r["variant"] == audit.base_variant else ""),
+                      r["variant"])]
+        cells += [Cell(value_text(r[c]), value_text(r[c])) for c in settings]
+        cells += [Cell(r["status"], r["status"]), Cell(r["reason"], r["reason"])]
+        cells += [Cell(fmt_int(r[c]), _num(r[c])) for c in ("instruments", "units", "observations")]
+        cells += [Cell(fmt_p(r[c]), _num(r[c])) for c in ("hansen_p", "sargan_p", "ar1_p", "ar2_p")]
+        for term in audit.focus:
+            key = (r["variant"], term)
+            if key in est.index:
+                e = est.loc[key]
+                if isinstance(e, pd.DataFrame):
+                    e = e.iloc[0]
+                cells.append(Cell(f"{fmt(e['estimate'])} ({fmt(e['std_error'])})",
+                                  _num(e["estimate"])))
+            else:
+                cells.append(Cell("", None))
+        rows.append((r["variant"] == audit.base_variant, r["status"], cells))
+    return headers, rows
+
+
+def _num(x):
+    try:
+        x = float(x)
+    except (TypeError, ValueError):
+        return None
+    return None if math.isnan(x) else x
+
+
+def rule_catalogue(audit: AuditFolder) -> list[Rule]:
+    """Every rule the audit applies: the catalogue in verdict.json when it has one,
+    else every rule mentioned in it (fired or not), once per id."""
+    seen: dict[str, Rule] = {}
+    for rule in audit.rule_catalogue:
+        seen.setdefault(rule.id, rule)
+    for tv in audit.term_verdicts:
+        for rule in tv.rules:
+            if rule.id not in seen or (not seen[rule.id].source and rule.source):
+                seen[rule.id] = rule
+    for rule in audit.model_flags:
+        if rule.id not in seen or (not seen[rule.id].source and rule.source):
+            seen[rule.id] = rule
+    return list(seen.values())
+
+
+def provenance_items(manifest, prefix: str = "") -> list[tuple[str, str]]:
+    """The manifest flattened to ``(dotted key, text)`` pairs, in file order."""
+    out: list[tuple[str, str]] = []
+    if isinstance(manifest, dict):
+        for key, value in manifest.items():
+            name = f"{prefix}{key}"
+            if isinstance(value, dict) and value:
+                out.extend(provenance_items(value, name + "."))
+            elif isinstance(value, float):
+                out.append((name, f"{value:g}"))
+            elif isinstance(value, (list, tuple)):
+                out.append((name, ", ".join(str(x) for x in value) if all(
+                    not isinstance(x, (dict, list)) for x in value) else
+                    json.dumps(value)))
+            else:
+                out.append((name, "" if value is None else str(value)))
+    return out

@@ -1,0 +1,50 @@
+"""The audit report: figures, report.html, report.md, table.tex, referee.txt.
+
+Everything is rebuilt from the files of an audit output folder (variants.csv,
+estimates.csv, bounds.csv, verdict.json, manifest.json; optional truth.json), never
+by re-estimating, so ``robustgmm report DIR`` can restyle an old audit::
+
+    from robustgmm.report import build_report
+    paths = build_report("audit_out")   # -> [Path(...)/"report.html", ...]
+
+Modules: :mod:`.inputs` reads and checks the folder, :mod:`.summary` computes the
+shared numbers, :mod:`.figures` draws, :mod:`.html`, :mod:`.markdown`,
+:mod:`.latex` and :mod:`.referee` write the documents.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..io import atomic_write_text
+from .context import build_context
+from .figures import render_figures
+from .html import render_html
+from ..errors import InputError
+from .inputs import AuditFolder, read_audit_folder
+from .latex import render_latex
+from .markdown import render_markdown
+from .referee import referee_paragraph, referee_text
+from .summary import summarize
+
+__all__ = ["build_report", "read_audit_folder", "AuditFolder", "InputError",
+           "referee_paragraph", "summarize"]
+
+
+def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
+    """Write every report document into ``out_dir`` from the audit files there.
+
+    Returns the paths written: figures (``figures/*.png|svg|pdf``), ``report.html``,
+    ``report.md``, ``table.tex``, ``referee.txt``. Raises
+    :class:`~robustgmm.errors.InputError` naming each missing file or column when
+    ``out_dir`` is not an audit output folder. Every file is written atomically."""
+    out = Path(out_dir)
+    audit = read_audit_folder(out)
+    summary = summarize(audit)
+    figures = render_figures(audit, out / "figures", formats=formats)
+    context = build_context(audit, figures, summary)
+    written = [p for f in figures for p in f.paths]
+    written.append(atomic_write_text(out / "report.html", render_html(context)))
+    written.append(atomic_write_text(out / "report.md", render_markdown(context)))
+    written.append(atomic_write_text(out / "table.tex", render_latex(audit, summary)))
+    written.append(atomic_write_text(out / "referee.txt", referee_text(audit, summary)))
+    return written

@@ -1,0 +1,121 @@
+"""report.md: the HTML report's content as Markdown, for plain-text review.
+
+Term labels and other user text go into code spans (which Markdown renderers never
+interpret as markup) or are escaped; figures are linked from ``figures/``.
+"""
+from __future__ import annotations
+
+import re
+
+_ENTITY = re.compile(r"&(?=#?[A-Za-z0-9]+;?)")
+_TAG = re.compile(r"<(?=[A-Za-z/!?])")
+_SPECIAL = re.compile(r"([\\`*_{}\[\]|~])")
+
+
+def esc(text) -> str:
+    """Escape Markdown punctuation and the HTML specials in running text/cells."""
+    # Only what could start raw HTML or an entity is turned into an entity, so that
+    # "p <0.001" and "Simmons & Nelson" stay readable in the plain file.
+    text = _ENTITY.sub("&amp;", str(text))
+    text = _TAG.sub("&lt;", text)
+    text = _SPECIAL.sub(r"\\\1", text)
+    return text.replace("\r", " ").replace("\n", " ")
+
+
+def code(text) -> str:
+    """A code span that survives backticks inside ``text`` (CommonMark rule)."""
+    text = str(text).replace("\n", " ")
+    ticks = max((len(m) for m in re.findall(r"`+", text)), default=0) + 1
+    fence = "`" * ticks
+    pad = " " if text.startswith("`") or text.endswith("`") else ""
+    return f"{fence}{pad}{text}{pad}{fence}"
+
+
+def _table(headers, rows) -> list[str]:
+    out = ["| " + " | ".join(esc(h) for h in headers) + " |",
+           "|" + "|".join("---" for _ in headers) + "|"]
+    for row in rows:
+        out.append("| " + " | ".join(row) + " |")
+    return out
+
+
+def _rule_lines(rule: dict) -> list[str]:
+    line = f"- **{esc(rule['id'])}**"
+    if rule["description"]:
+        line += f": {esc(rule['description'])}"
+    if rule["figures"]:
+        line += f" — {esc(rule['figures'])}"
+    out = [line]
+    if rule["source"] or rule["threshold"]:
+        extra = f"threshold {esc(rule['threshold'])}; " if rule["threshold"] else ""
+        out.append(f"  ({extra}source: {esc(rule['source'] or 'not stated')})")
+    return out
+
+
+def render_markdown(ctx: dict) -> str:
+    """The report as Markdown from :func:`robustgmm.report.context.build_context`."""
+    md: list[str] = [f"# {esc(ctx['title'])}", "", esc(ctx["subtitle"]), "",
+                     f"> **Caution.** {esc(ctx['caution'])}", "",
+                     "## Verdict per focus term", ""]
+    for t in ctx["terms"]:
+        md.append(f"### {code(t['term'])}: **{(t['verdict'] or 'no verdict').upper()}**")
+        md.append("")
+        md.append(f"- Base model: **{esc(t['base'])}** (s.e. {esc(t['base_se'])}, "
+                  f"p {esc(t['base_p'])})")
+        md.append(f"- Range over {t['n']} estimated variants: {esc(t['low'])} to "
+                  f"{esc(t['high'])} (median {esc(t['median'])})")
+        md.append(f"- Positive in {t['n_positive']}, negative in {t['n_negative']}; "
+                  f"significant at {esc(ctx['alpha'])} in {t['n_significant']} of {t['n']}")
+        if t["truth"] is not None:
+            md.append(f"- True value in the simulated data: {esc(t['truth'])}")
+        md.append("")
+        if t["rules"]:
+            md.append("Rules that fired:")
+            md.append("")
+            for rule in t["rules"]:
+                md.extend(_rule_lines(rule))
+        else:
+            md.append("No rule fired.")
+        md.append("")
+    if ctx["flags"]:
+        md += ["### Model-level flags", ""]
+        for rule in ctx["flags"]:
+            md.extend(_rule_lines(rule))
+        md.append("")
+    md += ["## Paragraph for a referee response", "", f"> {esc(ctx['referee'])}", "",
+           "(Also in `referee.txt`.)", ""]
+    if ctx["truth"]:
+        md += ["## Known truth", "",
+               "The data were simulated, so the true parameter values are known"
+               + (f" ({esc(ctx['truth_note'])})" if ctx["truth_note"] else "")
+               + ". A robust verdict is good news only if the estimates also sit near the "
+                 "truth.", ""]
+        md += _table(["term", "true value", "base estimate", "range over variants",
+                      "truth inside range"],
+                     [[code(r["term"]), esc(r["truth"]), esc(r["base"]),
+                       f"{esc(r['low'])} to {esc(r['high'])}", esc(r["inside"])]
+                      for r in ctx["truth"]])
+        md.append("")
+    md += ["## Figures", ""]
+    for f in ctx["figures"]:
+        md += [f"### {esc(f['title'])}", "", f"![{esc(f['title'])}]({f['png']})", "",
+               f"**How to read:** {esc(f['caption'])} Files: {esc(f['files'])}.", ""]
+    md += ["## Variants", "", esc(ctx["counts"]), ""]
+    md += _table(ctx["headers"], [[(f"**{esc(c.text)}**" if base and c.text else esc(c.text))
+                                   for c in cells] for base, _, cells in ctx["rows"]])
+    md += ["", "## Bounds for the autoregressive coefficient", "",
+           "Pooled OLS is biased up and the within (fixed-effects) estimator biased down "
+           "(Nickell 1981); a consistent estimate lies between them (Bond, Hoeffler & "
+           "Temple 2001; Bond 2002).", ""]
+    md += _table(ctx["bounds_headers"], [[esc(c) for c in row] for row in ctx["bounds_rows"]])
+    md += ["", "## Rules, sources and thresholds", ""]
+    md += _table(["rule", "what it checks", "threshold", "source"],
+                 [[code(r["id"]), esc(r["description"]), esc(r["threshold"]),
+                   esc(r["source"])] for r in ctx["catalogue"]])
+    md += ["", "\"Common practice\" marks a rule of thumb with no single published source.",
+           "", "## Provenance", ""]
+    md += _table(["item", "value"], [[esc(k), esc(v)] for k, v in ctx["provenance"]])
+    md += ["", "---", "", f"**What this report does not show.** {esc(ctx['caution'])}", "",
+           f"Written by robustgmm {esc(ctx['version'])} from the files in this folder; "
+           f"rebuild with `robustgmm report FOLDER`.", ""]
+    return "\n".join(md)

@@ -1,0 +1,294 @@
+"""The report documents built from synthetic audit folders (tests/report_fixture.py):
+report.html, report.md, table.tex, referee.txt, and build_report's file handling."""
+from __future__ import annotations
+
+import re
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from report_fixture import AR, FRAGILE, ROBUST, write_fake_audit
+from robustgmm.errors import InputError
+from robustgmm.report import build_report, read_audit_folder
+from robustgmm.report.latex import render_latex, tex
+from robustgmm.report.referee import CAUTION, referee_paragraph
+from robustgmm.report.summary import fmt, summarize
+
+MARKUP_TERM = 'w<script>alert("x")</script>&[t]'
+MARKUP_COLUMN = "<b>lev</b>_role"
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    out = write_fake_audit(tmp_path_factory.mktemp("audit") / "out", 24, truth=True,
+                           fragile_term=MARKUP_TERM, role_column=MARKUP_COLUMN)
+    paths = build_report(out)
+    return out, paths
+
+
+class _Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.tags: list[tuple[str, dict]] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append((tag, dict(attrs)))
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def _parse(html: str) -> _Collect:
+    parser = _Collect()
+    parser.feed(html)
+    parser.close()
+    return parser
+
+
+# -- build_report ------------------------------------------------------------
+
+def test_build_report_writes_every_document(built):
+    out, paths = built
+    names = {p.relative_to(out).as_posix() for p in paths}
+    assert {"report.html", "report.md", "table.tex", "referee.txt"} <= names
+    assert any(n.startswith("figures/spec_curve_") and n.endswith(".svg") for n in names)
+    assert all(p.exists() and p.stat().st_size > 0 for p in paths)
+    # atomic writes leave no temporary files behind
+    assert not [p for p in out.rglob("*.tmp")]
+
+
+def test_build_report_is_deterministic(built, tmp_path):
+    out, _ = built
+    copy = tmp_path / "copy"
+    shutil.copytree(out, copy)
+    build_report(copy)
+    for name in ("report.html", "report.md", "table.tex", "referee.txt"):
+        assert (copy / name).read_bytes() == (out / name).read_bytes(), name
+
+
+def test_not_an_audit_folder_names_each_missing_file(tmp_path):
+    (tmp_path / "variants.csv").write_text("variant,status\nbase,ok\n")
+    with pytest.raises(InputError) as info:
+        build_report(tmp_path)
+    problems = info.value.problems
+    assert any("estimates.csv: file missing" in p for p in problems)
+    assert any("verdict.json: file missing" in p for p in problems)
+    assert any("variants.csv: column 'hansen_p' missing" in p for p in problems)
+    assert all("\n" not in p for p in problems)
+
+
+def test_missing_folder_and_bad_json(tmp_path):
+    with pytest.raises(InputError, match="not a folder"):
+        build_report(tmp_path / "nowhere")
+    out = write_fake_audit(tmp_path / "a", 3)
+    (out / "verdict.json").write_text("{not json")
+    with pytest.raises(InputError, match="verdict.json: not valid JSON"):
+        build_report(out)
+
+
+def test_missing_estimate_column_is_named(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 3)
+    frame = pd.read_csv(out / "estimates.csv").drop(columns=["std_error"])
+    frame.to_csv(out / "estimates.csv", index=False)
+    with pytest.raises(InputError, match=r"estimates.csv: column 'std_error' missing"):
+        build_report(out)
+
+
+def test_extra_columns_are_tolerated(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 4)
+    frame = pd.read_csv(out / "variants.csv")
+    frame["some_future_column"] = 1.5
+    frame.to_csv(out / "variants.csv", index=False)
+    build_report(out)
+    assert "some_future_column" not in (out / "report.md").read_text()
+
+
+# -- HTML --------------------------------------------------------------------
+
+def test_html_parses_and_is_self_contained(built):
+    out, _ = built
+    html = (out / "report.html").read_text(encoding="utf-8")
+    parsed = _parse(html)
+    assert parsed.tags[0][0] == "html"
+    assert "http:" not in html and "https:" not in html and "ftp:" not in html
+    for tag, attrs in parsed.tags:
+        if "src" in attrs:
+            assert attrs["src"].startswith("data:"), (tag, attrs["src"][:40])
+        assert "href" not in attrs, (tag, attrs)
+        assert tag not in ("link", "iframe", "object", "embed")
+    imgs = [a for t, a in parsed.tags if t == "img"]
+    assert len(imgs) == len(read_audit_folder(out).focus) + 3
+    assert "url(" not in html
+
+
+def test_html_escapes_user_text(built):
+    out, _ = built
+    html = (out / "report.html").read_text(encoding="utf-8")
+    parsed = _parse(html)
+    # exactly one script element: our own sorting script, never the term label
+    assert [t for t, _ in parsed.tags].count("script") == 1
+    assert [t for t, _ in parsed.tags].count("b") == 0
+    assert "alert(&#34;x&#34;)" in html or "alert(&quot;x&quot;)" in html
+    text = "".join(parsed.text)
+    assert MARKUP_TERM in text       # shown literally after unescaping
+    assert MARKUP_COLUMN.replace("_", " ") in text or MARKUP_COLUMN in text
+
+
+def test_html_content(built):
+    out, _ = built
+    text = " ".join("".join(_parse((out / "report.html").read_text()).text).split())
+    audit = read_audit_folder(out)
+    for tv in audit.term_verdicts:
+        assert tv.term in text
+    assert "robust" in text and "fragile" in text
+    assert "sign_change" in text and "Simonsohn, Simmons & Nelson (2020)" in text
+    assert "instruments_exceed_units" in text
+    assert " ".join(CAUTION.split()) in text
+    assert "Known truth" in text
+    assert audit.manifest["data_hash"] in text
+
+
+def test_html_without_truth_has_no_truth_section(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 5, truth=False)
+    build_report(out)
+    assert "Known truth" not in (out / "report.html").read_text()
+    assert "Known truth" not in (out / "report.md").read_text()
+
+
+# -- Markdown ----------------------------------------------------------------
+
+def test_markdown_contains_every_verdict(built):
+    out, _ = built
+    md = (out / "report.md").read_text(encoding="utf-8")
+    audit = read_audit_folder(out)
+    assert audit.term_verdicts
+    for tv in audit.term_verdicts:
+        assert tv.verdict in ("robust", "fragile", "inconclusive")
+        assert re.search(re.escape(f"{tv.term}`: **{tv.verdict.upper()}**"), md), tv.term
+    for fig in (out / "figures").glob("*.png"):
+        assert f"(figures/{fig.name})" in md
+    # the markup term appears only inside code spans or escaped
+    for line in md.splitlines():
+        if "<script>" in line:
+            assert re.search(r"`[^`]*<script>[^`]*`", line), line
+    assert "**What this report does not show.**" in md
+
+
+# -- LaTeX -------------------------------------------------------------------
+
+def test_latex_structure(built):
+    out, _ = built
+    text = (out / "table.tex").read_text()
+    audit = read_audit_folder(out)
+    assert text.count("\\begin{table}") == 1 and text.count("\\end{table}") == 1
+    specs = re.findall(r"\\begin\{tabular\}\{(l(c+))\}", text)
+    bodies = re.findall(r"\\begin\{tabular\}\{l(c+)\}(.*?)\\end\{tabular\}", text, flags=re.S)
+    assert specs and len(specs) == len(bodies)
+    for cols, body in bodies:
+        assert body.count("\\toprule") == 1 and body.count("\\bottomrule") == 1
+        assert body.count("\\midrule") == 2
+        rows = [r for r in body.split("\\\\") if "&" in r]
+        # each row has exactly one cell per column (no unescaped & from user text)
+        for row in rows:
+            assert len(re.findall(r"(?<!\\)&", row)) == len(cols), row
+        assert "Instruments" in body and "AR(2) $p$" in body
+        for term in audit.focus:
+            assert f"\\texttt{{{tex(term)}}}" in body
+    assert "\\usepackage{booktabs}" in text  # stated in the header comment
+    assert len(re.findall(r" & \(1\) (&|\\\\)", text)) == len(bodies)  # base heads each panel
+    assert len(bodies) >= 1 and "(2)" in text
+
+
+def test_latex_columns_are_one_setting_departures(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 32, failed=0)
+    audit = read_audit_folder(out)
+    from robustgmm.report.latex import one_at_a_time
+    cols = one_at_a_time(audit)
+    assert cols[0] == (audit.base_variant, (), ())
+    base = audit.base_row()
+    for vid, changed, values in cols[1:]:
+        row = audit.variants.set_index("variant").loc[vid]
+        diffs = [c for c in audit.setting_columns if str(row[c]) != str(base[c])]
+        assert len(changed) == 1 and diffs == list(changed)
+        assert str(values[0]) == str(row[changed[0]])
+    # the fixture's grid varies five settings with two values each -> five departures
+    assert len(cols) == 6
+
+
+@pytest.mark.skipif(not any(shutil.which(e) for e in ("pdflatex", "lualatex", "xelatex")),
+                    reason="no LaTeX engine installed")
+def test_latex_compiles(built, tmp_path):
+    out, _ = built
+    engine = next(e for e in ("pdflatex", "lualatex", "xelatex") if shutil.which(e))
+    shutil.copy(out / "table.tex", tmp_path / "table.tex")
+    (tmp_path / "doc.tex").write_text(
+        "\\documentclass{article}\n\\usepackage[T1]{fontenc}\n\\usepackage{booktabs}\n"
+        "\\begin{document}\n\\input{table.tex}\n\\end{document}\n")
+    run = subprocess.run([engine, "-interaction=nonstopmode", "-halt-on-error", "doc.tex"],
+                         cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert run.returncode == 0, run.stdout[-2000:]
+    assert (tmp_path / "doc.pdf").exists()
+
+
+# -- referee paragraph -------------------------------------------------------
+
+def test_referee_numbers_equal_the_estimates(built):
+    out, _ = built
+    audit = read_audit_folder(out)
+    text = (out / "referee.txt").read_text()
+    flat = " ".join(text.split())
+    assert flat == referee_paragraph(audit)
+    est = pd.read_csv(out / "estimates.csv")
+    variants = pd.read_csv(out / "variants.csv")
+    ok_ids = set(variants.loc[variants["status"] == "ok", "variant"])
+    est = est[est["variant"].isin(ok_ids)]
+    n_ok = len(ok_ids)
+    assert flat.startswith(f"Across {n_ok} estimated specifications varying ")
+    for term in (AR, ROBUST, MARKUP_TERM):
+        e = est[est["term"] == term]
+        m = re.search(re.escape(f"coefficient on {term} stays between ") +
+                      r"(-?\d+\.\d+) and (-?\d+\.\d+) \(base model (-?\d+\.\d+), standard error "
+                      r"(\d+\.\d+)\); it is positive in (all \d+|\d+ of \d+) and significant at "
+                      r"the 5% level in (all \d+|\d+ of \d+)", flat)
+        assert m, term
+        lo, hi, base, se = (float(m.group(i)) for i in range(1, 5))
+        assert lo == pytest.approx(e["estimate"].min(), abs=5e-4)
+        assert hi == pytest.approx(e["estimate"].max(), abs=5e-4)
+        b = e[e["variant"] == audit.base_variant].iloc[0]
+        assert base == pytest.approx(b["estimate"], abs=5e-4)
+        assert se == pytest.approx(b["std_error"], abs=5e-4)
+        n_pos = int((e["estimate"] > 0).sum())
+        n_sig = int((e["p_value"] < 0.05).sum())
+        assert m.group(5) == (f"all {n_ok}" if n_pos == n_ok else f"{n_pos} of {n_ok}")
+        assert m.group(6) == (f"all {n_ok}" if n_sig == n_ok else f"{n_sig} of {n_ok}")
+    # the AR band sentence uses bounds.csv
+    bounds = pd.read_csv(out / "bounds.csv").iloc[0]
+    assert f"within (fixed-effects) estimate of {fmt(bounds['fe'])}" in flat
+    assert f"pooled OLS estimate of {fmt(bounds['ols'])}" in flat
+    assert " ".join(CAUTION.split()) in flat
+
+
+def test_referee_summary_facts(built):
+    out, _ = built
+    audit = read_audit_folder(out)
+    s = summarize(audit)
+    frag = s.term(MARKUP_TERM)
+    assert frag.verdict == "fragile" and len(frag.fired) == 2
+    assert s.n_failed == 1 and s.n_ok == 23 and s.n_variants == 24
+
+
+@pytest.mark.parametrize("n", [1, 2])
+def test_small_audits_read_naturally(tmp_path, n):
+    out = write_fake_audit(tmp_path / "a", n)
+    build_report(out)
+    flat = " ".join((out / "referee.txt").read_text().split())
+    assert "1 estimated specifications" not in flat
+    if n == 1:
+        assert flat.startswith("In the single estimated specification, ")
+    else:
+        assert "positive in both" in flat

@@ -1,0 +1,159 @@
+"""Figures of the audit report, drawn from synthetic audit folders (tests/report_fixture.py).
+
+Checks: each plot function works for 1, 2 and 300 variants, returns what it was
+given, and contains the artists it promises (one mark per estimated variant, the
+reference lines at the audit's thresholds, the base model marked, the choice panel
+with one row per setting value); nothing goes through pyplot's global state.
+"""
+from __future__ import annotations
+
+import sys
+
+import matplotlib
+import numpy as np
+import pytest
+from matplotlib.collections import LineCollection, PathCollection
+from matplotlib.figure import Figure
+from matplotlib.image import AxesImage
+
+from report_fixture import AR, FRAGILE, ROBUST, write_fake_audit
+from robustgmm.report import figures
+from robustgmm.report.inputs import read_audit_folder
+
+matplotlib.use("Agg")
+
+
+@pytest.fixture(params=[1, 2, 300], ids=lambda n: f"{n}variants")
+def audit(request, tmp_path):
+    return read_audit_folder(write_fake_audit(tmp_path / "audit", request.param, truth=True))
+
+
+def _n_ok(audit, term):
+    return len(audit.term_estimates(term))
+
+
+def _scatter_points(ax):
+    return [c for c in ax.collections if isinstance(c, PathCollection)]
+
+
+def test_no_pyplot_imported_by_report():
+    # importing and drawing must not pull in pyplot (global figure manager)
+    import subprocess
+    code = ("import sys; import robustgmm.report as r; "
+            "from robustgmm.report import figures; "
+            "print('matplotlib.pyplot' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"
+
+
+def test_specification_curve(audit):
+    n = _n_ok(audit, FRAGILE)
+    fig = Figure()
+    assert figures.plot_specification_curve(fig, audit, FRAGILE) is fig
+    ax, ax_choice = fig.axes
+    # confidence intervals: one vertical segment per estimated variant
+    segs = [c for c in ax.collections if isinstance(c, LineCollection)]
+    assert len(segs) == 1 and len(segs[0].get_segments()) == n
+    points, base = _scatter_points(ax)[:2]
+    assert len(points.get_offsets()) == n
+    # the estimates are drawn sorted
+    y = np.asarray(points.get_offsets())[:, 1]
+    assert np.all(np.diff(y) >= 0)
+    # the base model is ringed at its own estimate
+    frame = audit.term_estimates(FRAGILE)
+    base_est = frame.loc[frame["variant"] == audit.base_variant, "estimate"].iloc[0]
+    assert np.asarray(base.get_offsets())[0, 1] == pytest.approx(base_est)
+    # zero line and true value line
+    hlines = [tuple(line.get_ydata()) for line in ax.get_lines()]
+    assert (0.0, 0.0) in hlines and (0.05, 0.05) in hlines
+    # choice panel: one y tick per (setting, value) pair
+    expected_rows = sum(audit.variants[c].astype(str).nunique()
+                        for c in (audit.varied_settings or audit.setting_columns))
+    assert len(ax_choice.get_yticks()) == expected_rows
+    # per-variant tick labels only up to the limit
+    labels = [t.get_text() for t in ax_choice.get_xticklabels()]
+    if n <= figures.MAX_TICK_LABELS:
+        assert audit.base_variant in labels
+    else:
+        assert labels == []
+
+
+def test_hansen_drift(audit):
+    ax = Figure().add_subplot()
+    assert figures.plot_hansen_drift(ax, audit) is ax
+    ok = audit.ok_variants
+    n_points = sum(len(c.get_offsets()) for c in _scatter_points(ax)[:-1])
+    assert n_points == len(ok)
+    ys = {line.get_ydata()[0] for line in ax.get_lines() if line.get_ydata()[0] == line.get_ydata()[1]}
+    assert {0.05, 0.25} <= ys
+    xs = {line.get_xdata()[0] for line in ax.get_lines() if line.get_xdata()[0] == line.get_xdata()[1]}
+    assert 300.0 in xs  # instruments = units
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    if len(ok) >= 2:
+        assert any("difference" in t for t in legend) and any("system" in t for t in legend)
+    assert "base model" in legend
+
+
+def test_ar_band(audit):
+    ax = Figure().add_subplot()
+    assert figures.plot_ar_band(ax, audit, AR) is ax
+    n = _n_ok(audit, AR)
+    assert len(_scatter_points(ax)[0].get_offsets()) == n
+    # the band between the within and OLS values is drawn
+    polys = [c for c in ax.collections if c.__class__.__name__ == "FillBetweenPolyCollection"
+             or c.__class__.__name__ == "PolyCollection"]
+    assert polys
+    ys = np.concatenate([p.get_paths()[0].vertices[:, 1] for p in polys])
+    assert ys.min() == pytest.approx(0.35) and ys.max() == pytest.approx(0.75)
+
+
+def test_diagnostics_matrix(audit):
+    ax = Figure().add_subplot()
+    assert figures.plot_diagnostics_matrix(ax, audit) is ax
+    images = [c for c in ax.get_children() if isinstance(c, AxesImage)]
+    assert len(images) == 1
+    table = figures.diagnostics_table(audit)
+    assert images[0].get_array().shape == (table.shape[1], len(audit.variants))
+    assert [t.get_text() for t in ax.get_yticklabels()] == list(table.columns)
+
+
+def test_diagnostics_table_states(tmp_path):
+    audit = read_audit_folder(write_fake_audit(tmp_path / "a", 24))
+    table = figures.diagnostics_table(audit)
+    v = audit.variants.set_index("variant")
+    for vid, row in table.iterrows():
+        if v.loc[vid, "status"] != "ok":
+            assert (row == figures.NOT_ESTIMATED).all()
+            continue
+        assert row["Hansen does not reject"] == (figures.FAIL if v.loc[vid, "hansen_p"] < 0.05
+                                                 else figures.PASS)
+        assert row["Hansen p below warning line"] == (
+            figures.WARN if v.loc[vid, "hansen_p"] >= 0.25 else figures.PASS)
+
+
+def test_render_figures_writes_every_format(tmp_path):
+    audit = read_audit_folder(write_fake_audit(tmp_path / "a", 24))
+    made = figures.render_figures(audit, tmp_path / "a" / "figures")
+    kinds = [f.kind for f in made]
+    assert kinds.count("spec_curve") == len(audit.focus)
+    assert kinds.count("ar_band") == 1 and "hansen_drift" in kinds and "diagnostics" in kinds
+    for f in made:
+        assert f.png.startswith(b"\x89PNG")
+        assert {p.suffix for p in f.paths} == {".png", ".svg", ".pdf"}
+        assert all(p.exists() and p.stat().st_size > 0 for p in f.paths)
+    # deterministic: a second rendering writes the same bytes
+    again = figures.render_figures(audit, tmp_path / "b")
+    for f, g in zip(made, again):
+        for p, q in zip(f.paths, g.paths):
+            assert p.read_bytes() == q.read_bytes(), p.name
+
+
+def test_slug_is_file_safe_and_unique_names(tmp_path):
+    assert figures.slug("cash[t-1]") == "cash_t-1"
+    assert figures.slug("<b>") == "b"
+    audit = read_audit_folder(write_fake_audit(tmp_path / "a", 3, fragile_term="x(t)"))
+    # "x[t]" and "x(t)" share a slug; the file names must still differ
+    names = [f.name for f in figures.render_figures(audit, tmp_path / "a" / "figures",
+                                                    formats=("png",))]
+    assert len(names) == len(set(names))
+    assert ROBUST in audit.focus
