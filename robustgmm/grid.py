@@ -19,8 +19,6 @@ stated, only when it cannot be estimated or would repeat another variant exactly
 * ``first_lag`` beyond the panel: no period has a level that many periods back
   (a panel of ``P`` periods has lags up to ``P - 1``);
 * the model's own lags leave no transformed equation (``max lag + 1 > P - 1``);
-* the core reports it cannot build the design (``EstimationError``: no observations
-  left, a missing column);
 * the sample restriction leaves no data;
 * fewer instruments than parameters (order condition; the counts are stated);
 * a ``last_lag`` that reaches past the deepest lag the panel has gives exactly the
@@ -28,6 +26,11 @@ stated, only when it cannot be estimated or would repeat another variant exactly
   exist on a ``P``-period calendar; see :func:`reaches_past_panel`): when such a
   twin is in the grid the later one is skipped as a duplicate of the earlier, so
   nothing is estimated twice.
+
+When the core cannot build a variant's design for a reason that is a property of the
+data (no observations left, a regressor without variation in the sample), the
+variant stays planned with the reason noted ("expected to fail: ...") and the
+runner records it as *failed*, like any other estimation failure.
 
 Everything else is estimable and is *planned*, even when a setting makes no
 difference on these data (e.g. collapsed vs per-period with two periods): the audit
@@ -380,7 +383,14 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
             n_instr, n_par = design_counts(v.spec, panel)
             mask = core.estimation_sample(v.spec, panel)
         except EstimationError as exc:
-            out.append(dataclasses.replace(v, status=SKIPPED, reason=_one_line(exc)))
+            message = _one_line(exc)
+            if message.startswith("fewer instruments"):
+                # the order condition: an impossible combination, skipped with its counts
+                out.append(dataclasses.replace(v, status=SKIPPED, reason=message))
+            else:
+                # a property of the data (no observations left, no variation): the
+                # variant stays planned and the runner records it as failed
+                out.append(dataclasses.replace(v, reason=f"expected to fail: {message}"))
             continue
         units = int(mask.any(axis=1).sum())
         obs = int(mask.sum())

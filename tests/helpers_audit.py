@@ -1,0 +1,82 @@
+"""Shared builders for the audit-pipeline tests (grid, runner, verdicts, audit).
+
+Data come from :mod:`robustgmm.simulate` (a known data-generating process); nothing
+here touches the reference data set.
+"""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+
+from robustgmm import core
+from robustgmm.grid import canonical_json
+from robustgmm.modelfile import spec_from_dict
+from robustgmm.simulate import PanelProcess, simulate_panel
+
+
+def write_panel(folder: Path, n_units=40, n_periods=6, process=PanelProcess(), seed=3,
+                name="panel.csv") -> Path:
+    """A simulated panel; column ``late`` equals 1 from the fourth period on (so it
+    has no variation within units in a sample that starts there)."""
+    frame = simulate_panel(n_units, n_periods, process, seed=seed)
+    start = frame["period"].min()
+    frame["late"] = np.where(frame["period"] >= start + 3, 1.0, frame["x"])
+    path = Path(folder) / name
+    frame.to_csv(path, index=False)
+    return path
+
+
+def model_dict(vary=None, **sections) -> dict:
+    d = {
+        "data": {"file": "panel.csv", "unit": "unit", "period": "period"},
+        "model": {"outcome": "y", "outcome_lags": [1],
+                  "regressors": [{"name": "x", "lags": [0], "role": "endogenous"},
+                                 {"name": "w", "lags": [0], "role": "exogenous"}]},
+    }
+    for key, value in sections.items():
+        d.setdefault(key, {}).update(value)
+    if vary is not None:
+        d.setdefault("audit", {})["vary"] = vary
+    return d
+
+
+def make_spec(folder: Path, vary=None, panel_kw=None, **sections):
+    folder = Path(folder)
+    if not (folder / "panel.csv").exists():
+        write_panel(folder, **(panel_kw or {}))
+    return spec_from_dict(model_dict(vary, **sections), base_dir=folder)
+
+
+class CountingFit:
+    """A wrapper around the core's fit that counts estimations (test double).
+
+    ``interrupt_at``: raise KeyboardInterrupt on that call (1-based), as Ctrl-C
+    would; ``fail``: {variant settings predicate: exception} to raise instead of
+    estimating.
+    """
+
+    def __init__(self, interrupt_at=None, fail=None):
+        self.calls = 0
+        self.interrupt_at = interrupt_at
+        self.fail = fail or []
+
+    def __call__(self, spec, panel):
+        self.calls += 1
+        if self.interrupt_at is not None and self.calls == self.interrupt_at:
+            raise KeyboardInterrupt
+        for predicate, exc in self.fail:
+            if predicate(spec):
+                raise exc
+        return core.fit(spec, panel)
+
+
+def outcome_text(outcomes) -> str:
+    """Outcomes as canonical JSON without timings (for exact comparisons)."""
+    return canonical_json({vid: {"status": o.status, "reason": o.reason, "fit": o.fit,
+                                 "bounds": o.bounds} for vid, o in outcomes.items()})
+
+
+def read_json(path) -> dict:
+    return json.loads(Path(path).read_text())

@@ -1,0 +1,188 @@
+"""Runner: cache hit/miss/corruption, resume after an interrupt, failure isolation,
+determinism across jobs, joblib backends, progress bar (robustgmm.runner)."""
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+
+import numpy as np
+import pytest
+
+from robustgmm import core, grid, runner
+from robustgmm.errors import EstimationError
+from robustgmm.spec import SampleFilter
+
+from helpers_audit import CountingFit, make_spec, outcome_text
+
+VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
+
+
+@pytest.fixture
+def planned(tmp_path):
+    spec = make_spec(tmp_path, VARY)
+    panels = grid.load_panels(spec)
+    return spec, panels, grid.plan(spec, panels)
+
+
+def test_cache_rerun_computes_nothing_and_detects_corruption(planned, tmp_path):
+    spec, panels, variants = planned
+    cache_dir = tmp_path / "cache"
+    fit = CountingFit()
+    first, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert fit.calls == stats.computed == len(variants) == 8
+    assert stats.cached == 0 and stats.failed == 0
+    assert len(list(cache_dir.glob("*.json"))) == 8
+
+    fit = CountingFit()
+    again, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert fit.calls == 0 and stats.cached == 8 and stats.computed == 0
+    assert outcome_text(again) == outcome_text(first)  # bit-identical through the cache
+    assert all(o.cached for o in again.values())
+
+    # a flipped digit in one entry and a truncated second entry: both recomputed
+    files = sorted(cache_dir.glob("*.json"))
+    entry = json.loads(files[0].read_text())
+    entry["payload"]["fit"]["terms"][0]["estimate"] += 1e-9
+    files[0].write_text(json.dumps(entry))
+    files[1].write_text(files[1].read_text()[:50])
+    fit = CountingFit()
+    third, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert fit.calls == 2 and stats.corrupted == 2 and stats.cached == 6
+    assert outcome_text(third) == outcome_text(first)
+
+
+def test_cache_key_changes_with_data_and_settings(planned):
+    spec, panels, variants = planned
+    a, b = variants[0].spec, variants[1].spec
+    assert runner.Cache.key("h1", a) != runner.Cache.key("h2", a)
+    assert runner.Cache.key("h1", a) != runner.Cache.key("h1", b)
+    assert runner.Cache.key("h1", a) == runner.Cache.key(
+        "h1", dataclasses.replace(a, source="renamed.toml", alpha=0.01))
+
+
+def test_interrupted_run_resumes_where_it_stopped(planned, tmp_path):
+    spec, panels, variants = planned
+    cache_dir = tmp_path / "cache"
+    with pytest.raises(KeyboardInterrupt):
+        runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir,
+                            fit=CountingFit(interrupt_at=4))
+    assert len(list(cache_dir.glob("*.json"))) == 3  # finished variants were kept
+    fit = CountingFit()
+    resumed, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert fit.calls == stats.computed == 5 and stats.cached == 3
+    fresh, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=None)
+    assert outcome_text(resumed) == outcome_text(fresh)
+
+
+def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
+    spec, panels, variants = planned
+    singular = EstimationError("the weight matrix is singular")
+    fit = CountingFit(fail=[
+        (lambda s: s.transform == "fod" and s.steps == 1 and s.form == "collapsed", singular),
+        (lambda s: s.transform == "fod" and s.steps == 2 and s.form == "collapsed",
+         ZeroDivisionError("float division by zero")),
+    ])
+    cache_dir = tmp_path / "cache"
+    out, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    failed = {vid: o for vid, o in out.items() if o.status == runner.FAILED}
+    assert len(failed) == 2 and stats.failed == 2
+    reasons = sorted(o.reason for o in failed.values())
+    assert reasons == ["ZeroDivisionError: float division by zero",
+                       "the weight matrix is singular"]
+    assert all(o.status == runner.OK and o.fit for vid, o in out.items() if vid not in failed)
+    # the estimation failure is cached; the unexpected error is tried again next time
+    fit2 = CountingFit()
+    again, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit2)
+    assert fit2.calls == 1
+    assert sum(o.status == runner.FAILED for o in again.values()) == 1
+
+
+def test_singular_sample_fails_without_stopping_the_audit(tmp_path):
+    # 'late' is 1 from the fourth period on: no variation within units in that sample
+    spec = make_spec(tmp_path, {"steps": [1, 2]},
+                     model={"regressors": [{"name": "x", "lags": [0], "role": "endogenous"},
+                                           {"name": "late", "lags": [0], "role": "exogenous"}]},
+                     method={"equations": "difference"}, panel_kw={"n_periods": 8})
+    late = SampleFilter(name="late years", period_from=2004)
+    spec = dataclasses.replace(spec, vary=dataclasses.replace(spec.vary, samples=(late,)))
+    panels = grid.load_panels(spec)
+    variants = grid.plan(spec, panels)
+    bad = [v for v in variants if v.spec.sample.name == "late years"]
+    assert len(bad) == 2 and all(v.status == grid.PLANNED and v.reason.startswith("expected to fail")
+                       for v in bad)
+    out, stats = runner.run_variants(variants, panels, jobs=1)
+    for v in variants:
+        o = out[v.id]
+        if v.spec.sample.name == "late years":
+            assert o.status == runner.FAILED and "late[t]" in o.reason
+        else:
+            assert o.status == runner.OK
+    assert stats.failed == len(bad)
+
+
+def test_results_identical_whatever_jobs(planned):
+    spec, panels, variants = planned
+    one, s1 = runner.run_variants(variants, panels, jobs=1)
+    two, s2 = runner.run_variants(variants, panels, jobs=2)
+    assert s1.jobs == 1 and s2.jobs == 2 and s2.backend == "loky"
+    assert list(one) == list(two) == [v.id for v in variants]  # plan order
+    assert outcome_text(one) == outcome_text(two)
+
+
+def test_threading_backend_gives_the_same_results(planned):
+    spec, panels, variants = planned
+    one, _ = runner.run_variants(variants, panels, jobs=1)
+    threads, stats = runner.run_variants(variants, panels, jobs=2, backend="threading")
+    assert stats.backend == "threading"
+    assert outcome_text(threads) == outcome_text(one)
+
+
+@pytest.mark.slow
+def test_dask_backend_gives_the_same_results(planned):
+    distributed = pytest.importorskip("distributed")
+    import joblib
+    spec, panels, variants = planned
+    one, _ = runner.run_variants(variants, panels, jobs=1)
+    with distributed.Client(distributed.LocalCluster(n_workers=2, threads_per_worker=1,
+                                                     processes=True, dashboard_address=None)):
+        by_argument, stats = runner.run_variants(variants, panels, backend="dask")
+        assert stats.backend == "dask"
+        with joblib.parallel_config(backend="dask"):  # the caller's context is respected
+            by_context, stats2 = runner.run_variants(variants, panels)
+        assert "dask" in stats2.backend.lower()
+    assert outcome_text(by_argument) == outcome_text(one)
+    assert outcome_text(by_context) == outcome_text(one)
+
+
+def test_progress_bar_only_when_asked(planned, capfd):
+    spec, panels, variants = planned
+    runner.run_variants(variants[:2], panels, jobs=1, progress=False)
+    assert capfd.readouterr().err == ""
+    runner.run_variants(variants[:2], panels, jobs=1, progress=True)
+    captured = capfd.readouterr()
+    assert "variants" in captured.err and captured.out == ""
+
+
+def test_skipped_variants_are_not_run(planned):
+    spec, panels, variants = planned
+    skipped = dataclasses.replace(variants[1], status=grid.SKIPPED, reason="test")
+    fit = CountingFit()
+    out, stats = runner.run_variants([variants[0], skipped], panels, jobs=1, fit=fit)
+    assert fit.calls == 1 and list(out) == [variants[0].id] and stats.variants == 1
+
+
+def test_record_of_several_ar_lags_carries_their_sum(tmp_path):
+    spec = make_spec(tmp_path, model={"outcome_lags": [1, 2]})
+    panel = grid.load_panels(spec)[grid.sample_key(spec.sample)]
+    result = core.fit(spec, panel)
+    record = runner.fit_record(result, spec)
+    i, j = result.labels.index("y[t-1]"), result.labels.index("y[t-2]")
+    V = np.asarray(result.vcov)
+    assert record["ar_sum"]["estimate"] == pytest.approx(result.params[i] + result.params[j])
+    assert record["ar_sum"]["std_error"] == pytest.approx(
+        math.sqrt(V[i, i] + V[j, j] + 2 * V[i, j]))
+    out = runner.estimate_variant(spec, panel)
+    assert out["status"] == runner.OK
+    assert [b["term"] for b in out["bounds"]["terms"]] == ["y[t-1]", "y[t-2]",
+                                                          "sum(y[t-1], y[t-2])"]
