@@ -43,14 +43,15 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _jobs(text: str) -> int:
+    """--jobs: a positive whole number, or -1 for every core (argparse adds the
+    "argument --jobs:" prefix to the message)."""
+    message = f"must be a positive whole number, or -1 for every core (got {text!r})"
     try:
         value = int(text)
     except ValueError:
-        raise argparse.ArgumentTypeError(
-            f"--jobs {text!r}: must be a positive whole number, or -1 for every core") from None
+        raise argparse.ArgumentTypeError(message) from None
     if value == 0 or value < -1:
-        raise argparse.ArgumentTypeError(
-            f"--jobs {value}: must be a positive whole number, or -1 for every core")
+        raise argparse.ArgumentTypeError(message)
     return value
 
 

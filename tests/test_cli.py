@@ -139,10 +139,11 @@ def test_help_is_exit_0(capsys):
     (["fit"], "MODEL.toml"),
     (["fit", "m.toml", "--jsn", "x.json"], "unrecognized arguments: --jsn"),
     (["audit", "m.toml"], "--out"),
-    (["audit", "m.toml", "--out", "d", "--jobs", "0"], "--jobs 0: must be a positive whole number"),
-    (["audit", "m.toml", "--out", "d", "--jobs", "two"], "--jobs 'two'"),
-    (["audit", "m.toml", "--out", "d", "--jobs", "-3"], "--jobs -3"),
-    (["demo", "--jobs", "1.5"], "--jobs '1.5'"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "0"],
+     "argument --jobs: must be a positive whole number, or -1 for every core (got '0')"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "two"], "argument --jobs: must be a positive whole number, or -1 for every core (got 'two')"),
+    (["audit", "m.toml", "--out", "d", "--jobs", "-3"], "(got '-3')"),
+    (["demo", "--jobs", "1.5"], "(got '1.5')"),
 ])
 def test_usage_errors_are_one_line(args, fragment, capsys):
     code, out, err = run(args, capsys)
