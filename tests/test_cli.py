@@ -279,3 +279,12 @@ def test_force_writes_into_foreign_folder(project, capsys, fake_audit):
     code, _, err = run(["audit", project / "model.toml", "--out", out, "--force"], capsys)
     assert code == 0, err
     assert (out / "notes.txt").read_text() == "x"
+
+
+def test_fit_reports_rows_dropped_for_missing_values(project, capsys):
+    df = pd.read_csv(project / "panel.csv")
+    df.loc[[3, 40], "x"] = np.nan
+    df.to_csv(project / "panel.csv", index=False)
+    code, out, err = run(["fit", project / "model.toml"], capsys)
+    assert code == 0, err
+    assert "Rows with a missing value in a used column: 2" in out
