@@ -80,8 +80,12 @@ def _p_normal(z):
 
 
 def _chi2(stat, df):
-    if df is None or df <= 0 or not np.isfinite(stat):
-        return TestResult(float(stat), math.nan, int(df) if df is not None else None)
+    """A chi-squared test; None when it has no degrees of freedom (an exactly or
+    under-identified instrument set has nothing to test)."""
+    if df is None or df <= 0:
+        return None
+    if not np.isfinite(stat):
+        return TestResult(float(stat), math.nan, int(df))
     return TestResult(float(stat), float(stats.chi2.sf(stat, df)), int(df))
 
 
@@ -132,6 +136,15 @@ class GMMProblem:
         self.zy = zy[kz]
         self.zhz = zhz[np.ix_(kz, kz)]
         self.L, self.K = len(kz), len(kx)
+        n_rows = d.n_rows[0] + d.n_rows[1]
+        if d.n_rows[0] <= self.K:
+            raise EstimationError(
+                f"only {d.n_rows[0]} observations in the transformed equation for {self.K} "
+                "parameters: too few observations for this model")
+        if self.L >= n_rows:
+            raise EstimationError(
+                f"{self.L} instruments for only {n_rows} observations: reduce last_lag, "
+                "use collapsed instruments or add data")
         if self.L < self.K:
             raise EstimationError(
                 f"fewer instruments ({self.L}) than parameters ({self.K}): the model is not identified")
