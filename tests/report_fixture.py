@@ -36,7 +36,7 @@ def _grid(n_variants: int):
 
 def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
                      failed: int = 1, truth: bool = False, seed: int = 1,
-                     role_column: str | None = None) -> Path:
+                     role_column: str | None = None, acceptable: bool = True) -> Path:
     """Write variants.csv, estimates.csv, bounds.csv, verdict.json, manifest.json.
 
     ``fragile_term`` and ``role_column`` (the name of an extra varied setting
@@ -86,6 +86,10 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
             est_rows.append({"variant": vid, "term": term, "estimate": est,
                              "std_error": se, "p_value": erfc(abs(z) / sqrt(2))})
     variants = pd.DataFrame(rows)
+    if acceptable:  # as robustgmm.verdicts marks them: estimated and passing the tests
+        variants["acceptable"] = ((variants["status"] == "ok") & (variants["hansen_p"] >= 0.05)
+                                  & (variants["ar2_p"] >= 0.05))
+        variants["flags"] = np.where(variants["hansen_p"] < 0.05, "hansen_rejects", "")
     estimates = pd.DataFrame(est_rows)
     variants.to_csv(path / "variants.csv", index=False)
     estimates.to_csv(path / "estimates.csv", index=False)

@@ -246,11 +246,14 @@ def test_referee_numbers_equal_the_estimates(built):
     est = pd.read_csv(out / "estimates.csv")
     variants = pd.read_csv(out / "variants.csv")
     ok_ids = set(variants.loc[variants["status"] == "ok", "variant"])
-    est = est[est["variant"].isin(ok_ids)]
-    n_ok = len(ok_ids)
-    assert flat.startswith(f"Across {n_ok} estimated specifications varying ")
+    acc_ids = set(variants.loc[variants["acceptable"] & (variants["status"] == "ok"), "variant"])
+    assert 0 < len(acc_ids) < len(ok_ids)  # the fixture has variants failing a test
+    n_all = len(ok_ids)
+    n_ok = len(acc_ids)
+    assert flat.startswith(f"Across {n_all} estimated specifications varying ")
+    assert f", {n_ok} pass their specification tests (" in flat
     for term in (AR, ROBUST, MARKUP_TERM):
-        e = est[est["term"] == term]
+        e = est[(est["term"] == term) & est["variant"].isin(acc_ids)]
         m = re.search(re.escape(f"coefficient on {term} stays between ") +
                       r"(-?\d+\.\d+) and (-?\d+\.\d+) \(base model (-?\d+\.\d+), standard error "
                       r"(\d+\.\d+)\); it is positive in (all \d+|\d+ of \d+) and significant at "
@@ -259,7 +262,7 @@ def test_referee_numbers_equal_the_estimates(built):
         lo, hi, base, se = (float(m.group(i)) for i in range(1, 5))
         assert lo == pytest.approx(e["estimate"].min(), abs=5e-4)
         assert hi == pytest.approx(e["estimate"].max(), abs=5e-4)
-        b = e[e["variant"] == audit.base_variant].iloc[0]
+        b = est[(est["term"] == term) & (est["variant"] == audit.base_variant)].iloc[0]
         assert base == pytest.approx(b["estimate"], abs=5e-4)
         assert se == pytest.approx(b["std_error"], abs=5e-4)
         n_pos = int((e["estimate"] > 0).sum())
@@ -280,6 +283,11 @@ def test_referee_summary_facts(built):
     frag = s.term(MARKUP_TERM)
     assert frag.verdict == "fragile" and len(frag.fired) == 2
     assert s.n_failed == 1 and s.n_ok == 23 and s.n_variants == 24
+    variants = pd.read_csv(out / "variants.csv")
+    assert s.n_acceptable == int(variants["acceptable"].sum())
+    e = pd.read_csv(out / "estimates.csv")
+    e = e[e["term"] == MARKUP_TERM]
+    assert frag.n_ok == 23 and frag.ok_low == e["estimate"].min()
 
 
 @pytest.mark.parametrize("n", [1, 2])

@@ -8,6 +8,8 @@ from __future__ import annotations
 import base64
 from pathlib import Path
 
+import numpy as np
+
 from .. import __version__
 from .figures import FigureFile, caption
 from .inputs import AuditFolder, Rule
@@ -17,7 +19,7 @@ from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_
 
 
 def _rule(rule: Rule) -> dict:
-    return {"id": rule.id, "description": rule.description,
+    return {"id": rule.id, "description": rule.description, "effect": rule.effect,
             "figures": rule_figures_text(rule), "source": rule.source,
             "threshold": threshold_text(rule.threshold) if rule.threshold not in (None, "") else ""}
 
@@ -41,8 +43,12 @@ def _subtitle(audit: AuditFolder, s: AuditSummary) -> str:
 
 
 def _counts(s: AuditSummary) -> str:
-    return (f"{s.n_variants} variants: {s.n_ok} estimated, {s.n_failed} failed, "
-            f"{s.n_skipped} skipped as impossible. The base model is marked.")
+    text = (f"{s.n_variants} variants: {s.n_ok} estimated, {s.n_failed} failed, "
+            f"{s.n_skipped} skipped as impossible.")
+    if s.has_acceptable:
+        text += (f" {s.n_acceptable} of the estimated variants pass their specification "
+                 f"tests (column \"acceptable\"); the verdicts are judged on those.")
+    return text + " The base model is marked."
 
 
 def _truth_rows(s: AuditSummary) -> list[dict]:
@@ -56,17 +62,43 @@ def _truth_rows(s: AuditSummary) -> list[dict]:
     return rows
 
 
-def _bounds_table(audit: AuditFolder) -> tuple[list[str], list[list[str]]]:
+def _bounds_table(audit: AuditFolder) -> tuple[list[str], list[list[str]], str]:
+    """The bounds of the base sample (one row per AR term) and, when bounds.csv
+    holds one row per variant, a note on how far they move across variants."""
     frame = audit.bounds
-    headers = list(frame.columns)
+    note = ""
+    if "variant" in frame.columns and frame["variant"].nunique() > 1:
+        base = frame[frame["variant"] == audit.base_variant]
+        parts = []
+        for term, rows in frame.groupby("term", sort=False):
+            if fmt(rows["fe"].min()) == fmt(rows["fe"].max()) and \
+                    fmt(rows["ols"].min()) == fmt(rows["ols"].max()):
+                continue
+            parts.append(f"{term}: within from {fmt(rows['fe'].min())} to {fmt(rows['fe'].max())}, "
+                         f"pooled OLS from {fmt(rows['ols'].min())} to {fmt(rows['ols'].max())}")
+        note = "bounds.csv holds the bounds on every variant's own estimation sample"
+        note += ("; across variants: " + "; ".join(parts) + ". The table shows the base model's."
+                 if parts else "; they are the same for every variant.")
+        frame = base if not base.empty else frame.drop_duplicates("term")
+    preferred = [c for c in ("term", "fe", "fe_std_error", "ols", "ols_std_error", "gmm",
+                             "in_bounds", "observations", "units") if c in frame.columns]
+    headers = preferred + [c for c in frame.columns
+                           if c not in preferred and c not in ("variant", "is_base")]
+    names = {"fe": "within (FE)", "fe_std_error": "within s.e.", "ols": "pooled OLS",
+             "ols_std_error": "OLS s.e.", "gmm": "GMM (base)", "in_bounds": "GMM inside band"}
     rows = []
     for _, r in frame.iterrows():
         row = []
         for col in headers:
             value = r[col]
-            row.append(fmt(value) if isinstance(value, float) else str(value))
+            if isinstance(value, (float, np.floating)) and col in ("observations", "units"):
+                row.append(fmt_int(value))
+            elif isinstance(value, (float, np.floating)):
+                row.append(fmt(value))
+            else:
+                row.append(str(value))
         rows.append(row)
-    return headers, rows
+    return [names.get(h, h) for h in headers], rows, note
 
 
 def build_context(audit: AuditFolder, figures: list[FigureFile],
@@ -80,6 +112,9 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
             "low": fmt(t.low), "high": fmt(t.high), "median": fmt(t.median), "n": t.n,
             "n_positive": t.n_positive, "n_negative": t.n_negative,
             "n_significant": t.n_significant,
+            "n_ok": t.n_ok, "ok_low": fmt(t.ok_low), "ok_high": fmt(t.ok_high),
+            "judged": "acceptable" if s.has_acceptable else "estimated",
+            "passed": ", ".join(t.passed),
             "truth": fmt(t.truth) if t.truth is not None else None,
             "rules": [_rule(r) for r in t.fired],
         })
@@ -92,7 +127,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
             "png": f"figures/{f.name}.png",
         })
     headers, rows = variants_table(audit)
-    bounds_headers, bounds_rows = _bounds_table(audit)
+    bounds_headers, bounds_rows, bounds_note = _bounds_table(audit)
     truth_note = ""
     if audit.truth:
         truth_note = str(audit.truth.get("description") or audit.truth.get("note") or "")
@@ -112,7 +147,9 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "rows": rows,
         "bounds_headers": bounds_headers,
         "bounds_rows": bounds_rows,
+        "bounds_note": bounds_note,
         "catalogue": [_rule(r) for r in rule_catalogue(audit)],
+        "combination": str(audit.verdict_raw.get("combination") or ""),
         "provenance": provenance_items(dict(audit.manifest)),
         "version": __version__,
         "fmt_int": fmt_int,

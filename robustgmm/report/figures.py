@@ -37,7 +37,7 @@ from pathlib import Path
 import matplotlib
 import numpy as np
 import pandas as pd
-from matplotlib.colors import ListedColormap
+from matplotlib.colors import ListedColormap, to_rgba
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
@@ -188,8 +188,14 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
     sig = frame["p_value"].to_numpy(float) < audit.alpha
     colours = np.where(sig, BLUE, GREY)
     area, width = _sizes(n)
-    ax.vlines(x, est - z * se, est + z * se, colors=colours, linewidth=width, alpha=0.7)
-    ax.scatter(x, est, s=area, c=colours, linewidths=0, zorder=3)
+    accepted = frame["acceptable"].to_numpy(bool)
+    # Variants that fail a specification test are drawn hollow and faint: they are
+    # shown, but the verdicts are judged on the acceptable ones.
+    rgba = [to_rgba(c, 0.75 if a else 0.3) for c, a in zip(colours, accepted)]
+    ax.vlines(x, est - z * se, est + z * se, colors=rgba, linewidth=width)
+    ax.scatter(x, est, s=area, facecolors=[to_rgba(c) if a else "none"
+                                           for c, a in zip(colours, accepted)],
+               edgecolors=colours, linewidths=np.where(accepted, 0.0, 0.9), zorder=3)
     ax.axhline(0.0, color=BLACK, linewidth=0.7)
     handles = [
         Line2D([], [], color=BLUE, marker="o", linestyle="-", markersize=4,
@@ -197,6 +203,10 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
         Line2D([], [], color=GREY, marker="o", linestyle="-", markersize=4,
                label="not significant"),
     ]
+    if not accepted.all():
+        handles.append(Line2D([], [], color=GREY, marker="o", markerfacecolor="none",
+                              linestyle="none", markersize=4,
+                              label="fails a specification test"))
     base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
     if base.size:
         ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
@@ -209,7 +219,7 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
         handles.append(Line2D([], [], color=GREEN, linestyle="--", label=f"true value {truth:g}"))
     ax.set_ylabel(f"estimate, {100 * (1 - audit.alpha):g}% CI", fontsize=8)
     ax.legend(handles=handles, fontsize=7, frameon=False, loc="lower left",
-              bbox_to_anchor=(0.0, 1.0), ncol=len(handles), borderaxespad=0.2)
+              bbox_to_anchor=(0.0, 1.0), ncol=min(len(handles), 5), borderaxespad=0.2)
     ax.tick_params(labelbottom=False)
     ax.set_xlim(-0.5 - 0.01 * n, n - 0.5 + 0.01 * n)
 
@@ -304,7 +314,7 @@ def plot_hansen_drift(ax, audit: AuditFolder):
 # ---------------------------------------------------------------------------
 # 3. AR coefficient against the OLS-FE band
 
-def _band_arrays(audit: AuditFolder, term: str, frame: pd.DataFrame):
+def band_arrays(audit: AuditFolder, term: str, frame: pd.DataFrame):
     """Lower/upper band per plotted variant: per-variant rows of bounds.csv when the
     audit writes them, else the single band of the base sample."""
     rows = audit.bounds_for(term)
@@ -340,7 +350,7 @@ def plot_ar_band(ax, audit: AuditFolder, term: str, *, max_tick_labels: int = MA
     se = frame["std_error"].to_numpy(float)
     z = _critical(audit.alpha)
     area, width = _sizes(n)
-    band = _band_arrays(audit, term, frame)
+    band = band_arrays(audit, term, frame)
     handles = []
     if band is not None:
         lo = np.minimum(band[0], band[1])
@@ -463,7 +473,7 @@ def _in_bounds(audit: AuditFolder) -> np.ndarray | None:
         return None
     term = audit.ar_terms[0]
     frame = audit.term_estimates(term, ok_only=False)
-    lo_hi = _band_arrays(audit, term, frame)
+    lo_hi = band_arrays(audit, term, frame)
     if lo_hi is None:
         return None
     lo, hi = np.minimum(*lo_hi), np.maximum(*lo_hi)
@@ -508,7 +518,10 @@ CAPTIONS = {
     "spec_curve": (
         "Each dot is one estimated variant's coefficient on {term}, sorted from smallest "
         "to largest, with its confidence interval; blue marks are significant at the "
-        "audit's level, grey ones are not, and the ringed dot is the base model. The "
+        "audit's level, grey ones are not, and the ringed dot is the base model. "
+        "Hollow, faint marks are variants that fail a specification test (Hansen, "
+        "AR(2) or difference-in-Hansen); they are shown but the verdict is judged on "
+        "the others. The "
         "panel underneath shows the choices each variant makes: read a column down for "
         "one variant's settings, read a row across to see where one choice puts the "
         "estimate. A robust coefficient keeps its sign and significance along the whole "

@@ -45,7 +45,9 @@ KNOWN_SETTINGS = ("equations", "transform", "steps", "form", "first_lag", "last_
 
 # Columns of variants.csv that are results or bookkeeping, never settings.
 RESULT_COLUMNS = frozenset(VARIANTS_REQUIRED) | {
-    "reason", "is_base", "base", "in_bounds", "instruments_per_unit", "periods",
+    "reason", "is_base", "base", "in_bounds", "instruments_per_unit", "periods", "order",
+    "parameters", "diff_hansen_level_p", "ar_term", "ar_coefficient", "ar_ols", "ar_fe",
+    "acceptable", "flags",
     "hansen", "sargan", "ar1", "ar2", "hansen_df", "sargan_df", "std_error_kind",
     "warnings", "cached", "seconds", "time", "elapsed",
 }
@@ -108,6 +110,10 @@ class AuditFolder:
     alpha: float
     thresholds: Mapping[str, float]
     truth: Mapping[str, Any] | None = None
+    #: True when variants.csv has an ``acceptable`` column (variants that estimated
+    #: and pass their specification tests; the verdicts are judged on those). When
+    #: it is absent every estimated variant counts as acceptable.
+    has_acceptable: bool = False
 
     # -- convenient views ---------------------------------------------------
     @property
@@ -144,7 +150,12 @@ class AuditFolder:
         known = set(self.estimates["term"])
         return tuple(t for t in terms if t in known)
 
-    def term_estimates(self, term: str, *, ok_only: bool = True) -> pd.DataFrame:
+    @property
+    def acceptable_variants(self) -> pd.DataFrame:
+        return self.variants[self.variants["acceptable"]]
+
+    def term_estimates(self, term: str, *, ok_only: bool = True,
+                       acceptable_only: bool = False) -> pd.DataFrame:
         """One row per variant for ``term``, joined with the variant's settings and
         diagnostics; columns from variants.csv keep their names."""
         est = self.estimates[self.estimates["term"] == term]
@@ -152,6 +163,8 @@ class AuditFolder:
                                     suffixes=("", "_est"))
         if ok_only:
             frame = frame[frame["status"] == "ok"]
+        if acceptable_only:
+            frame = frame[frame["acceptable"]]
         frame = frame[np.isfinite(frame["estimate"].to_numpy(dtype=float))]
         return frame.reset_index(drop=True)
 
@@ -249,11 +262,20 @@ def _rule_from(obj, fired_default=True) -> Rule:
     if not isinstance(figures, Mapping):
         figures = {"value": figures}
     fired = obj.get("fired", fired_default)
+    # verdict.json states a threshold as a value plus the setting that holds it
+    # ("threshold": 0.05, "threshold_name": "hansen_reject"); its catalogue as the
+    # setting name plus "threshold_value". Either way the report shows name = value.
+    threshold = _get(obj, "threshold", "thresholds")
+    name = _get(obj, "threshold_name")
+    if "threshold_value" in obj:
+        name, threshold = (threshold if isinstance(threshold, str) else name), obj["threshold_value"]
+    if isinstance(name, str) and name and threshold is not None and not isinstance(threshold, Mapping):
+        threshold = {name: threshold}
     return Rule(
         id=str(_get(obj, "id", "rule", "name", default="rule")),
         description=str(_get(obj, "description", "text", "message", default="")),
         source=str(_get(obj, "source", "reference", default="")),
-        threshold=_get(obj, "threshold", "thresholds"),
+        threshold=threshold,
         figures=dict(figures),
         fired=_as_bool(fired),
         effect=str(_get(obj, "effect", "severity", "level", "kind", default="")),
@@ -400,6 +422,12 @@ def read_audit_folder(out_dir) -> AuditFolder:
         variants["reason"] = ""
     variants["reason"] = variants["reason"].astype(object).where(
         variants["reason"].notna(), "").astype(str)
+    has_acceptable = "acceptable" in variants.columns
+    ok = (variants["status"] == "ok").to_numpy()
+    if has_acceptable:
+        variants["acceptable"] = variants["acceptable"].map(_as_bool).to_numpy(bool) & ok
+    else:
+        variants["acceptable"] = ok
     estimates = estimates.copy()
     estimates["variant"] = estimates["variant"].astype(str)
     estimates["term"] = estimates["term"].astype(str)
@@ -433,4 +461,5 @@ def read_audit_folder(out_dir) -> AuditFolder:
         alpha=_find_alpha(verdict, manifest),
         thresholds=_find_thresholds(verdict, manifest),
         truth=truth if isinstance(truth, Mapping) else None,
+        has_acceptable=has_acceptable,
     )

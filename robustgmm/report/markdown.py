@@ -40,7 +40,7 @@ def _table(headers, rows) -> list[str]:
 
 
 def _rule_lines(rule: dict) -> list[str]:
-    line = f"- **{esc(rule['id'])}**"
+    line = f"- **{esc(rule['id'])}**" + (f" \\[{esc(rule['effect'])}\\]" if rule["effect"] else "")
     if rule["description"]:
         line += f": {esc(rule['description'])}"
     if rule["figures"]:
@@ -62,10 +62,13 @@ def render_markdown(ctx: dict) -> str:
         md.append("")
         md.append(f"- Base model: **{esc(t['base'])}** (s.e. {esc(t['base_se'])}, "
                   f"p {esc(t['base_p'])})")
-        md.append(f"- Range over {t['n']} estimated variants: {esc(t['low'])} to "
+        md.append(f"- Range over {t['n']} {t['judged']} variants: {esc(t['low'])} to "
                   f"{esc(t['high'])} (median {esc(t['median'])})")
         md.append(f"- Positive in {t['n_positive']}, negative in {t['n_negative']}; "
                   f"significant at {esc(ctx['alpha'])} in {t['n_significant']} of {t['n']}")
+        if t["n"] != t["n_ok"]:
+            md.append(f"- Over all {t['n_ok']} estimated variants: {esc(t['ok_low'])} to "
+                      f"{esc(t['ok_high'])}")
         if t["truth"] is not None:
             md.append(f"- True value in the simulated data: {esc(t['truth'])}")
         md.append("")
@@ -76,6 +79,8 @@ def render_markdown(ctx: dict) -> str:
                 md.extend(_rule_lines(rule))
         else:
             md.append("No rule fired.")
+        if t["passed"]:
+            md += ["", f"Checked and not fired: {esc(t['passed'])}."]
         md.append("")
     if ctx["flags"]:
         md += ["### Model-level flags", ""]
@@ -108,10 +113,14 @@ def render_markdown(ctx: dict) -> str:
            "(Nickell 1981); a consistent estimate lies between them (Bond, Hoeffler & "
            "Temple 2001; Bond 2002).", ""]
     md += _table(ctx["bounds_headers"], [[esc(c) for c in row] for row in ctx["bounds_rows"]])
+    if ctx["bounds_note"]:
+        md += ["", esc(ctx["bounds_note"])]
     md += ["", "## Rules, sources and thresholds", ""]
-    md += _table(["rule", "what it checks", "threshold", "source"],
-                 [[code(r["id"]), esc(r["description"]), esc(r["threshold"]),
+    md += _table(["rule", "what it checks", "effect", "threshold", "source"],
+                 [[code(r["id"]), esc(r["description"]), esc(r["effect"]), esc(r["threshold"]),
                    esc(r["source"])] for r in ctx["catalogue"]])
+    if ctx["combination"]:
+        md += ["", f"**How the rules combine:** {esc(ctx['combination'])}"]
     md += ["", "\"Common practice\" marks a rule of thumb with no single published source.",
            "", "## Provenance", ""]
     md += _table(["item", "value"], [[esc(k), esc(v)] for k, v in ctx["provenance"]])

@@ -31,21 +31,64 @@ def _count_phrase(k: int, noun: str) -> str:
     return f"{k} {noun}{'s' if k != 1 else ''}"
 
 
-def _rule_names(term: TermSummary) -> str:
-    names = []
-    for rule in term.fired:
-        text = rule.description.strip() or rule.id.replace("_", " ")
-        names.append(text.rstrip("."))
-    return "; ".join(names)
+# Short clauses for the rules robustgmm.verdicts applies; other rules use their
+# own description.
+RULE_CLAUSES = {
+    "sign_change": "its sign changes across specifications",
+    "significance_flip": "whether it is significant depends on the specification",
+    "spread": "its size moves by more than {threshold} base-model standard errors",
+    "ar_outside_band": "the base estimate lies outside the within-OLS band",
+    "base_not_ok": "the base model could not be estimated",
+    "base_not_acceptable": "the base model fails its own specification tests",
+    "too_few_acceptable": "too few specifications pass their tests",
+}
+DECISIVE = ("fragile", "inconclusive")
 
 
-def term_sentence(term: TermSummary, alpha: float, lead: str) -> str:
+def _clause(rule) -> str:
+    text = RULE_CLAUSES.get(rule.id)
+    if text is None:
+        return (rule.description.strip() or rule.id.replace("_", " ")).rstrip(".")
+    value = rule.threshold
+    if isinstance(value, dict) and len(value) == 1:
+        value = next(iter(value.values()))
+    return text.format(threshold=f"{value:g}" if isinstance(value, (int, float)) else value)
+
+
+def _join(parts: list[str]) -> str:
+    return parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
+
+
+def _verdict_clause(term: TermSummary) -> str:
+    """'we judge it fragile: its sign changes ... and ...' (+ cautions)."""
+    if not term.verdict:
+        return ""
+    decisive = [r for r in term.fired if r.effect in DECISIVE or
+                (not r.effect and r.id in ("sign_change", "significance_flip", "base_not_ok",
+                                           "base_not_acceptable", "too_few_acceptable"))]
+    caution = [r for r in term.fired if r not in decisive]
+    text = f"we judge it {term.verdict}"
+    if decisive:
+        text += ", as " + _join([_clause(r) for r in decisive])
+    if caution:
+        text += (", though " if not decisive else "; also, ") + _join([_clause(r) for r in caution])
+    return text
+
+
+def term_sentence(term: TermSummary, alpha: float, lead: str, *, judged: str = "") -> str:
     """One sentence per focus term; ``lead`` is the opening words up to 'the
-    coefficient on' (e.g. 'Across 24 estimated specifications varying ...,')."""
+    coefficient on' (e.g. 'Across 24 estimated specifications varying ...,').
+    ``judged`` names the judged subset when it is smaller than every estimated
+    specification (then the full range is added)."""
     pct = f"{100 * alpha:g}%"
     subject = f"{lead} the coefficient on {term.term}" if lead else \
         f"The coefficient on {term.term}"
     if term.n == 0:
+        if term.n_ok:
+            return (f"No specification that passes its tests estimates the coefficient on "
+                    f"{term.term}; over all {term.n_ok} estimated specifications it ranges "
+                    f"from {fmt(term.ok_low)} to {fmt(term.ok_high)}; we judge it "
+                    f"{term.verdict or 'not at all'}.")
         return f"{subject} could not be estimated in any specification."
     if term.n == 1:
         core = (f"{subject} is {fmt(term.low)} (standard error "
@@ -53,13 +96,32 @@ def term_sentence(term: TermSummary, alpha: float, lead: str) -> str:
     else:
         core = (f"{subject} stays between {fmt(term.low)} and {fmt(term.high)} "
                 f"(base model {fmt(term.base_estimate)}, standard error "
-                f"{fmt(term.base_std_error)}); it is positive in {_of(term.n_positive, term.n)}"
+                f"{fmt(term.base_std_error)}); it is {_sign_phrase(term)}"
                 f" and significant at the {pct} level in {_of(term.n_significant, term.n)}")
-    verdict = f"we judge it {term.verdict}" if term.verdict else ""
-    rules = _rule_names(term)
-    if rules:
-        verdict += f" ({rules})"
+    if judged and term.n < term.n_ok and (fmt(term.ok_low), fmt(term.ok_high)) != (
+            fmt(term.low), fmt(term.high)):
+        core += (f" (over all {term.n_ok} estimated specifications, {fmt(term.ok_low)} to "
+                 f"{fmt(term.ok_high)})")
+    verdict = _verdict_clause(term)
     return core + ("; " + verdict if verdict else "") + "."
+
+
+def _sign_phrase(term: TermSummary) -> str:
+    if term.n_negative > term.n_positive:
+        return f"negative in {_of(term.n_negative, term.n)}"
+    return f"positive in {_of(term.n_positive, term.n)}"
+
+
+def _tests_text(audit: AuditFolder) -> str:
+    """Which specification tests make a variant acceptable, and at what level."""
+    t = audit.thresholds
+    levels = {t["hansen_reject"], t["ar2_reject"], t["difference_hansen_reject"]}
+    if len(levels) == 1:
+        return (f"Hansen, AR(2) and, in system GMM, difference-in-Hansen for the level "
+                f"equation, at the {100 * levels.pop():g}% level")
+    return (f"Hansen at {100 * t['hansen_reject']:g}%, AR(2) at {100 * t['ar2_reject']:g}% "
+            f"and, in system GMM, difference-in-Hansen for the level equation at "
+            f"{100 * t['difference_hansen_reject']:g}%")
 
 
 def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -> str:
@@ -68,14 +130,29 @@ def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -
     varied = varied_text(s)
     n_spec = s.n_ok
     if varied:
-        lead_first = f"Across {n_spec} estimated specifications varying {varied},"
+        opening = f"Across {n_spec} estimated specifications varying {varied}"
     elif n_spec == 1:
-        lead_first = "In the single estimated specification,"
+        opening = "In the single estimated specification"
     else:
-        lead_first = f"In the {n_spec} estimated specifications,"
+        opening = f"In the {n_spec} estimated specifications"
     sentences = []
+    judged = ""
+    if s.has_acceptable and s.n_acceptable < s.n_ok:
+        judged = "acceptable"
+        count = "none" if s.n_acceptable == 0 else str(s.n_acceptable)
+        verb = "passes" if s.n_acceptable == 1 else "pass"
+        sentences.append(f"{opening}, {count} {verb} {'its' if s.n_acceptable == 1 else 'their'} "
+                         f"specification tests ({_tests_text(audit)}); the verdicts rest on "
+                         f"{'this one' if s.n_acceptable == 1 else 'these'}.")
+        lead_first = "Among them,"
+    elif s.has_acceptable and s.n_ok:
+        lead_first = (f"{opening}, {'which passes its' if s.n_ok == 1 else 'all of which pass their'}"
+                      f" specification tests ({_tests_text(audit)}),")
+    else:
+        lead_first = opening + ","
     for i, term in enumerate(s.terms):
-        sentences.append(term_sentence(term, s.alpha, lead_first if i == 0 else ""))
+        sentences.append(term_sentence(term, s.alpha, lead_first if i == 0 else "",
+                                       judged=judged))
     for band in s.bands:
         sentences.append(
             f"The autoregressive coefficient {band.term} lies between the within "

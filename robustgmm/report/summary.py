@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from .figures import diagnostics_table, setting_name, value_text
+from .figures import band_arrays, setting_name, value_text
 from .inputs import AuditFolder, Rule
 
 VALUE_WORDS = {
@@ -97,9 +97,14 @@ def setting_phrase(column: str) -> str:
 
 @dataclass(frozen=True)
 class TermSummary:
+    """One focus term. ``n``, ``low`` ... ``n_negative`` describe the *judged*
+    variants: the acceptable ones (estimated and passing their specification tests)
+    when the audit marks them, else every estimated variant. ``n_ok``, ``ok_low`` and
+    ``ok_high`` describe every estimated variant."""
+
     term: str
     verdict: str
-    n: int                # estimated (ok) variants with an estimate for this term
+    n: int
     low: float
     high: float
     median: float
@@ -111,6 +116,10 @@ class TermSummary:
     n_negative: int
     fired: tuple[Rule, ...]
     truth: float | None
+    n_ok: int = 0
+    ok_low: float = float("nan")
+    ok_high: float = float("nan")
+    passed: tuple[str, ...] = ()
 
     @property
     def sign_stable(self) -> bool:
@@ -134,6 +143,8 @@ class BandSummary:
 class AuditSummary:
     n_variants: int
     n_ok: int
+    n_acceptable: int
+    has_acceptable: bool
     n_failed: int
     n_skipped: int
     varied: tuple[tuple[str, tuple[Any, ...]], ...]
@@ -170,11 +181,14 @@ def summarize(audit: AuditFolder) -> AuditSummary:
     varied = tuple((col, tuple(pd.unique(v[col]))) for col in audit.varied_settings)
     terms = []
     for tv in audit.term_verdicts:
-        frame = audit.term_estimates(tv.term)
+        every = audit.term_estimates(tv.term)
+        frame = every[every["acceptable"]]
         est = frame["estimate"].to_numpy(float)
         p = frame["p_value"].to_numpy(float)
-        base = frame[frame["variant"] == audit.base_variant]
+        all_est = every["estimate"].to_numpy(float)
+        base = every[every["variant"] == audit.base_variant]
         b = base.iloc[0] if not base.empty else None
+        passed = tv.details.get("passed", ())
         terms.append(TermSummary(
             term=tv.term, verdict=tv.verdict, n=len(frame),
             low=float(est.min()) if est.size else float("nan"),
@@ -185,22 +199,22 @@ def summarize(audit: AuditFolder) -> AuditSummary:
             base_p_value=float(b["p_value"]) if b is not None else float("nan"),
             n_significant=_count(p < audit.alpha),
             n_positive=_count(est > 0), n_negative=_count(est < 0),
-            fired=tv.fired, truth=audit.truth_value(tv.term)))
-    diag = diagnostics_table(audit)
+            fired=tv.fired, truth=audit.truth_value(tv.term),
+            n_ok=len(every),
+            ok_low=float(all_est.min()) if all_est.size else float("nan"),
+            ok_high=float(all_est.max()) if all_est.size else float("nan"),
+            passed=tuple(str(x) for x in passed) if isinstance(passed, (list, tuple)) else ()))
     bands = []
-    inside_col = "AR coef. inside OLS-FE band"
     for term in audit.ar_terms:
         band = audit.band(term)
         frame = audit.term_estimates(term)
         if band is None or frame.empty:
             continue
-        if inside_col in diag.columns and term == audit.ar_terms[0]:
-            states = diag.loc[frame["variant"], inside_col].to_numpy(float)
-            n_inside = _count(states == 0)
-        else:
-            lo, hi = min(band), max(band)
-            est = frame["estimate"].to_numpy(float)
-            n_inside = _count((est >= lo) & (est <= hi))
+        # per-variant bands when bounds.csv has them (each variant's own sample)
+        fe, ols = band_arrays(audit, term, frame)
+        lo, hi = np.minimum(fe, ols), np.maximum(fe, ols)
+        est = frame["estimate"].to_numpy(float)
+        n_inside = _count((est >= lo) & (est <= hi))
         bands.append(BandSummary(term, band[0], band[1], n_inside, len(frame)))
     hansen = ok["hansen_p"].to_numpy(float)
     hansen_f = hansen[np.isfinite(hansen)]
@@ -215,7 +229,8 @@ def summarize(audit: AuditFolder) -> AuditSummary:
         return (float(a.min()), float(a.max())) if a.size else (float("nan"), float("nan"))
 
     return AuditSummary(
-        n_variants=len(v), n_ok=len(ok), n_failed=_count(v["status"] == "failed"),
+        n_variants=len(v), n_ok=len(ok), n_acceptable=_count(v["acceptable"]),
+        has_acceptable=audit.has_acceptable, n_failed=_count(v["status"] == "failed"),
         n_skipped=_count(v["status"] == "skipped"), varied=varied, terms=tuple(terms),
         bands=tuple(bands),
         hansen_low=lohi(hansen)[0], hansen_high=lohi(hansen)[1],
@@ -244,12 +259,26 @@ def rule_figures_text(rule: Rule) -> str:
     """The figures of a fired rule as 'key = value' pairs."""
     items = []
     for key, value in rule.figures.items():
-        if isinstance(value, float):
-            value = fmt(value)
-        elif isinstance(value, (list, tuple)):
-            value = ", ".join(fmt(x) if isinstance(x, float) else str(x) for x in value)
-        items.append(f"{key} = {value}")
+        items.append(f"{key.replace('_', ' ')} = {figure_value(value)}")
     return "; ".join(items)
+
+
+def figure_value(value, limit: int = 8) -> str:
+    """One figure of a rule as text; long lists (e.g. variant ids) are cut at
+    ``limit`` items with the total stated."""
+    if value is None:
+        return "n/a"
+    if isinstance(value, bool):
+        return "yes" if value else "no"
+    if isinstance(value, float):
+        return fmt(value)
+    if isinstance(value, (list, tuple)):
+        items = [figure_value(x, limit) for x in value[:limit]]
+        more = f", … ({len(value)} in all)" if len(value) > limit else ""
+        return ", ".join(items) + more
+    if isinstance(value, dict):
+        return "; ".join(f"{k} = {figure_value(v, limit)}" for k, v in value.items())
+    return str(value)
 
 
 def threshold_text(value) -> str:
@@ -259,6 +288,8 @@ def threshold_text(value) -> str:
         return "; ".join(f"{k} = {threshold_text(v)}" for k, v in value.items())
     if isinstance(value, float):
         return f"{value:g}"
+    if isinstance(value, bool):
+        return str(value).lower()
     return str(value)
 
 
@@ -277,10 +308,13 @@ def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str,
     estimate with its standard error."""
     v = audit.variants
     settings = list(audit.setting_columns)
+    extra = [c for c in ("acceptable", "flags") if c == "acceptable" and audit.has_acceptable
+             or c in v.columns and c != "acceptable"]
     headers = (["variant"] + [setting_name(c) for c in settings]
                + ["status", "reason", "instruments", "units", "observations",
                   "Hansen p", "Sargan p", "AR(1) p", "AR(2) p"]
-               + [f"{t} (s.e.)" for t in audit.focus])
+               + (["diff-in-Hansen (levels) p"] if "diff_hansen_level_p" in v.columns else [])
+               + extra + [f"{t} (s.e.)" for t in audit.focus])
     est = audit.estimates.set_index(["variant", "term"])
     rows = []
     for _, r in v.iterrows():
@@ -290,6 +324,15 @@ def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str,
         cells += [Cell(r["status"], r["status"]), Cell(r["reason"], r["reason"])]
         cells += [Cell(fmt_int(r[c]), _num(r[c])) for c in ("instruments", "units", "observations")]
         cells += [Cell(fmt_p(r[c]), _num(r[c])) for c in ("hansen_p", "sargan_p", "ar1_p", "ar2_p")]
+        if "diff_hansen_level_p" in v.columns:
+            cells.append(Cell(fmt_p(r["diff_hansen_level_p"]), _num(r["diff_hansen_level_p"])))
+        for c in extra:
+            if c == "acceptable":
+                text = ("yes" if r[c] else "no") if r["status"] == "ok" else ""
+                cells.append(Cell(text, text))
+            else:
+                text = "" if pd.isna(r[c]) else str(r[c]).replace(";", ", ")
+                cells.append(Cell(text, text))
         for term in audit.focus:
             key = (r["variant"], term)
             if key in est.index:
