@@ -10,8 +10,10 @@
   ``joblib.parallel_config("dask")`` / ``parallel_backend("dask")``), with a
   ``dask.distributed`` client, and the variants run on the cluster. Dask is not
   required otherwise.
-* **Determinism**: each variant is estimated on its own, from the same inputs,
-  whatever the number of workers; results are returned in plan order.
+* **Determinism**: each variant is estimated on its own, from the same inputs and
+  with the same number of BLAS threads (:data:`BLAS_THREADS`, set with threadpoolctl
+  in this process and in every worker), whatever the number of workers; results
+  are returned in plan order, so an audit is bit-identical whatever ``jobs`` is.
 * **Panels**: the panel of each sample is built once by the caller and shared by
   every variant of that sample; tasks are dispatched grouped by sample and by
   instrument family (settings other than ``steps`` and ``errors``), so siblings that
@@ -52,6 +54,11 @@ from .io import atomic_write_text
 
 CACHE_FORMAT = 1
 OK, FAILED = "ok", "failed"
+#: BLAS threads per variant estimation, everywhere (this process, loky workers, dask
+#: workers). OpenBLAS sums in a different order with a different thread count, which
+#: moves results in the 14th digit; one fixed count makes an audit bit-identical
+#: whatever ``jobs`` is. Parallelism comes from running variants side by side.
+BLAS_THREADS = 1
 #: Rough cost of starting loky workers (process start and imports of numpy, scipy and
 #: the package; 1–5 s measured on a loaded 2-core machine). With ``jobs=None`` an
 #: audit whose estimated sequential time is below this runs in-process.
@@ -249,6 +256,42 @@ def _is_loky(backend_obj) -> bool:
     return type(backend_obj).__name__ == "LokyBackend"
 
 
+@contextlib.contextmanager
+def _blas_limit():
+    """Limit BLAS threads in this process for the duration of a run (covers the
+    in-process and threading paths; threads share the process-wide setting)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - a declared dependency
+        yield
+        return
+    from . import core  # noqa: F401  load numpy's and scipy's BLAS before limiting them
+    import scipy.linalg  # noqa: F401
+    with threadpool_limits(limits=BLAS_THREADS, user_api="blas"):
+        yield
+
+
+_LIMITED_PIDS: set[int] = set()
+
+
+def _limit_worker_blas(parent_pid: int) -> None:
+    """In a worker process (loky, dask), fix the BLAS threads once for its lifetime.
+
+    Not done in the parent process, where :func:`_blas_limit` already holds (and a
+    per-task set/restore would race between threads)."""
+    pid = os.getpid()
+    if pid == parent_pid or pid in _LIMITED_PIDS:
+        return
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover
+        return
+    from . import core  # noqa: F401
+    import scipy.linalg  # noqa: F401
+    threadpool_limits(limits=BLAS_THREADS, user_api="blas")
+    _LIMITED_PIDS.add(pid)
+
+
 def _default_is_loky() -> bool:
     """True unless the caller activated another joblib backend (e.g. dask)."""
     return _is_loky(joblib.parallel.get_active_backend()[0])
@@ -260,8 +303,9 @@ def _backend_context(backend: str | None, n_workers: int):
 
     ``backend=None`` keeps whatever backend the caller activated (e.g. dask through
     ``joblib.parallel_config``) and otherwise uses loky. With loky, BLAS threads per
-    worker are capped at ``cores // workers`` (joblib sets the usual thread-count
-    environment variables in the worker processes).
+    worker are capped at :data:`BLAS_THREADS` (joblib sets the usual thread-count
+    environment variables in the worker processes), so workers never oversubscribe
+    the cores.
     """
     if backend is None:
         active, _ = joblib.parallel.get_active_backend()
@@ -269,8 +313,7 @@ def _backend_context(backend: str | None, n_workers: int):
     if backend is None:
         yield _backend_name(joblib.parallel.get_active_backend()[0])
     elif backend == "loky":
-        threads = max(1, joblib.cpu_count() // max(n_workers, 1))
-        with joblib.parallel_config(backend="loky", inner_max_num_threads=threads):
+        with joblib.parallel_config(backend="loky", inner_max_num_threads=BLAS_THREADS):
             yield "loky"
     else:
         with joblib.parallel_config(backend=backend):
@@ -330,21 +373,23 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
 
     backend_used = "in-process"
     n_workers = 1
+    parent = os.getpid()
     try:
         if pending and jobs is None and backend is None and _default_is_loky():
             # jobs not set: time the first variant here; when the whole audit would
             # take less than starting worker processes costs, stay in this process
             first = pending.pop(0)
-            record(first.id, estimate_variant(first.spec, panels[sample_key(first.spec.sample)],
-                                              fit, sample))
+            with _blas_limit():
+                record(*_task(first.id, first.spec, panels[sample_key(first.spec.sample)],
+                              fit, sample, parent))
             if len(pending) * outcomes[first.id].seconds < WORKER_STARTUP_SECONDS:
                 n_jobs = 1
         if pending:
             n_workers = joblib.effective_n_jobs(n_jobs)
-            with _backend_context(backend, n_workers) as backend_used:
+            with _backend_context(backend, n_workers) as backend_used, _blas_limit():
                 n_workers = joblib.effective_n_jobs(n_jobs)  # as the active backend sees it
                 tasks = (joblib.delayed(_task)(v.id, v.spec, panels[sample_key(v.spec.sample)],
-                                               fit, sample) for v in pending)
+                                               fit, sample, parent) for v in pending)
                 for vid, payload in _parallel(n_jobs)(tasks):
                     record(vid, payload)
             if n_workers == 1:
@@ -383,7 +428,8 @@ def _parallel(n_jobs: int) -> joblib.Parallel:
         return joblib.Parallel(n_jobs=n_jobs, return_as="generator")
 
 
-def _task(vid: str, spec, panel, fit, sample):
+def _task(vid: str, spec, panel, fit, sample, parent_pid: int):
+    _limit_worker_blas(parent_pid)
     return vid, estimate_variant(spec, panel, fit, sample)
 
 

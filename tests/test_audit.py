@@ -1,0 +1,160 @@
+"""The audit end to end (robustgmm.audit): contract files, determinism across jobs,
+cache reuse, failed and skipped variants, the command line on a 24-variant model."""
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from robustgmm import __version__, core, grid
+from robustgmm.audit import audit, default_cache_dir, plan_frame, write_audit
+from robustgmm.bounds import ar_bounds
+from robustgmm.modelfile import spec_to_toml
+
+from helpers_audit import CountingFit, make_spec, write_panel
+
+FILES = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json")
+VARY = {"equations": ["difference", "system"], "steps": [1, 2],
+        "last_lag": [2, 3, 9, "all"]}  # 9 reaches past the 6-period panel
+
+
+@pytest.fixture
+def spec(tmp_path):
+    return make_spec(tmp_path, VARY, model={"outcome_lags": [1, 2]})
+
+
+def test_contract_tables_and_files(spec, tmp_path):
+    result = audit(spec, jobs=1)
+    out = write_audit(result, tmp_path / "out", model_file="model.toml")
+    for name in FILES + ("manifest.json",):
+        assert (out / name).is_file()
+    assert not list(out.glob(".*.tmp"))  # atomic writes leave no temporaries
+
+    variants = pd.read_csv(out / "variants.csv")
+    required = ["variant", "status", "reason", "instruments", "units", "observations",
+                "hansen_p", "sargan_p", "ar1_p", "ar2_p"]
+    assert set(required) <= set(variants.columns)
+    assert {"equations", "steps", "last_lag"} <= set(variants.columns)
+    assert variants["is_base"].iloc[0] and variants["is_base"].sum() == 1
+    assert len(variants) == 16 and variants["variant"].is_unique
+    # last_lag 9 on a 6-period panel is the "all" window: skipped as a twin
+    skipped = variants[variants["status"] == "skipped"]
+    assert len(skipped) == 4 and skipped["reason"].str.contains("same estimation as").all()
+    assert (variants.loc[variants["status"] == "ok", "acceptable"].notna()).all()
+
+    estimates = pd.read_csv(out / "estimates.csv")
+    assert list(estimates.columns[:3]) == ["variant", "term", "estimate"]
+    assert {"std_error", "p_value"} <= set(estimates.columns)
+    ok_ids = set(variants.loc[variants["status"] == "ok", "variant"])
+    assert set(estimates["variant"]) == ok_ids
+    # files round-trip exactly (repr-exact floats)
+    np.testing.assert_array_equal(estimates["estimate"].to_numpy(),
+                                  result.estimates["estimate"].to_numpy())
+
+    bounds = pd.read_csv(out / "bounds.csv")
+    assert {"term", "ols", "fe", "ols_std_error", "fe_std_error", "variant"} <= set(bounds)
+    base_rows = bounds[bounds["is_base"]]
+    assert list(base_rows["term"]) == ["y[t-1]", "y[t-2]", "sum(y[t-1], y[t-2])"]
+    assert bounds.index[bounds["is_base"]].tolist() == [0, 1, 2]  # base rows first
+    # the base rows are the bounds on the base model's estimation sample
+    panel = grid.load_panels(spec)[grid.sample_key(spec.sample)]
+    direct = ar_bounds(spec, panel, core.estimation_sample(spec, panel))
+    assert base_rows["ols"].iloc[0] == pytest.approx(direct.term("y[t-1]").ols, rel=1e-12)
+    assert base_rows["fe"].iloc[2] == pytest.approx(direct.term("sum(y[t-1], y[t-2])").fe,
+                                                    rel=1e-12)
+    # in_bounds in variants.csv is the persistence (sum) check of each variant
+    ok = variants[variants["status"] == "ok"]
+    lo = np.minimum(ok["ar_ols"], ok["ar_fe"])
+    hi = np.maximum(ok["ar_ols"], ok["ar_fe"])
+    expected = (ok["ar_coefficient"] >= lo) & (ok["ar_coefficient"] <= hi)
+    assert (ok["in_bounds"].astype(bool) == expected).all()
+    assert (ok["ar_term"] == "sum(y[t-1], y[t-2])").all()
+
+    verdict = json.loads((out / "verdict.json").read_text())
+    assert set(verdict["terms"]) == {"y[t-1]", "y[t-2]", "x[t]", "w[t]"}
+    for term in verdict["terms"].values():
+        assert term["verdict"] in ("robust", "fragile", "inconclusive")
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["version"] == __version__
+    assert manifest["model_file"] == "model.toml"
+    assert manifest["data_hash"] == panel.data_hash
+    assert manifest["base_variant"] == variants["variant"].iloc[0]
+    assert manifest["vary"] == ["equations", "steps", "last_lag"]
+    assert manifest["counts"]["skipped"] == 4
+    assert manifest["timings"]["total_seconds"] > 0
+    assert "not proof" in manifest["disclaimer"]
+
+
+def test_identical_outputs_whatever_jobs_and_through_the_cache(spec, tmp_path):
+    one = write_audit(audit(spec, jobs=1), tmp_path / "one")
+    two = write_audit(audit(spec, jobs=2), tmp_path / "two")
+    cache = tmp_path / "cache"
+    write_audit(audit(spec, jobs=2, cache_dir=cache), tmp_path / "warm")
+    fit = CountingFit()
+    rerun = audit(spec, jobs=1, cache_dir=cache, fit=fit)
+    cached = write_audit(rerun, tmp_path / "cached")
+    assert fit.calls == 0 and rerun.manifest["run"]["computed"] == 0
+    assert rerun.manifest["run"]["cached"] == 12
+    for name in FILES:
+        text = (one / name).read_bytes()
+        assert (two / name).read_bytes() == text, name
+        assert (cached / name).read_bytes() == text, name
+
+
+def test_failed_variants_are_reported_and_the_audit_completes(spec):
+    def fails(s):
+        return s.equations == "difference" and s.steps == 1 and s.last_lag == 3
+    from robustgmm.errors import EstimationError
+    fit = CountingFit(fail=[(fails, EstimationError("the weight matrix is singular"))])
+    result = audit(spec, jobs=1, fit=fit)
+    v = result.variants
+    failed = v[v["status"] == "failed"]
+    assert len(failed) == 1 and failed["reason"].iloc[0] == "the weight matrix is singular"
+    assert failed["variant"].iloc[0] not in set(result.estimates["variant"])
+    assert failed["hansen_p"].isna().all()
+    flags = {f["id"]: f for f in result.verdict["model"]}
+    assert flags["variants_failed"]["figures"]["ids"] == list(failed["variant"])
+
+
+def test_plan_frame_is_reexported_and_matches_the_audit(spec):
+    frame = plan_frame(spec)
+    result = audit(spec, jobs=1)
+    assert list(frame["variant"]) == list(result.variants["variant"])
+    assert list(frame["status"].replace("planned", "ok")) == list(result.variants["status"])
+    planned = frame["status"] == "planned"
+    np.testing.assert_array_equal(frame.loc[planned, "instruments"].to_numpy(),
+                                  result.variants.loc[planned, "instruments"].to_numpy())
+    assert default_cache_dir("x") == Path("x") / ".cache"
+
+
+@pytest.mark.slow
+def test_command_line_on_a_24_variant_model(tmp_path):
+    """The issue's acceptance check: a model file with 24 variants on simulated data,
+    ``robustgmm audit --jobs 2`` gives complete outputs identical to ``--jobs 1``."""
+    write_panel(tmp_path, n_units=80, n_periods=7, seed=11)
+    spec = make_spec(tmp_path, {"equations": ["difference", "system"], "transform": ["fd", "fod"],
+                                "form": ["per-period", "collapsed"], "last_lag": [2, 3, "all"]})
+    assert len(grid.expand(spec)) == 24
+    model = tmp_path / "model.toml"
+    text = spec_to_toml(spec).replace(str(tmp_path / "panel.csv"), "panel.csv")
+    model.write_text(text)
+    env = dict(os.environ, MPLBACKEND="Agg")
+    outs = {}
+    for jobs in (1, 2):
+        out = tmp_path / f"out{jobs}"
+        proc = subprocess.run([sys.executable, "-m", "robustgmm", "audit", str(model),
+                               "--out", str(out), "--jobs", str(jobs)],
+                              capture_output=True, text=True, env=env, timeout=600)
+        assert proc.returncode == 0, proc.stderr
+        outs[jobs] = out
+    variants = pd.read_csv(outs[2] / "variants.csv")
+    assert len(variants) == 24 and (variants["status"] == "ok").all()
+    assert len(pd.read_csv(outs[2] / "estimates.csv")) >= 24 * 3
+    for name in FILES:
+        assert (outs[1] / name).read_bytes() == (outs[2] / name).read_bytes(), name
