@@ -86,7 +86,8 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     t0 = time.perf_counter()
     panels = grid.load_panels(spec, panel)
     t_load = time.perf_counter()
-    planned = grid.plan(spec, panels)
+    # counts come with each estimation; planning here only does the cheap checks
+    planned = grid.plan(spec, panels, counts=False)
     t_plan = time.perf_counter()
     outcomes, stats = runner.run_variants(planned, panels, jobs=jobs, cache_dir=cache_dir,
                                           progress=progress, backend=backend, fit=fit)
@@ -157,6 +158,8 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
         row.update(v.settings_dict())
         status = v.status if o is None else o.status
         reason = v.reason if o is None else o.reason
+        if status == runner.FAILED and grid.is_order_condition(reason):
+            status = SKIPPED  # the order condition is an impossible combination, as in the plan
         row.update(status=status, reason=reason, instruments=v.instruments,
                    parameters=v.parameters, units=v.units, observations=None)
         fit = o.fit if (o is not None and o.status == runner.OK) else None

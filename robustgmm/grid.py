@@ -356,12 +356,15 @@ def _panel_checks(spec: Spec, panel) -> str:
     return ""
 
 
-def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | None = None
-         ) -> list[Variant]:
+def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | None = None,
+         *, counts: bool = True) -> list[Variant]:
     """Check every variant on its sample's panel and count its instruments.
 
-    Returns the variants (same order) with status, reason, instruments, parameters,
-    units and observations filled in.
+    Returns the variants (same order) with status and reason, and, with
+    ``counts=True``, instruments, parameters, units and observations from the
+    core's design (one pass over the data per variant). ``counts=False`` does the
+    cheap checks only; :func:`robustgmm.audit.audit` uses it because estimation
+    reports the same counts (and the order condition) anyway.
     """
     core = _core()
     variants = list(expand(spec) if variants is None else variants)
@@ -379,29 +382,6 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
         if reason:
             out.append(dataclasses.replace(v, status=SKIPPED, reason=reason))
             continue
-        try:
-            n_instr, n_par = design_counts(v.spec, panel)
-            mask = core.estimation_sample(v.spec, panel)
-        except EstimationError as exc:
-            message = _one_line(exc)
-            if message.startswith("fewer instruments"):
-                # the order condition: an impossible combination, skipped with its counts
-                out.append(dataclasses.replace(v, status=SKIPPED, reason=message))
-            else:
-                # a property of the data (no observations left, no variation): the
-                # variant stays planned and the runner records it as failed
-                out.append(dataclasses.replace(v, reason=f"expected to fail: {message}"))
-            continue
-        units = int(mask.any(axis=1).sum())
-        obs = int(mask.sum())
-        filled = dataclasses.replace(v, instruments=n_instr, parameters=n_par,
-                                     units=units, observations=obs)
-        if n_instr < n_par:  # the core raises first; kept for other counters
-            out.append(dataclasses.replace(
-                filled, status=SKIPPED,
-                reason=f"fewer instruments ({n_instr}) than parameters ({n_par}): "
-                       "the model is not identified"))
-            continue
         # a window reaching past the deepest lag is the "all" window
         eff_spec = v.spec
         if reaches_past_panel(v.spec, panel.n_periods):
@@ -410,14 +390,43 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
         twin = effective.get(key)
         if twin is not None and not v.is_base:
             out.append(dataclasses.replace(
-                filled, status=SKIPPED,
+                v, status=SKIPPED,
                 reason=f"same estimation as variant {twin}: last_lag = {v.spec.last_lag} "
                        f"reaches past the deepest lag of the {v.spec.sample.name} "
                        f"({panel.n_periods} periods), which makes it last_lag = all"))
             continue
         effective.setdefault(key, v.id)
-        out.append(filled)
+        out.append(_with_counts(v, panel) if counts else v)
     return out
+
+
+def _with_counts(v: Variant, panel) -> Variant:
+    core = _core()
+    try:
+        n_instr, n_par = design_counts(v.spec, panel)
+        mask = core.estimation_sample(v.spec, panel)
+    except EstimationError as exc:
+        message = _one_line(exc)
+        if is_order_condition(message):
+            # the order condition: an impossible combination, skipped with its counts
+            return dataclasses.replace(v, status=SKIPPED, reason=message)
+        # a property of the data (no observations left, no variation): the variant
+        # stays planned and the runner records it as failed
+        return dataclasses.replace(v, reason=f"expected to fail: {message}")
+    filled = dataclasses.replace(v, instruments=n_instr, parameters=n_par,
+                                 units=int(mask.any(axis=1).sum()), observations=int(mask.sum()))
+    if n_instr < n_par:  # the core raises first; kept for other counters
+        return dataclasses.replace(
+            filled, status=SKIPPED,
+            reason=f"fewer instruments ({n_instr}) than parameters ({n_par}): "
+                   "the model is not identified")
+    return filled
+
+
+def is_order_condition(message: str) -> bool:
+    """Whether an estimation message is the order condition (the core's wording:
+    "fewer instruments (L) than parameters (K) ...")."""
+    return message.startswith("fewer instruments")
 
 
 def _one_line(exc: BaseException) -> str:

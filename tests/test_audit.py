@@ -158,3 +158,15 @@ def test_command_line_on_a_24_variant_model(tmp_path):
     assert len(pd.read_csv(outs[2] / "estimates.csv")) >= 24 * 3
     for name in FILES:
         assert (outs[1] / name).read_bytes() == (outs[2] / name).read_bytes(), name
+
+
+def test_order_condition_is_a_skip_in_the_audit_too(tmp_path):
+    spec = make_spec(tmp_path, {"last_lag": [2, "all"]},
+                     model={"outcome_lags": [1, 2], "time_effects": False,
+                            "regressors": [{"name": "x", "lags": [0, 1], "role": "endogenous"}]},
+                     method={"equations": "difference"}, instruments={"form": "collapsed"})
+    v = audit(spec, jobs=1).variants.set_index("last_lag")
+    assert v.loc[2, "status"] == "skipped"
+    assert v.loc[2, "reason"].startswith("fewer instruments (2) than parameters (4)")
+    assert v.loc["all", "status"] == "ok"
+    assert plan_frame(spec).set_index("last_lag").loc[2, "reason"] == v.loc[2, "reason"]
