@@ -10,10 +10,10 @@ import numpy as np
 from ..data import Panel
 from ..spec import Spec
 from .design import Design
-from .estimator import GMMProblem, fit
+from .estimator import GMMProblem, fit, fit_family, share_key
 from .results import Counts, FitResult, TermEstimate, TestResult
 
-__all__ = ["fit", "count_instruments", "estimation_sample", "FitResult", "TermEstimate",
+__all__ = ["fit", "fit_family", "share_key", "count_instruments", "estimation_sample", "FitResult", "TermEstimate",
            "TestResult", "Counts", "Design", "GMMProblem"]
 
 

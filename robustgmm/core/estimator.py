@@ -14,11 +14,30 @@ Standard errors: conventional ``σ² (X'ZAZ'X)⁻¹`` (one-step) or ``(X'ZWZ'X)�
 (two-step); cluster-robust by unit for one-step,
 ``(X'ZAZ'X)⁻¹ X'ZA S A Z'X (X'ZAZ'X)⁻¹``; Windmeijer (2005, eq. (3.4)) corrected for
 two-step, ``V₂ + D V₂ + V₂ D' + D V₁ D'`` with ``D = ∂b₂/∂b₁``.
+
+Passes over the data. A fit reads the units three times (a fourth and more for
+iterated weights): the first moments (``Z'X``, ``Z'y``, ``Z'HZ``, ``X'X``); the
+robust weight ``S`` at the one-step estimate; and a final pass for the Windmeijer
+term and the AR(m) sums. A :class:`MomentEngine` runs the passes over chunks of
+units whose size follows a memory budget (:func:`memory_budget`), keeping the
+prepared chunks between passes only while they all fit in half the budget.
+
+Shared work (:func:`fit_family`): specs that differ only in ``steps``, ``errors``
+and ``last_lag`` (same :func:`share_key`) share one engine. Its design is the
+widest instrument set of the family (``last_lag = "all"`` when the members differ
+in it); a member's moment matrices are sub-blocks of the engine's (the moments of a
+subset of instrument columns are the corresponding rows and columns), its one-step
+estimate and robust weight are computed once and reused by its two-step and
+iterated siblings, and the passes of all members run together.
 """
 from __future__ import annotations
 
+import dataclasses
+import json
 import math
+import os
 import warnings as _warnings
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import stats
@@ -26,102 +45,229 @@ from scipy import stats
 from ..data import Panel
 from ..errors import EstimationError
 from ..spec import Spec, is_deterministic_label, settings_of
-from .design import TRANSFORMED, Design
-from .linalg import independent_columns, solve_sym, sym_pinv
-from .moments import first_moments, residuals, unit_instrument_regressor, unit_moments
+from .design import Design
+from .linalg import independent_columns, inverse_or_pinv, sym_pinv
+from .moments import (ARSums, Layout, first_moments, prepare, residual_rows,
+                      unit_moments_t, windmeijer_term)
 from .results import Counts, FitResult, TermEstimate, TestResult
 
-DEFAULT_CHUNK_BYTES = 192 * 2**20
-DEFAULT_CACHE_BYTES = 1024 * 2**20
+#: Memory the core's chunk arrays may use, in MB (override with the environment
+#: variable ``ROBUSTGMM_MEMORY_MB`` or the ``memory_mb`` argument of :func:`fit`).
+DEFAULT_MEMORY_MB = 1024
+MEMORY_ENV = "ROBUSTGMM_MEMORY_MB"
 ITERATION_TOL = 1e-10
 MAX_ITERATIONS = 200
 
 
-class ChunkSource:
-    """Yields the design's chunks of units; keeps them in memory when they fit.
+def memory_budget(memory_mb: float | None = None) -> int:
+    """The memory budget in bytes: ``memory_mb``, else ``$ROBUSTGMM_MEMORY_MB``, else
+    :data:`DEFAULT_MEMORY_MB`. A value that is not a positive number is an error."""
+    source = "memory_mb"
+    if memory_mb is None:
+        env = os.environ.get(MEMORY_ENV)
+        if env not in (None, ""):
+            source = MEMORY_ENV
+            try:
+                memory_mb = float(env)
+            except ValueError:
+                memory_mb = math.nan
+        else:
+            memory_mb = DEFAULT_MEMORY_MB
+    if not (isinstance(memory_mb, (int, float)) and math.isfinite(memory_mb) and memory_mb > 0):
+        raise ValueError(f"{source} must be a positive number of megabytes, not {memory_mb!r}")
+    return int(memory_mb * 2**20)
 
-    Memory is bounded by one chunk (plus the L×L matrices) when the panel is too
-    large to keep: the chunks are then rebuilt on each pass over the data.
+
+class ChunkSource:
+    """Yields the design's chunks of units in kernel layout (:mod:`.moments`).
+
+    Chunk size: a quarter of the memory budget divided by the bytes one unit needs
+    while its chunk is built and passed over. Prepared chunks are kept between
+    passes while the kept ones fit in half the budget; the others are rebuilt on
+    each pass. Either way the core's arrays stay within the budget, whatever the
+    number of units.
     """
 
-    def __init__(self, design: Design, chunk_units: int | None = None,
-                 chunk_bytes: int = DEFAULT_CHUNK_BYTES, cache_bytes: int = DEFAULT_CACHE_BYTES):
+    def __init__(self, design: Design, layout: Layout, chunk_units: int | None = None,
+                 budget: int | None = None):
         self.design = design
+        self.layout = layout
+        budget = memory_budget() if budget is None else int(budget)
         N = design.panel.n_units
-        per_unit = self.bytes_per_unit(design)
+        prepared, working = layout.bytes_per_unit(len(design.extra_terms))
         if chunk_units is None:
-            chunk_units = max(1, int(chunk_bytes // per_unit))
+            chunk_units = max(1, (budget // 4) // working)
         self.chunk_units = max(1, min(int(chunk_units), max(N, 1)))
         self.ranges = [(lo, min(lo + self.chunk_units, N)) for lo in range(0, N, self.chunk_units)]
-        self.keep = per_unit * N <= cache_bytes
+        self.budget = budget
+        self.cache_limit = budget // 2
+        self.cached_bytes = 0
+        self.builds = 0
         self._cache: dict[int, object] = {}
 
-    @staticmethod
-    def bytes_per_unit(design: Design) -> int:
-        P = design.P
-        k = len(design.x_labels_all) + len(design.extra_terms)
-        width = sum(len(b.cols) for b in design.blocks)
-        # arrays of a chunk plus the per-unit Z'X of the Windmeijer pass
-        return 8 * (P * k * 6 + width + design.L_all * (len(design.x_labels_all) + 2)) + 64
+    @property
+    def keep(self) -> bool:
+        """Whether every chunk is kept between passes (after the first pass)."""
+        return len(self._cache) == len(self.ranges)
 
     def __iter__(self):
         for pos, (lo, hi) in enumerate(self.ranges):
-            if pos in self._cache:
-                yield self._cache[pos]
-                continue
-            chunk = self.design.chunk(lo, hi)
-            if self.keep:
-                self._cache[pos] = chunk
-            yield chunk
+            pc = self._cache.get(pos)
+            if pc is None:
+                pc = prepare(self.design.chunk(lo, hi), self.layout)
+                self.builds += 1
+                size = pc.nbytes
+                if self.cached_bytes + size <= self.cache_limit:
+                    self._cache[pos] = pc
+                    self.cached_bytes += size
+            yield pc
 
 
-def _p_normal(z):
-    return float(2 * stats.norm.sf(abs(z))) if np.isfinite(z) else math.nan
+class _PassContext:
+    """Per-chunk memo of one pass: residual rows per coefficient vector and
+    ``G'`` per (problem, coefficient vector), so that family members that need the
+    same arrays compute them once."""
+
+    def __init__(self, pc, layout):
+        self.pc = pc
+        self.layout = layout
+        self._resid: dict = {}
+        self._gt: dict = {}
+
+    def resid(self, beta_all):
+        key = beta_all.tobytes()
+        out = self._resid.get(key)
+        if out is None:
+            out = self._resid[key] = residual_rows(self.pc, beta_all)
+        return out
+
+    def gt(self, prob, beta):
+        key = (id(prob), beta.tobytes())
+        out = self._gt.get(key)
+        if out is None:
+            out = self._gt[key] = unit_moments_t(self.pc, self.layout,
+                                                 self.resid(prob.beta_all(beta)), prob.scatter)
+        return out
 
 
-def _chi2(stat, df):
-    """A chi-squared test; None when it has no degrees of freedom (an exactly or
-    under-identified instrument set has nothing to test)."""
-    if df is None or df <= 0:
-        return None
-    if not np.isfinite(stat):
-        return TestResult(float(stat), math.nan, int(df))
-    return TestResult(float(stat), float(stats.chi2.sf(stat, df)), int(df))
+class MomentEngine:
+    """Chunked passes over the units of one design (the widest of a family)."""
+
+    def __init__(self, design: Design, chunk_units: int | None = None,
+                 memory_mb: float | None = None):
+        self.design = design
+        self.layout = Layout(design)
+        self.source = ChunkSource(design, self.layout, chunk_units, memory_budget(memory_mb))
+        self.passes = 0
+        self._first = None
+        self._keep_x = None
+
+    def first(self):
+        """``Z'X``, ``Z'y``, ``Z'HZ`` (every design column) and ``X'X``, summed once."""
+        if self._first is None:
+            lay = self.layout
+            zx = np.zeros((lay.L, lay.K)); zy = np.zeros(lay.L)
+            zhz = np.zeros((lay.L, lay.L)); xx = np.zeros((lay.K, lay.K))
+            for pc in self.source:
+                a, b, c, e = first_moments(pc, lay)
+                zx += a; zy += b; zhz += c; xx += e
+            self.passes += 1
+            self._first = (zx, zy, zhz, xx)
+        return self._first
+
+    def keep_x(self) -> np.ndarray:
+        if self._keep_x is None:
+            self._keep_x = independent_columns(self.first()[3])
+        return self._keep_x
+
+    def run_pass(self, tasks) -> None:
+        """One pass over the chunks; each task is called with the chunk's context."""
+        for pc in self.source:
+            ctx = _PassContext(pc, self.layout)
+            for task in tasks:
+                task(ctx)
+        self.passes += 1
 
 
-def efficient_gmm(zx, zy, weight):
-    """``b = (X'Z W Z'X)⁻¹ X'Z W Z'y`` and ``(X'Z W Z'X)⁻¹``."""
-    xzw = zx.T @ weight
-    bread = xzw @ zx
-    bread_inv = sym_pinv(bread)[0] if np.linalg.matrix_rank(bread) < bread.shape[0] else np.linalg.inv(bread)
-    return bread_inv @ (xzw @ zy), bread_inv
+class _NotSubset(Exception):
+    """A member's instrument columns are not all in the engine's design."""
 
 
-def hansen_statistic(zx, zy, weight, beta):
-    ze = zy - zx @ beta
-    return float(ze @ weight @ ze)
+def _column_map(member: Design, engine: Design) -> np.ndarray:
+    if member is engine:
+        return np.arange(member.L_all)
+    where = {(c.group, c.equation, c.description): j for j, c in enumerate(engine.z_columns)}
+    try:
+        return np.asarray([where[(c.group, c.equation, c.description)]
+                           for c in member.z_columns], dtype=np.int64)
+    except KeyError:
+        raise _NotSubset() from None
+
+
+class _SumS:
+    """Task: ``S = Σ g_i g_i'`` and the transformed-equation sum of squared residuals."""
+
+    def __init__(self, prob, beta):
+        self.prob, self.beta = prob, beta
+        self.S = np.zeros((prob.L, prob.L))
+        self.ssr = 0.0
+
+    def __call__(self, ctx):
+        gt = ctx.gt(self.prob, self.beta)
+        self.S += gt @ gt.T
+        resid = ctx.resid(self.prob.beta_all(self.beta))
+        self.ssr += float((resid[ctx.layout.transformed_slots] ** 2).sum())
+
+
+class _FinalSums:
+    """Task: Windmeijer term ``T`` (when asked) and the AR(m) sums at ``beta``."""
+
+    def __init__(self, prob, beta, beta_prev, weight, need_windmeijer):
+        self.prob, self.beta, self.beta_prev = prob, beta, beta_prev
+        self.need = need_windmeijer
+        ze = prob.zy - prob.zx @ beta
+        self.a = weight @ ze
+        self.a_all = prob.spread(self.a)
+        self.T = np.zeros((prob.L, prob.K))
+        self.ar = ARSums(prob.L, prob.K)
+
+    def __call__(self, ctx):
+        prob = self.prob
+        gt = ctx.gt(prob, self.beta)
+        if self.need:
+            gtp = ctx.gt(prob, self.beta_prev)
+            self.T += windmeijer_term(ctx.pc, ctx.layout, gtp, self.a, self.a_all,
+                                      prob.scatter, prob.keep_x)
+        # AR(m): differenced level residuals (Arellano & Bond 1991, eq. (8))
+        self.ar.add(ctx.pc, prob.beta_all(self.beta), prob.keep_x, gt)
 
 
 class GMMProblem:
-    """The moment sums of one model and the estimators built on them."""
+    """The moment sums of one model and the estimators built on them.
 
-    def __init__(self, spec: Spec, panel: Panel, chunk_units: int | None = None):
+    ``engine``: a :class:`MomentEngine` to share (its design must contain every
+    instrument column of this model); by default the problem has its own.
+    """
+
+    def __init__(self, spec: Spec, panel: Panel, chunk_units: int | None = None, *,
+                 engine: MomentEngine | None = None, memory_mb: float | None = None,
+                 design: Design | None = None):
         self.spec = spec
-        self.design = Design(spec, panel)
-        self.source = ChunkSource(self.design, chunk_units)
+        self.design = design if design is not None else Design(spec, panel)
+        if engine is None:
+            engine = MomentEngine(self.design, chunk_units, memory_mb)
+        self.engine = engine
+        self.source = engine.source
+        self._cmap = _column_map(self.design, engine.design)
         self.warnings: list[str] = []
         self._first_pass()
 
     # ---------------------------------------------------------------- passes
     def _first_pass(self):
         d = self.design
-        L, K = d.L_all, len(d.x_labels_all)
-        zx = np.zeros((L, K)); zy = np.zeros(L); zhz = np.zeros((L, L)); xx = np.zeros((K, K))
-        fd_weight = not d.fod
-        for chunk in self.source:
-            a, b, c, e = first_moments(chunk, L, K, fd_weight)
-            zx += a; zy += b; zhz += c; xx += e
-        keep_x = independent_columns(xx)
+        zx, zy, zhz, xx = self.engine.first()
+        K = len(d.x_labels_all)
+        keep_x = self.engine.keep_x()
         dropped = [d.x_labels_all[j] for j in range(K) if j not in set(keep_x.tolist())]
         bad = [lab for lab in dropped if not is_deterministic_label(lab)]
         if bad:
@@ -129,37 +275,39 @@ class GMMProblem:
                 "regressor(s) with no independent variation after the transform: "
                 f"{', '.join(bad)} (constant within every unit, or collinear with other regressors)")
         d.set_kept_columns(keep_x)
-        nonzero = np.diag(zhz) > 0
+        nonzero = np.diag(zhz)[self._cmap] > 0
         d.keep_z = np.asarray([j for j in d.keep_z if nonzero[j]], dtype=int)
         kz, kx = d.keep_z, d.keep_x
-        self.zx = zx[np.ix_(kz, kx)]
-        self.zy = zy[kz]
-        self.zhz = zhz[np.ix_(kz, kz)]
+        cols = self._cmap[kz]  # kept instruments, as engine columns
+        self.engine_cols = cols
+        self.keep_x = np.asarray(kx, dtype=np.int64)
+        self.zx = zx[np.ix_(cols, kx)]
+        self.zy = zy[cols]
+        self.zhz = zhz[np.ix_(cols, cols)]
         self.L, self.K = len(kz), len(kx)
-        n_rows = d.n_rows[0] + d.n_rows[1]
-        if d.n_rows[0] <= self.K:
-            raise EstimationError(
-                f"only {d.n_rows[0]} observations in the transformed equation for {self.K} "
-                "parameters: too few observations for this model")
-        if self.L >= n_rows:
-            raise EstimationError(
-                f"{self.L} instruments for only {n_rows} observations: reduce last_lag, "
-                "use collapsed instruments or add data")
+        self.K_all = K
+        self.scatter = self.engine.layout.scatter_rows(cols)
         if self.L < self.K:
             raise EstimationError(
                 f"fewer instruments ({self.L}) than parameters ({self.K}): the model is not identified")
 
+    def beta_all(self, beta):
+        """Coefficients spread over every design column (zero for dropped ones)."""
+        out = np.zeros(self.K_all)
+        out[self.keep_x] = beta
+        return out
+
+    def spread(self, a):
+        """An instrument-space vector spread over every engine column."""
+        out = np.zeros(self.engine.layout.L)
+        out[self.engine_cols] = a
+        return out
+
     def unit_moments_at(self, beta):
-        """Σ g g' and Σ g, and the transformed-equation sum of squared residuals, at ``beta``."""
-        d = self.design
-        S = np.zeros((self.L, self.L))
-        ssr = 0.0
-        for chunk in self.source:
-            res = residuals(chunk, beta, d.keep_x)
-            g = unit_moments(chunk, res, d.L_all, d.keep_z)
-            S += g.T @ g
-            ssr += float((res[TRANSFORMED] ** 2).sum())
-        return S, ssr
+        """Σ g g' and the transformed-equation sum of squared residuals, at ``beta``."""
+        task = _SumS(self, beta)
+        self.engine.run_pass([task])
+        return task.S, task.ssr
 
     # ------------------------------------------------------------- estimators
     def one_step(self):
@@ -178,53 +326,40 @@ class GMMProblem:
         beta, bread_inv = efficient_gmm(self.zx, self.zy, W)
         return beta, W, S, bread_inv, rank
 
-    # -------------------------------------------------------- final pass terms
     def final_pass(self, beta, beta_prev, weight, need_windmeijer):
         """Windmeijer terms and Arellano–Bond AR(m) sums at the final estimate.
 
         Windmeijer (2005): with ``a = W Z'e`` (final residuals) and per-unit
         ``g_i = Z_i' e_i(b_prev)``, ``q_ik = Z_i' x_ik``, the derivative of ``S`` along
-        ``b_k`` applied to ``a`` is ``Σ_i q_ik (g_i'a) + g_i (q_ik'a)``; summed as two
-        batched products per chunk (no L×L×K array is ever formed).
+        ``b_k`` applied to ``a`` is ``Σ_i q_ik (g_i'a) + g_i (q_ik'a)``; summed block by
+        block (:func:`.moments.windmeijer_term`; no n×L×K or L×L×K array).
         """
-        d = self.design
-        L, K = self.L, self.K
-        ze = self.zy - self.zx @ beta
-        a = weight @ ze
-        T = np.zeros((L, K))
-        ar = {m: {"s": 0.0, "s2": 0.0, "wx": np.zeros(K), "gs": np.zeros(L), "pairs": 0} for m in (1, 2)}
-        for chunk in self.source:
-            res = residuals(chunk, beta, d.keep_x)
-            g = unit_moments(chunk, res, d.L_all, d.keep_z)
-            if need_windmeijer:
-                res_p = residuals(chunk, beta_prev, d.keep_x)
-                gp = unit_moments(chunk, res_p, d.L_all, d.keep_z)
-                q = unit_instrument_regressor(chunk, d.L_all, d.keep_z, d.keep_x)
-                T += np.einsum("nlk,n->lk", q, gp @ a) + gp.T @ np.einsum("nlk,l->nk", q, a)
-            # AR(m): differenced level residuals (Arellano & Bond 1991, eq. (8))
-            xlev = chunk.xlev[:, :, d.keep_x]
-            elev = np.where(chunk.complete, chunk.ylev - xlev @ beta, 0.0)
-            dmask = np.zeros_like(chunk.complete)
-            dmask[:, 1:] = chunk.complete[:, 1:] & chunk.complete[:, :-1]
-            u = np.zeros_like(elev)
-            u[:, 1:] = elev[:, 1:] - elev[:, :-1]
-            u = np.where(dmask, u, 0.0)
-            dx = np.zeros_like(xlev)
-            dx[:, 1:] = xlev[:, 1:] - xlev[:, :-1]
-            dx = np.where(dmask[:, :, None], dx, 0.0)
-            for m in (1, 2):
-                if u.shape[1] <= m:
-                    continue
-                pair = dmask[:, m:] & dmask[:, :-m]
-                w = np.where(pair, u[:, :-m], 0.0)
-                s = (w * u[:, m:]).sum(axis=1)
-                acc = ar[m]
-                acc["s"] += float(s.sum())
-                acc["s2"] += float(s @ s)
-                acc["wx"] += np.einsum("np,npk->k", w, dx[:, m:])
-                acc["gs"] += g.T @ s
-                acc["pairs"] += int(pair.sum())
-        return T, ar
+        task = _FinalSums(self, beta, beta_prev, weight, need_windmeijer)
+        self.engine.run_pass([task])
+        return task.T, task.ar.acc
+
+
+def _p_normal(z):
+    return float(2 * stats.norm.sf(abs(z))) if np.isfinite(z) else math.nan
+
+
+def _chi2(stat, df):
+    if df is None or df <= 0 or not np.isfinite(stat):
+        return TestResult(float(stat), math.nan, int(df) if df is not None else None)
+    return TestResult(float(stat), float(stats.chi2.sf(stat, df)), int(df))
+
+
+def efficient_gmm(zx, zy, weight):
+    """``b = (X'Z W Z'X)⁻¹ X'Z W Z'y`` and ``(X'Z W Z'X)⁻¹``."""
+    xzw = zx.T @ weight
+    bread = xzw @ zx
+    bread_inv = inverse_or_pinv(bread)
+    return bread_inv @ (xzw @ zy), bread_inv
+
+
+def hansen_statistic(zx, zy, weight, beta):
+    ze = zy - zx @ beta
+    return float(ze @ weight @ ze)
 
 
 def _ar_test(acc, influence, vcov):
@@ -241,71 +376,145 @@ def _ar_test(acc, influence, vcov):
     return TestResult(float(z), _p_normal(z), None)
 
 
-def fit(spec: Spec, panel: Panel, *, chunk_units: int | None = None) -> FitResult:
-    """Estimate one model (difference or system GMM) on a panel."""
-    with _warnings.catch_warnings():
-        _warnings.simplefilter("ignore", RuntimeWarning)
-        return _fit(spec, panel, chunk_units)
+# ---------------------------------------------------------------------------
+# the fit, in stages that a family of specs can share
+# ---------------------------------------------------------------------------
+@dataclass
+class _OneStep:
+    """One-step estimate and what every sibling reuses (per instrument set)."""
+
+    beta: np.ndarray
+    A: np.ndarray
+    bread: np.ndarray
+    rank_a: int
+    warnings: list
+    S: np.ndarray = None
+    ssr: float = 0.0
+    W: np.ndarray = None
+    rank_s: int = 0
+    v_robust: np.ndarray = None
+    sigma2: float = math.nan
+    sargan: TestResult | None = None
+    beta2: np.ndarray = None
+    bread2: np.ndarray = None
 
 
-def _fit(spec, panel, chunk_units):
-    prob = GMMProblem(spec, panel, chunk_units)
-    d = prob.design
-    L, K = prob.L, prob.K
+@dataclass
+class _Solution:
+    """The final estimate of one (instrument set, steps) pair."""
+
+    beta: np.ndarray
+    beta_prev: np.ndarray
+    weight: np.ndarray
+    S_w: np.ndarray
+    bread: np.ndarray
+    rank_w: int
+    iterations: int
+    hansen: TestResult
+    warnings: list = field(default_factory=list)
+    task: _FinalSums | None = None
+
+
+def _one_step_stage(prob: GMMProblem) -> _OneStep:
+    before = len(prob.warnings)
     beta1, A, bread1, rank_a = prob.one_step()
-    S1, ssr1 = prob.unit_moments_at(beta1)
-    ze1 = prob.zy - prob.zx @ beta1
-    W1, rank_s1 = sym_pinv(S1)
+    return _OneStep(beta1, A, bread1, rank_a, prob.warnings[before:])
+
+
+def _weight_stage(prob: GMMProblem, one: _OneStep, need_two_step: bool) -> None:
+    """Everything that follows from ``S`` at the one-step estimate."""
+    d = prob.design
+    K = prob.K
+    one.W, one.rank_s = sym_pinv(one.S)
     # robust one-step variance (clustered by unit)
-    m1 = bread1 @ prob.zx.T @ A
-    v1_robust = m1 @ S1 @ m1.T
-    n_t = d.n_rows[TRANSFORMED]
+    m1 = one.bread @ prob.zx.T @ one.A
+    one.v_robust = m1 @ one.S @ m1.T
+    n_t = d.n_rows[0]
     # σ² of the level error with a degrees-of-freedom correction: differenced errors
     # have variance 2σ² (H has 2 on its diagonal), deviations σ² (Arellano & Bover
     # 1995). With this divisor the Sargan statistic of Arellano & Bond (1991, Table 4
     # (a1)) is reproduced.
-    sigma2 = ssr1 / ((n_t - K) * (1.0 if d.fod else 2.0))
-    sargan = _chi2(float(ze1 @ A @ ze1) / sigma2, rank_a - K) if sigma2 > 0 else None
+    one.sigma2 = one.ssr / ((n_t - K) * (1.0 if d.fod else 2.0))
+    ze1 = prob.zy - prob.zx @ one.beta
+    one.sargan = (_chi2(float(ze1 @ one.A @ ze1) / one.sigma2, one.rank_a - K)
+                  if one.sigma2 > 0 else None)
+    if need_two_step:
+        one.beta2, one.bread2 = efficient_gmm(prob.zx, prob.zy, one.W)
 
-    steps = spec.steps
-    iterations = 1
+
+def _solution_stage(prob: GMMProblem, one: _OneStep, steps) -> _Solution:
+    K = prob.K
     if steps == 1:
-        beta, weight, S_w, bread, beta_prev = beta1, A, S1, bread1, beta1
-        hansen = _chi2(float(ze1 @ W1 @ ze1), rank_s1 - K)
-        rank_w = rank_s1
-    else:
-        beta_prev = beta1
-        S_w, rank_w = S1, rank_s1
-        weight = W1
-        beta, bread = efficient_gmm(prob.zx, prob.zy, W1)
-        iterations = 2
-        if steps == "iterated":
-            while iterations < MAX_ITERATIONS:
-                S_next, _ = prob.unit_moments_at(beta)
-                W_next, rank_next = sym_pinv(S_next)
-                beta_next, bread_next = efficient_gmm(prob.zx, prob.zy, W_next)
-                iterations += 1
-                beta_prev, S_w, weight, rank_w = beta, S_next, W_next, rank_next
-                moved = np.max(np.abs(beta_next - beta) / (1.0 + np.abs(beta)))
-                beta, bread = beta_next, bread_next
-                if moved < ITERATION_TOL:
-                    break
-            else:
-                prob.warnings.append(f"iterated GMM did not converge in {MAX_ITERATIONS} steps")
-        ze = prob.zy - prob.zx @ beta
-        hansen = _chi2(float(ze @ weight @ ze), rank_w - K)
-    if rank_w < L:
-        prob.warnings.append(
-            f"the robust weight matrix is singular (rank {rank_w} of {L} instruments; "
-            f"{d.unit_has_rows.sum()} units); a pseudo-inverse was used and the Hansen test is weak")
+        ze1 = prob.zy - prob.zx @ one.beta
+        return _Solution(one.beta, one.beta, one.A, one.S, one.bread, one.rank_s, 1,
+                         _chi2(float(ze1 @ one.W @ ze1), one.rank_s - K))
+    beta_prev = one.beta
+    S_w, rank_w, weight = one.S, one.rank_s, one.W
+    beta, bread = one.beta2, one.bread2
+    iterations = 2
+    warns = []
+    if steps == "iterated":
+        while iterations < MAX_ITERATIONS:
+            S_next, _ = prob.unit_moments_at(beta)
+            W_next, rank_next = sym_pinv(S_next)
+            beta_next, bread_next = efficient_gmm(prob.zx, prob.zy, W_next)
+            iterations += 1
+            beta_prev, S_w, weight, rank_w = beta, S_next, W_next, rank_next
+            moved = np.max(np.abs(beta_next - beta) / (1.0 + np.abs(beta)))
+            beta, bread = beta_next, bread_next
+            if moved < ITERATION_TOL:
+                break
+        else:
+            warns.append(f"iterated GMM did not converge in {MAX_ITERATIONS} steps")
+    ze = prob.zy - prob.zx @ beta
+    hansen = _chi2(float(ze @ weight @ ze), rank_w - K)
+    return _Solution(beta, beta_prev, weight, S_w, bread, rank_w, iterations, hansen, warns)
 
-    need_w = steps != 1
-    T, ar = prob.final_pass(beta, beta_prev, weight, need_w)
+
+def _difference_hansen(prob: GMMProblem, sol: _Solution) -> dict:
+    """difference-in-Hansen (Eichenbaum, Hansen & Singleton 1988; Hayashi 2000, §3.6):
+    C = J(all) − J(without the group), both efficient with blocks of the same S."""
+    d = prob.design
+    L, K = prob.L, prob.K
+    S_w = sol.S_w
+    out = {}
+    j_full_w, _ = sym_pinv(S_w)
+    b_full, _ = efficient_gmm(prob.zx, prob.zy, j_full_w)
+    j_full = hansen_statistic(prob.zx, prob.zy, j_full_w, b_full)
+    for group, pos in d.instrument_groups().items():
+        keep = np.setdiff1d(np.arange(L), pos)
+        if len(keep) < K or len(pos) == 0:
+            continue
+        w_sub, rank_sub = sym_pinv(S_w[np.ix_(keep, keep)])
+        if rank_sub < K:
+            continue
+        b_sub, _ = efficient_gmm(prob.zx[keep], prob.zy[keep], w_sub)
+        j_sub = hansen_statistic(prob.zx[keep], prob.zy[keep], w_sub, b_sub)
+        df = sol.rank_w - rank_sub
+        if df <= 0:
+            continue
+        out[group] = _chi2(j_full - j_sub, df)
+    return out
+
+
+def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
+              diff_hansen: dict) -> FitResult:
+    d = prob.design
+    L, K = prob.L, prob.K
+    steps = spec.steps
+    warns = list(prob.warnings) + list(one.warnings) + list(sol.warnings)
+    if sol.rank_w < L:
+        warns.append(
+            f"the robust weight matrix is singular (rank {sol.rank_w} of {L} instruments; "
+            f"{d.unit_has_rows.sum()} units); a pseudo-inverse was used and the Hansen test is weak")
+    T, ar = sol.task.T, sol.task.ar.acc
+    weight, bread = sol.weight, sol.bread
     influence = bread @ prob.zx.T @ weight
     windmeijer_d = None
+    v1_robust = one.v_robust
     if steps == 1:
         v_robust = v1_robust
-        v_conv = sigma2 * bread1
+        v_conv = one.sigma2 * one.bread
         kind = "cluster-robust" if spec.errors == "robust" else "conventional"
     else:
         v2 = bread
@@ -328,26 +537,7 @@ def _fit(spec, panel, chunk_units):
     ar1 = _ar_test(ar[1], influence, v_robust)
     ar2 = _ar_test(ar[2], influence, v_robust)
 
-    # difference-in-Hansen (Eichenbaum, Hansen & Singleton 1988; Hayashi 2000, §3.6):
-    # C = J(all) − J(without the group), both efficient with blocks of the same S
-    diff_hansen = {}
-    j_full_w, _ = sym_pinv(S_w)
-    b_full, _ = efficient_gmm(prob.zx, prob.zy, j_full_w)
-    j_full = hansen_statistic(prob.zx, prob.zy, j_full_w, b_full)
-    for group, pos in d.instrument_groups().items():
-        keep = np.setdiff1d(np.arange(L), pos)
-        if len(keep) < K or len(pos) == 0:
-            continue
-        w_sub, rank_sub = sym_pinv(S_w[np.ix_(keep, keep)])
-        if rank_sub < K:
-            continue
-        b_sub, _ = efficient_gmm(prob.zx[keep], prob.zy[keep], w_sub)
-        j_sub = hansen_statistic(prob.zx[keep], prob.zy[keep], w_sub, b_sub)
-        df = rank_w - rank_sub
-        if df <= 0:
-            continue
-        diff_hansen[group] = _chi2(j_full - j_sub, df)
-
+    beta = sol.beta
     se = np.sqrt(np.clip(np.diag(vcov), 0, None))
     terms = []
     for label, b, s in zip(d.x_labels, beta, se):
@@ -364,19 +554,156 @@ def _fit(spec, panel, chunk_units):
         parameters=K,
     )
     if L > units:
-        prob.warnings.append(f"{L} instruments outnumber the {units} units (common practice: keep "
-                             "instruments at or below the number of units)")
+        warns.append(f"{L} instruments outnumber the {units} units (common practice: keep "
+                     "instruments at or below the number of units)")
     settings = dict(settings_of(spec))
-    settings["iterations"] = iterations
+    settings["iterations"] = sol.iterations
     return FitResult(
         terms=tuple(terms),
         std_error_kind=kind,
-        tests={"ar1": ar1, "ar2": ar2, "sargan": sargan, "hansen": hansen},
+        tests={"ar1": ar1, "ar2": ar2, "sargan": one.sargan, "hansen": sol.hansen},
         difference_hansen=diff_hansen,
         counts=counts,
-        warnings=tuple(dict.fromkeys(prob.warnings)),
+        warnings=tuple(dict.fromkeys(warns)),
         vcov=vcov,
         settings=settings,
-        diagnostics={"windmeijer_d": windmeijer_d, "beta_one_step": beta1,
-                     "vcov_one_step_robust": v1_robust, "sigma2": sigma2},
+        diagnostics={"windmeijer_d": windmeijer_d, "beta_one_step": one.beta,
+                     "vcov_one_step_robust": v1_robust, "sigma2": one.sigma2},
     )
+
+
+def share_key(spec: Spec) -> str:
+    """Specs with equal keys can share their work in :func:`fit_family`: they differ
+    at most in ``steps``, ``errors`` and ``last_lag``. (Display fields such as the
+    focus, thresholds or the sample's name do not enter the key.)"""
+    s = spec.sample
+    key = {
+        "outcome": spec.outcome,
+        "outcome_lags": list(spec.outcome_lags),
+        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
+        "time_effects": bool(spec.time_effects),
+        "equations": spec.equations,
+        "transform": spec.transform,
+        "first_lag": spec.first_lag,
+        "form": spec.form,
+        "extra_instruments": list(spec.extra_instruments),
+        "sample": [s.period_from, s.period_to, s.exclude_column, list(s.exclude_values)],
+    }
+    return json.dumps(key, sort_keys=True, separators=(",", ":"), default=str)
+
+
+def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> list:
+    """Fit specs of one share group; a failing member gives its exception."""
+    out: list = [None] * len(specs)
+    if engine is None:
+        lags = {s.last_lag for s in specs}
+        wide = specs[0] if len(lags) == 1 else dataclasses.replace(specs[0], last_lag=None)
+        try:
+            engine = MomentEngine(Design(wide, panel), chunk_units, memory_mb)
+        except EstimationError as exc:
+            return [exc] * len(specs)
+    # one problem per instrument set (last_lag); the engine's own design is reused
+    problems: dict = {}
+    for i, spec in enumerate(specs):
+        key = spec.last_lag
+        if key in problems:
+            continue
+        try:
+            design = engine.design if spec.last_lag == engine.design.spec.last_lag else None
+            try:
+                problems[key] = GMMProblem(spec, panel, engine=engine, design=design)
+            except _NotSubset:  # not expected for last_lag families; fit it on its own
+                problems[key] = GMMProblem(spec, panel, chunk_units, memory_mb=memory_mb)
+        except EstimationError as exc:
+            problems[key] = exc
+        except Exception as exc:  # noqa: BLE001 — one member's bug must not sink the others
+            problems[key] = exc
+    live = {k: p for k, p in problems.items() if isinstance(p, GMMProblem)}
+    ones = {k: _one_step_stage(p) for k, p in live.items()}
+    # the robust weight at every one-step estimate, in one pass per engine
+    by_engine: dict = {}
+    for k, p in live.items():
+        by_engine.setdefault(id(p.engine), (p.engine, []))[1].append(k)
+    for eng, keys in by_engine.values():
+        tasks = {k: _SumS(live[k], ones[k].beta) for k in keys}
+        eng.run_pass(list(tasks.values()))
+        for k, task in tasks.items():
+            ones[k].S, ones[k].ssr = task.S, task.ssr
+    for k, p in live.items():
+        need2 = any(s.steps != 1 for s in specs if s.last_lag == k)
+        _weight_stage(p, ones[k], need2)
+    # final estimates per (instrument set, steps); iterated ones run their own passes
+    sols: dict = {}
+    for spec in specs:
+        k = spec.last_lag
+        if k in live and (k, spec.steps) not in sols:
+            sols[(k, spec.steps)] = _solution_stage(live[k], ones[k], spec.steps)
+    final_tasks: dict = {}
+    for (k, steps), sol in sols.items():
+        sol.task = _FinalSums(live[k], sol.beta, sol.beta_prev, sol.weight, steps != 1)
+        final_tasks.setdefault(id(live[k].engine), (live[k].engine, []))[1].append(sol.task)
+    for eng, tasks in final_tasks.values():
+        eng.run_pass(tasks)
+    diffs = {key: _difference_hansen(live[key[0]], sol) for key, sol in sols.items()}
+    for i, spec in enumerate(specs):
+        k = spec.last_lag
+        if not isinstance(problems[k], GMMProblem):
+            out[i] = problems[k]
+            continue
+        try:
+            out[i] = _assemble(spec, live[k], ones[k], sols[(k, spec.steps)],
+                               diffs[(k, spec.steps)])
+        except Exception as exc:  # noqa: BLE001
+            out[i] = exc
+    return out
+
+
+def fit(spec: Spec, panel: Panel, *, chunk_units: int | None = None,
+        memory_mb: float | None = None) -> FitResult:
+    """Estimate one model (difference or system GMM) on a panel.
+
+    ``chunk_units``: units per chunk (default: from the memory budget);
+    ``memory_mb``: the memory budget (default :func:`memory_budget`).
+    """
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        res = _fit_specs([spec], panel, chunk_units, memory_mb)[0]
+    if isinstance(res, BaseException):
+        raise res
+    return res
+
+
+def fit_family(specs, panel: Panel, *, chunk_units: int | None = None,
+               memory_mb: float | None = None) -> list:
+    """Fit several specs on one panel, sharing work; returns, in order, a
+    :class:`FitResult` or the exception that spec raised (never raises for one spec).
+
+    Specs are grouped by :func:`share_key`; within a group (specs differing only in
+    steps, errors and last_lag) the moments are summed once for the widest
+    instrument set, the one-step estimate and robust weight of each instrument set
+    are computed once, and the passes over the data of all members run together.
+    Results equal those of :func:`fit` on each spec: exactly for specs differing in
+    steps and errors, to rounding (sums of the same terms, ordered differently) for
+    specs differing in last_lag.
+    """
+    specs = list(specs)
+    out: list = [None] * len(specs)
+    groups: dict = {}
+    for i, s in enumerate(specs):
+        groups.setdefault(share_key(s), []).append(i)
+    with _warnings.catch_warnings():
+        _warnings.simplefilter("ignore", RuntimeWarning)
+        for idx in groups.values():
+            members = [specs[i] for i in idx]
+            try:
+                results = _fit_specs(members, panel, chunk_units, memory_mb)
+            except Exception as exc:  # noqa: BLE001 — e.g. a memory error: fall back per spec
+                results = []
+                for s in members:
+                    try:
+                        results.append(_fit_specs([s], panel, chunk_units, memory_mb)[0])
+                    except Exception as inner:  # noqa: BLE001
+                        results.append(inner)
+            for i, r in zip(idx, results):
+                out[i] = r
+    return out

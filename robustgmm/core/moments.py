@@ -1,77 +1,266 @@
 """Sums over units of small matrix products, batched over chunks of units.
 
 Every quantity of the estimator is a sum over units ``i`` of ``Z_i' H Z_i``,
-``Z_i' X_i``, ``Z_i' y_i`` or of per-unit moment vectors ``g_i = Z_i' e_i``. A
-chunk's instruments are stored row by row (one block per equation and calendar
-period, holding only that row's columns), so per-period instruments cost what
-their non-zero blocks cost, not what the dense stacked matrix would.
+``Z_i' X_i``, ``Z_i' y_i``, of per-unit moment vectors ``g_i = Z_i' e_i`` or of the
+Windmeijer (2005) terms built from them. Nothing here loops over units: each
+function is a handful of BLAS calls per chunk of units.
+
+Kernel layout (see DEVELOPERS.md, "Where time goes"). A design's instruments are
+stored row by row: one *block* per equation and calendar period holding only that
+row's non-zero columns, so per-period instruments cost what their non-zero blocks
+cost (a few percent of the dense stacked matrix). :class:`Layout` lays the blocks
+of one design side by side, ``W`` entries in all; for each chunk,
+:func:`prepare` builds a :class:`Prepared` chunk:
+
+* ``ZT`` (W, n): the instrument entries of every unit, block after block,
+  transposed so that a block is a contiguous row range (a BLAS operand as is);
+* ``Y`` (R, n) and ``X`` (R, n, K): outcome and regressors of every row slot
+  (equation, period), zero where a unit has no such row;
+* the levels the AR(m) tests need.
+
+With the 0/1 matrix ``C`` (L × W) that sends each entry to its instrument column,
+``G' = C (ZT ∘ E[row of entry])`` for residual rows ``E = Y − X b``: one gather,
+one product and one sparse-times-dense product per chunk and coefficient vector,
+O(n·W). ``Z'X`` is ``C`` times the stack of the blocks' ``ZT_b X_r`` products,
+``Z'HZ`` a sum of the blocks' ``ZT_b ZT_b'`` (and, for first differences, the
+products of neighbouring blocks).
 """
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
+from scipy import sparse
 
-from .design import LEVEL, TRANSFORMED, Chunk
+from .design import TRANSFORMED, Chunk, Design
 
 
-def first_moments(chunk: Chunk, L: int, K: int, fd_weight: bool):
-    """``Z'X``, ``Z'y``, ``X'X`` (stacked equations) and ``Z'HZ`` of one chunk.
+class Layout:
+    """Where each instrument entry of a design's blocks lives (shared by its chunks).
+
+    ``slots``: the row slots ``(equation, period)``, transformed equation first;
+    ``starts``/``stops``: each block's entry range; ``block_slot``: its slot;
+    ``ent_slot``/``ent_col``: slot and instrument column of every entry;
+    ``scatter``: the L × W 0/1 matrix ``C`` (CSR); ``pairs``: neighbouring
+    transformed-equation blocks (``t``, ``t+1``) for the first-difference weight.
+    """
+
+    def __init__(self, design: Design):
+        self.P = design.P
+        self.equations = (0, 1) if design.system else (0,)
+        self.R = self.P * len(self.equations)
+        self.K = len(design.x_labels_all)
+        self.L = design.L_all
+        blocks = design.blocks
+        widths = np.asarray([len(b.cols) for b in blocks], dtype=np.int64)
+        self.starts = np.concatenate([[0], np.cumsum(widths)[:-1]]).astype(np.int64)
+        self.stops = self.starts + widths
+        self.W = int(widths.sum())
+        self.block_slot = np.asarray([b.equation * self.P + b.t for b in blocks], dtype=np.int64)
+        self.block_cols = [np.asarray(b.cols, dtype=np.int64) for b in blocks]
+        self.ent_slot = np.repeat(self.block_slot, widths)
+        self.ent_col = (np.concatenate(self.block_cols) if blocks
+                        else np.zeros(0, dtype=np.int64))
+        self.scatter = sparse.csr_matrix(
+            (np.ones(self.W), (self.ent_col, np.arange(self.W))), shape=(self.L, self.W))
+        # one-step weight: 2 on the diagonal of first-differenced rows, 1 elsewhere
+        fd = self.fd = not design.fod
+        self.block_diag = np.asarray(
+            [2.0 if (b.equation == TRANSFORMED and fd) else 1.0 for b in blocks])
+        # flat L×L positions of each block's own products and of neighbour products
+        self.own_flat = [(c[:, None] * self.L + c[None, :]).ravel() for c in self.block_cols]
+        by_row = {(b.equation, b.t): j for j, b in enumerate(blocks)}
+        self.pairs = []
+        if fd:
+            for (eq, t), j in by_row.items():
+                nxt = by_row.get((eq, t + 1))
+                if eq == TRANSFORMED and nxt is not None:
+                    ci, cj = self.block_cols[j], self.block_cols[nxt]
+                    self.pairs.append((j, nxt, (ci[:, None] * self.L + cj[None, :]).ravel(),
+                                       (cj[:, None] * self.L + ci[None, :]).ravel()))
+        self.transformed_slots = slice(0, self.P)
+
+    def scatter_rows(self, cols: np.ndarray) -> sparse.csr_matrix:
+        """The rows of ``C`` of the instrument columns ``cols`` (in that order)."""
+        return self.scatter[np.asarray(cols, dtype=np.int64)]
+
+    def bytes_per_unit(self, n_extra: int = 0) -> tuple[int, int]:
+        """(bytes of a prepared chunk, bytes while a chunk is built and passed over),
+        per unit. The working figure covers the arrays of :meth:`Design.chunk` and the
+        temporaries of a pass (residual gather, products, a few ``G'`` arrays)."""
+        P, K, W, R, L = self.P, self.K + n_extra, self.W, self.R, self.L
+        prepared = 8 * (W + R + R * K) + R + (0 if self.fd else 8 * P * (K + 1) + P)
+        building = 8 * (P * K * 8 + 4 * P + 2 * W)
+        passing = 8 * (3 * W + 4 * L + 2 * R + P * K * 3 + K)
+        return prepared + 64, prepared + max(building, passing) + 64
+
+
+@dataclass
+class Prepared:
+    """The arrays of one chunk of ``n`` units in kernel layout (see the module docstring).
+
+    ``present`` (R, n) marks the rows that exist. ``dy`` (P, n) and ``dx`` (P, n, K)
+    are the first differences of the levels on consecutive complete periods, zero
+    elsewhere, and ``dmask`` marks them (the AR(m) tests): for first differences
+    these are exactly the transformed-equation rows, so they are views of ``Y``,
+    ``X`` and ``present`` and cost no memory.
+    """
+
+    n: int
+    ZT: np.ndarray        # (W, n)
+    Y: np.ndarray         # (R, n)
+    X: np.ndarray         # (R, n, K)
+    present: np.ndarray   # (R, n) bool
+    dy: np.ndarray        # (P, n)
+    dx: np.ndarray        # (P, n, K)
+    dmask: np.ndarray     # (P, n) bool
+
+    @property
+    def nbytes(self) -> int:
+        own = [self.ZT, self.Y, self.X, self.present]
+        if self.dy.base is None or not np.shares_memory(self.dy, self.Y):
+            own += [self.dy, self.dx, self.dmask]
+        return int(sum(a.nbytes for a in own))
+
+
+def prepare(chunk: Chunk, layout: Layout) -> Prepared:
+    """Rearrange a design chunk into kernel layout (one copy of each array)."""
+    n = chunk.n
+    P = layout.P
+    Y = np.empty((layout.R, n))
+    X = np.empty((layout.R, n, layout.K))
+    present = np.empty((layout.R, n), dtype=bool)
+    for pos, eq in enumerate(layout.equations):
+        rows = slice(pos * P, (pos + 1) * P)
+        Y[rows] = chunk.y[eq].T
+        X[rows] = chunk.x[eq].transpose(1, 0, 2)
+        present[rows] = chunk.rows[eq].T
+    ZT = np.empty((layout.W, n))
+    for j, (block, vals) in enumerate(chunk.blocks):
+        ZT[layout.starts[j]:layout.stops[j]] = vals.T
+    if layout.fd:
+        # first-differenced rows are the level differences on consecutive complete
+        # periods (Design: rows_t = complete[t] & complete[t-1]); reuse them
+        dy, dx, dmask = Y[:P], X[:P], present[:P]
+    else:
+        comp = chunk.complete.T
+        dmask = np.zeros_like(comp)
+        dmask[1:] = comp[1:] & comp[:-1]
+        ylev = chunk.ylev.T
+        xlev = chunk.xlev.transpose(1, 0, 2)
+        dy = np.zeros((P, n))
+        dy[1:] = ylev[1:] - ylev[:-1]
+        dy = np.where(dmask, dy, 0.0)
+        dx = np.zeros((P, n, layout.K))
+        dx[1:] = xlev[1:] - xlev[:-1]
+        dx = np.where(dmask[:, :, None], dx, 0.0)
+    return Prepared(n=n, ZT=ZT, Y=Y, X=X, present=present, dy=dy, dx=dx, dmask=dmask)
+
+
+def first_moments(pc: Prepared, layout: Layout):
+    """``Z'X``, ``Z'y``, ``Z'HZ`` and ``X'X`` (stacked equations) of one chunk.
 
     ``H`` is the one-step weight of Arellano & Bond (1991): for first differences
     the tridiagonal matrix with 2 on the diagonal and -1 next to it (the covariance
     of differenced i.i.d. errors up to σ²), for forward orthogonal deviations and the
     level equation the identity (Arellano & Bover 1995; Blundell & Bond 1998).
-    Rows of consecutive calendar periods are neighbours; a gap breaks the band.
+    Rows of consecutive calendar periods are neighbours; a gap breaks the band
+    (an absent row is all zeros, so its products vanish).
     """
-    zx = np.zeros((L, K))
-    zy = np.zeros(L)
+    L, K = layout.L, layout.K
+    x2 = pc.X.reshape(-1, K)
+    xx = x2.T @ x2
+    zxw = np.empty((layout.W, K))
+    zyw = np.empty(layout.W)
     zhz = np.zeros((L, L))
-    xx = np.zeros((K, K))
-    for eq in (TRANSFORMED, LEVEL):
-        x = chunk.x[eq].reshape(-1, K)
-        y = chunk.y[eq].reshape(-1)
-        xx += x.T @ x
-    by_row = {}
-    for block, vals in chunk.blocks:
-        x_t = chunk.x[block.equation][:, block.t, :]
-        y_t = chunk.y[block.equation][:, block.t]
-        zx[block.cols] += vals.T @ x_t
-        zy[block.cols] += vals.T @ y_t
-        diag = 2.0 if (block.equation == TRANSFORMED and fd_weight) else 1.0
-        zhz[np.ix_(block.cols, block.cols)] += diag * (vals.T @ vals)
-        by_row[(block.equation, block.t)] = (block, vals)
-    if fd_weight:
-        for (eq, t), (block, vals) in by_row.items():
-            if eq != TRANSFORMED or (eq, t + 1) not in by_row:
-                continue
-            nblock, nvals = by_row[(eq, t + 1)]
-            cross = vals.T @ nvals
-            zhz[np.ix_(block.cols, nblock.cols)] -= cross
-            zhz[np.ix_(nblock.cols, block.cols)] -= cross.T
+    flat = zhz.reshape(-1)
+    ZT = pc.ZT
+    for j, slot in enumerate(layout.block_slot):
+        a, b = layout.starts[j], layout.stops[j]
+        zb = ZT[a:b]
+        zxw[a:b] = zb @ pc.X[slot]
+        zyw[a:b] = zb @ pc.Y[slot]
+        # columns are distinct within a block, so a fancy += adds each product once
+        flat[layout.own_flat[j]] += layout.block_diag[j] * (zb @ zb.T).ravel()
+    for j, k, fwd, bwd in layout.pairs:
+        cross = ZT[layout.starts[j]:layout.stops[j]] @ ZT[layout.starts[k]:layout.stops[k]].T
+        flat[fwd] -= cross.ravel()
+        flat[bwd] -= cross.T.ravel()
+    zx = layout.scatter @ zxw
+    zy = layout.scatter @ zyw
     return zx, zy, zhz, xx
 
 
-def residuals(chunk: Chunk, beta: np.ndarray, keep_x: np.ndarray):
-    """Residuals ``y - X b`` of both equations, zero where a row is absent."""
-    out = []
-    for eq in (TRANSFORMED, LEVEL):
-        e = chunk.y[eq] - chunk.x[eq][:, :, keep_x] @ beta
-        out.append(np.where(chunk.rows[eq], e, 0.0))
-    return out
+def residual_rows(pc: Prepared, beta_all: np.ndarray) -> np.ndarray:
+    """Residuals ``y − X b`` of every row slot, (R, n); zero where a row is absent
+    (its outcome and regressors are zero). ``beta_all`` has one entry per design
+    column (zero for dropped columns)."""
+    return pc.Y - pc.X @ beta_all
 
 
-def unit_moments(chunk: Chunk, resid, L: int, keep_z: np.ndarray) -> np.ndarray:
-    """Per-unit moment vectors ``g_i = Z_i' e_i`` as an (n, L_kept) array."""
-    g = np.zeros((chunk.n, L))
-    for block, vals in chunk.blocks:
-        g[:, block.cols] += vals * resid[block.equation][:, block.t, None]
-    return g[:, keep_z]
+def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
+                   scatter: sparse.csr_matrix) -> np.ndarray:
+    """Per-unit moment vectors as columns, ``G' = [g_1 … g_n]`` with ``g_i = Z_i' e_i``,
+    restricted to the instrument columns of ``scatter`` (rows of ``C``): (L_kept, n)."""
+    prod = pc.ZT * resid[layout.ent_slot]
+    return np.asarray(scatter @ prod)
 
 
-def unit_instrument_regressor(chunk: Chunk, L: int, keep_z, keep_x) -> np.ndarray:
-    """Per-unit ``Z_i' X_i`` as an (n, L_kept, K_kept) array (for the Windmeijer terms)."""
-    K = len(keep_x)
-    q = np.zeros((chunk.n, L, K))
-    for block, vals in chunk.blocks:
-        x_t = chunk.x[block.equation][:, block.t, :][:, keep_x]
-        q[:, block.cols, :] += vals[:, :, None] * x_t[:, None, :]
-    return q[:, keep_z, :]
+def windmeijer_term(pc: Prepared, layout: Layout, gt_prev: np.ndarray, a: np.ndarray,
+                    a_all: np.ndarray, scatter: sparse.csr_matrix,
+                    keep_x: np.ndarray) -> np.ndarray:
+    """One chunk's ``T = Σ_i ∂(g_i g_i')/∂b · a`` of Windmeijer (2005), (L_kept, K_kept).
+
+    With ``q_ik = Z_i' x_ik`` and ``g_i`` the moments at the previous estimate,
+    column ``k`` is ``Σ_i q_ik (g_i'a) + g_i (q_ik'a)``. The first part is a
+    unit-weighted ``Z'X`` (weights ``c_i = g_i'a``); the second needs
+    ``(Q_k a)_i = Σ_rows x_irk (z_ir'a)``, an (n, K) array, then ``G'(Q a)``. No
+    n × L × K or L × L × K array is formed: the cost is O(n·W·K).
+    ``a`` is given on the kept instrument columns (the rows of ``scatter``) and,
+    as ``a_all``, spread over all the design's columns (zero elsewhere).
+    """
+    K = layout.K
+    c = gt_prev.T @ a
+    zc = pc.ZT * c
+    part = np.empty((layout.W, K))
+    for j, slot in enumerate(layout.block_slot):
+        a, b = layout.starts[j], layout.stops[j]
+        part[a:b] = zc[a:b] @ pc.X[slot]
+    first = np.asarray(scatter @ part)
+    # h[slot] = z_{i,slot}'a for every unit: sum the weighted entries of each block
+    weighted = pc.ZT * a_all[layout.ent_col][:, None]
+    h = np.zeros((layout.R, pc.n))
+    h[layout.block_slot] = np.add.reduceat(weighted, layout.starts, axis=0)
+    qa = np.einsum("rn,rnk->nk", h, pc.X)
+    out = first + gt_prev @ qa
+    return out[:, keep_x]
+
+
+class ARSums:
+    """Arellano & Bond (1991, eq. (8)) sums of one coefficient vector, for m = 1, 2.
+
+    On the differenced level residuals ``u = Δy − Δx b`` (consecutive complete
+    periods) and ``w_t = u_{t-m}``: ``Σ s_i``, ``Σ s_i²`` (``s_i = Σ_t w_it u_it``),
+    ``Σ w'ΔX``, ``Σ g_i s_i`` and the number of pairs.
+    """
+
+    def __init__(self, L: int, K: int):
+        self.acc = {m: {"s": 0.0, "s2": 0.0, "wx": np.zeros(K), "gs": np.zeros(L), "pairs": 0}
+                    for m in (1, 2)}
+
+    def add(self, pc: Prepared, beta_all: np.ndarray, keep_x: np.ndarray,
+            gt: np.ndarray) -> None:
+        u = np.where(pc.dmask, pc.dy - pc.dx @ beta_all, 0.0)
+        P = u.shape[0]
+        for m in (1, 2):
+            if P <= m:
+                continue
+            pair = pc.dmask[m:] & pc.dmask[:-m]
+            w = np.where(pair, u[:-m], 0.0)
+            s = (w * u[m:]).sum(axis=0)
+            acc = self.acc[m]
+            acc["s"] += float(s.sum())
+            acc["s2"] += float(s @ s)
+            acc["wx"] += np.einsum("pn,pnk->k", w, pc.dx[m:])[keep_x]
+            acc["gs"] += gt @ s
+            acc["pairs"] += int(pair.sum())
