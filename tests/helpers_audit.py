@@ -80,3 +80,23 @@ def outcome_text(outcomes) -> str:
 
 def read_json(path) -> dict:
     return json.loads(Path(path).read_text())
+
+
+class KillWorkerOnce:
+    """Test double: the first estimation of a matching variant kills its worker
+    process (as an out-of-memory kill would); later calls estimate normally."""
+
+    def __init__(self, marker, predicate):
+        self.marker = Path(marker)
+        self.predicate = predicate
+
+    def __call__(self, spec, panel):
+        import os
+        if self.predicate(spec) and not self.marker.exists():
+            self.marker.touch()
+            os._exit(1)
+        return core.fit(spec, panel)
+
+
+def is_fod_collapsed_two_step(spec) -> bool:
+    return spec.transform == "fod" and spec.form == "collapsed" and spec.steps == 2

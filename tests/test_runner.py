@@ -13,7 +13,8 @@ from robustgmm import core, grid, runner
 from robustgmm.errors import EstimationError
 from robustgmm.spec import SampleFilter
 
-from helpers_audit import CountingFit, make_spec, outcome_text
+from helpers_audit import (CountingFit, KillWorkerOnce, is_fod_collapsed_two_step, make_spec,
+                           outcome_text)
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
 
@@ -72,6 +73,23 @@ def test_interrupted_run_resumes_where_it_stopped(planned, tmp_path):
     resumed, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
     assert fit.calls == stats.computed == 5 and stats.cached == 3
     fresh, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=None)
+    assert outcome_text(resumed) == outcome_text(fresh)
+
+
+@pytest.mark.slow  # restarts worker processes: about 10 s
+def test_killed_worker_stops_the_run_and_a_rerun_resumes(planned, tmp_path):
+    spec, panels, variants = planned
+    cache_dir = tmp_path / "cache"
+    killer = KillWorkerOnce(tmp_path / "killed", is_fod_collapsed_two_step)
+    with pytest.raises(RuntimeError, match="worker process died.*rerun to resume"):
+        runner.run_variants(variants, panels, jobs=2, cache_dir=cache_dir, fit=killer)
+    assert (tmp_path / "killed").exists()
+    done = len(list(cache_dir.glob("*.json")))
+    assert done < len(variants)
+    resumed, stats = runner.run_variants(variants, panels, jobs=2, cache_dir=cache_dir,
+                                         fit=killer)
+    assert stats.cached == done and stats.computed == len(variants) - done
+    fresh, _ = runner.run_variants(variants, panels, jobs=1)
     assert outcome_text(resumed) == outcome_text(fresh)
 
 
