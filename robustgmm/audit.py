@@ -35,7 +35,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import platform
-import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path

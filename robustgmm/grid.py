@@ -53,7 +53,7 @@ from typing import Any, Callable, Mapping, Sequence
 import pandas as pd
 
 from .errors import EstimationError, InputError
-from .spec import Regressor, SampleFilter, Spec
+from .spec import SampleFilter, Spec
 
 #: Varied settings in grid order (the last varies fastest). Roles and samples are
 #: handled specially: one dimension per regressor whose role is varied

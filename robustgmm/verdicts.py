@@ -71,7 +71,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass
-from typing import Any, Mapping
+from typing import Mapping
 
 import numpy as np
 import pandas as pd
