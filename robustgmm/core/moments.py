@@ -89,6 +89,7 @@ class Layout:
         per unit. The working figure covers the arrays of :meth:`Design.chunk` and the
         temporaries of a pass (residual gather, products, a few ``G'`` arrays)."""
         P, K, W, R, L = self.P, self.K + n_extra, self.W, self.R, self.L
+        # ZT is new; y, x, rows (and the levels for deviations) are the chunk's own
         prepared = 8 * (W + R + R * K) + R + (0 if self.fd else 8 * P * (K + 1) + P)
         building = 8 * (P * K * 8 + 4 * P + 2 * W)
         passing = 8 * (3 * W + 4 * L + 2 * R + P * K * 3 + K)
@@ -97,64 +98,69 @@ class Layout:
 
 @dataclass
 class Prepared:
-    """The arrays of one chunk of ``n`` units in kernel layout (see the module docstring).
+    """One chunk of ``n`` units in kernel layout (see the module docstring).
 
-    ``present`` (R, n) marks the rows that exist. ``dy`` (P, n) and ``dx`` (P, n, K)
-    are the first differences of the levels on consecutive complete periods, zero
-    elsewhere, and ``dmask`` marks them (the AR(m) tests): for first differences
-    these are exactly the transformed-equation rows, so they are views of ``Y``,
-    ``X`` and ``present`` and cost no memory.
+    ``ZT`` (W, n) is the only new array; ``y``/``x``/``rows`` are the design chunk's
+    own arrays per equation ((n, P), (n, P, K), (n, P) bool; no copy). For forward
+    orthogonal deviations the levels are kept for the AR(m) tests (``ylev``,
+    ``xlev``, ``complete``); for first differences the transformed rows are the
+    level differences those tests need.
     """
 
     n: int
-    ZT: np.ndarray        # (W, n)
-    Y: np.ndarray         # (R, n)
-    X: np.ndarray         # (R, n, K)
-    present: np.ndarray   # (R, n) bool
-    dy: np.ndarray        # (P, n)
-    dx: np.ndarray        # (P, n, K)
-    dmask: np.ndarray     # (P, n) bool
+    ZT: np.ndarray
+    y: list
+    x: list
+    rows: list
+    ylev: np.ndarray | None = None
+    xlev: np.ndarray | None = None
+    complete: np.ndarray | None = None
 
     @property
     def nbytes(self) -> int:
-        own = [self.ZT, self.Y, self.X, self.present]
-        if self.dy.base is None or not np.shares_memory(self.dy, self.Y):
-            own += [self.dy, self.dx, self.dmask]
-        return int(sum(a.nbytes for a in own))
+        arrays = [self.ZT, *self.y, *self.x, *self.rows]
+        arrays += [a for a in (self.ylev, self.xlev, self.complete) if a is not None]
+        seen, total = set(), 0
+        for a in arrays:  # count shared buffers once
+            base = a if a.base is None else a.base
+            if id(base) not in seen:
+                seen.add(id(base))
+                total += base.nbytes
+        return int(total)
+
+    def level_differences(self):
+        """``(dy, dx, dmask)``: first differences of the levels on consecutive complete
+        periods, zero elsewhere ((n, P), (n, P, K), (n, P) bool)."""
+        if self.ylev is None:
+            # first differences: Design's rows_t = complete[t] & complete[t-1], and
+            # the transformed values are exactly these differences
+            return self.y[0], self.x[0], self.rows[0]
+        comp = self.complete
+        dmask = np.zeros_like(comp)
+        dmask[:, 1:] = comp[:, 1:] & comp[:, :-1]
+        dy = np.zeros_like(self.ylev)
+        dy[:, 1:] = self.ylev[:, 1:] - self.ylev[:, :-1]
+        dx = np.zeros_like(self.xlev)
+        dx[:, 1:] = self.xlev[:, 1:] - self.xlev[:, :-1]
+        return (np.where(dmask, dy, 0.0), np.where(dmask[:, :, None], dx, 0.0), dmask)
 
 
 def prepare(chunk: Chunk, layout: Layout) -> Prepared:
-    """Rearrange a design chunk into kernel layout (one copy of each array)."""
+    """Lay a design chunk's instrument blocks side by side (the one copy made)."""
     n = chunk.n
-    P = layout.P
-    Y = np.empty((layout.R, n))
-    X = np.empty((layout.R, n, layout.K))
-    present = np.empty((layout.R, n), dtype=bool)
-    for pos, eq in enumerate(layout.equations):
-        rows = slice(pos * P, (pos + 1) * P)
-        Y[rows] = chunk.y[eq].T
-        X[rows] = chunk.x[eq].transpose(1, 0, 2)
-        present[rows] = chunk.rows[eq].T
     ZT = np.empty((layout.W, n))
     for j, (block, vals) in enumerate(chunk.blocks):
         ZT[layout.starts[j]:layout.stops[j]] = vals.T
-    if layout.fd:
-        # first-differenced rows are the level differences on consecutive complete
-        # periods (Design: rows_t = complete[t] & complete[t-1]); reuse them
-        dy, dx, dmask = Y[:P], X[:P], present[:P]
-    else:
-        comp = chunk.complete.T
-        dmask = np.zeros_like(comp)
-        dmask[1:] = comp[1:] & comp[:-1]
-        ylev = chunk.ylev.T
-        xlev = chunk.xlev.transpose(1, 0, 2)
-        dy = np.zeros((P, n))
-        dy[1:] = ylev[1:] - ylev[:-1]
-        dy = np.where(dmask, dy, 0.0)
-        dx = np.zeros((P, n, layout.K))
-        dx[1:] = xlev[1:] - xlev[:-1]
-        dx = np.where(dmask[:, :, None], dx, 0.0)
-    return Prepared(n=n, ZT=ZT, Y=Y, X=X, present=present, dy=dy, dx=dx, dmask=dmask)
+    eqs = layout.equations
+    pc = Prepared(n=n, ZT=ZT, y=[chunk.y[e] for e in eqs], x=[chunk.x[e] for e in eqs],
+                  rows=[chunk.rows[e] for e in eqs])
+    if not layout.fd:
+        pc.ylev, pc.xlev, pc.complete = chunk.ylev, chunk.xlev, chunk.complete
+    return pc
+
+
+def _flat_x(x: np.ndarray) -> np.ndarray:
+    return x.reshape(-1, x.shape[-1])  # a view when the design's array is contiguous
 
 
 def first_moments(pc: Prepared, layout: Layout):
@@ -167,9 +173,11 @@ def first_moments(pc: Prepared, layout: Layout):
     Rows of consecutive calendar periods are neighbours; a gap breaks the band
     (an absent row is all zeros, so its products vanish).
     """
-    L, K = layout.L, layout.K
-    x2 = pc.X.reshape(-1, K)
-    xx = x2.T @ x2
+    L, K, P = layout.L, layout.K, layout.P
+    xx = np.zeros((K, K))
+    for x in pc.x:
+        x2 = _flat_x(x)
+        xx += x2.T @ x2
     zxw = np.empty((layout.W, K))
     zyw = np.empty(layout.W)
     zhz = np.zeros((L, L))
@@ -177,9 +185,10 @@ def first_moments(pc: Prepared, layout: Layout):
     ZT = pc.ZT
     for j, slot in enumerate(layout.block_slot):
         a, b = layout.starts[j], layout.stops[j]
+        e, t = divmod(int(slot), P)
         zb = ZT[a:b]
-        zxw[a:b] = zb @ pc.X[slot]
-        zyw[a:b] = zb @ pc.Y[slot]
+        zxw[a:b] = zb @ pc.x[e][:, t, :]
+        zyw[a:b] = zb @ pc.y[e][:, t]
         # columns are distinct within a block, so a fancy += adds each product once
         flat[layout.own_flat[j]] += layout.block_diag[j] * (zb @ zb.T).ravel()
     for j, k, fwd, bwd in layout.pairs:
@@ -195,7 +204,9 @@ def residual_rows(pc: Prepared, beta_all: np.ndarray) -> np.ndarray:
     """Residuals ``y − X b`` of every row slot, (R, n); zero where a row is absent
     (its outcome and regressors are zero). ``beta_all`` has one entry per design
     column (zero for dropped columns)."""
-    return pc.Y - pc.X @ beta_all
+    n = pc.n
+    return np.concatenate([(y - (_flat_x(x) @ beta_all).reshape(n, -1)).T
+                           for y, x in zip(pc.y, pc.x)])
 
 
 def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
@@ -222,16 +233,18 @@ def windmeijer_term(pc: Prepared, layout: Layout, gt_prev: np.ndarray, a: np.nda
     K = layout.K
     c = gt_prev.T @ a
     zc = pc.ZT * c
+    P = layout.P
     part = np.empty((layout.W, K))
     for j, slot in enumerate(layout.block_slot):
         a, b = layout.starts[j], layout.stops[j]
-        part[a:b] = zc[a:b] @ pc.X[slot]
+        e, t = divmod(int(slot), P)
+        part[a:b] = zc[a:b] @ pc.x[e][:, t, :]
     first = np.asarray(scatter @ part)
     # h[slot] = z_{i,slot}'a for every unit: sum the weighted entries of each block
     weighted = pc.ZT * a_all[layout.ent_col][:, None]
     h = np.zeros((layout.R, pc.n))
     h[layout.block_slot] = np.add.reduceat(weighted, layout.starts, axis=0)
-    qa = np.einsum("rn,rnk->nk", h, pc.X)
+    qa = sum(np.einsum("pn,npk->nk", h[e * P:(e + 1) * P], x) for e, x in enumerate(pc.x))
     out = first + gt_prev @ qa
     return out[:, keep_x]
 
@@ -249,18 +262,20 @@ class ARSums:
                     for m in (1, 2)}
 
     def add(self, pc: Prepared, beta_all: np.ndarray, keep_x: np.ndarray,
-            gt: np.ndarray) -> None:
-        u = np.where(pc.dmask, pc.dy - pc.dx @ beta_all, 0.0)
-        P = u.shape[0]
+            gt: np.ndarray, diffs=None) -> None:
+        """Add one chunk; ``diffs`` is ``pc.level_differences()`` when already at hand."""
+        dy, dx, dmask = pc.level_differences() if diffs is None else diffs
+        n, P = dy.shape
+        u = np.where(dmask, dy - (_flat_x(dx) @ beta_all).reshape(n, P), 0.0)
         for m in (1, 2):
             if P <= m:
                 continue
-            pair = pc.dmask[m:] & pc.dmask[:-m]
-            w = np.where(pair, u[:-m], 0.0)
-            s = (w * u[m:]).sum(axis=0)
+            pair = dmask[:, m:] & dmask[:, :-m]
+            w = np.where(pair, u[:, :-m], 0.0)
+            s = (w * u[:, m:]).sum(axis=1)
             acc = self.acc[m]
             acc["s"] += float(s.sum())
             acc["s2"] += float(s @ s)
-            acc["wx"] += np.einsum("pn,pnk->k", w, pc.dx[m:])[keep_x]
+            acc["wx"] += np.einsum("np,npk->k", w, dx[:, m:])[keep_x]
             acc["gs"] += gt @ s
             acc["pairs"] += int(pair.sum())
