@@ -1,0 +1,632 @@
+"""``robustgmm bench``: speed and scale of the estimation core, as ratios.
+
+Four workloads on simulated panels (:mod:`robustgmm.simulate`, a known process),
+each reported as a ratio of two timings taken in the same run, so that the figures
+mean the same on a fast or a slow machine (issue 5 of the project):
+
+1. **Marginal cost.** Extra time of a two-step system GMM fit (per-period
+   instruments, one endogenous regressor, Windmeijer errors, AR tests,
+   difference-in-Hansen included) when the units grow from ``N₁`` to ``N₂``
+   (T = 10), divided by the extra time of one dense ``Z'Z`` (numpy matmul) of the
+   stacked instrument matrix with the same rows and columns. Target ≤ 3 (aim 1).
+2. **Scale.** A collapsed two-step system fit (T = 8) run from the data file
+   (reading, lags, instruments and the fit all count) in a fresh process per size;
+   peak memory from ``resource.getrusage`` (target < 3 GB at N = 200,000; aim
+   N = 1,000,000 under 8 GB) and the time ratio when N grows 4× from 50,000
+   (target ≤ 4.8).
+3. **Audit throughput.** 64 variants (equations × form × 4 last_lag × steps ×
+   transform) on N = 2,000, T = 10: shared work (:func:`robustgmm.core.fit_family`
+   over :func:`robustgmm.core.share_key` groups) and the audit itself against the
+   same variants fitted one by one (target ≤ 0.6), and ``jobs=2`` against
+   ``jobs=1`` (target ≤ 0.75 on two cores).
+4. **Reference library.** Our two-step fit against linearmodels ``IVGMM`` with a
+   weight clustered by unit on the identical stacked forward-orthogonal-deviations
+   problem (target ≤ 0.5). Our time includes building the transformed rows and
+   instruments from the panel and every diagnostic; theirs starts from the stacked
+   arrays.
+
+Timings are the best of a few repeats (``time.perf_counter``), interleaved between
+the two sides of a ratio so that load from other processes hits both alike. The
+``--quick`` mode uses smaller panels so that CI stays fast; its ratios are
+dominated by fixed costs and are not the targets. Nothing here is a pass/fail
+test: the tests only check that the command runs.
+"""
+from __future__ import annotations
+
+import contextlib
+import dataclasses
+import datetime as _dt
+import gc
+import json
+import math
+import os
+import platform
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from . import __version__
+from .io import atomic_write_text
+
+GB = 1024 ** 3
+
+
+@dataclass(frozen=True)
+class Sizes:
+    """Workload sizes of one bench mode."""
+
+    name: str
+    marginal_units: tuple[int, int] = (4_000, 16_000)
+    marginal_periods: int = 10
+    scale_units: tuple[int, int] = (50_000, 200_000)
+    scale_aim_units: int | None = 1_000_000
+    scale_periods: int = 8
+    audit_units: int = 2_000
+    audit_periods: int = 10
+    reference_units: int = 2_000
+    reference_periods: int = 10
+    repeats: int = 3
+
+
+FULL = Sizes("full")
+QUICK = Sizes("quick", marginal_units=(1_000, 4_000), scale_units=(5_000, 20_000),
+              scale_aim_units=None, audit_units=500, reference_units=500, repeats=2)
+#: For the tests: every workload runs, in seconds.
+TINY = Sizes("tiny", marginal_units=(60, 120), marginal_periods=6, scale_units=(80, 160),
+             scale_aim_units=None, scale_periods=6, audit_units=60, audit_periods=6,
+             reference_units=60, reference_periods=6, repeats=1)
+SIZES = {"full": FULL, "quick": QUICK, "tiny": TINY}
+#: Environment variable that picks the sizes (``tiny`` for tests).
+SIZES_ENV = "ROBUSTGMM_BENCH_SIZES"
+#: BLAS threads for every timing (both sides of each ratio), as audits run their
+#: variants (robustgmm.runner.BLAS_THREADS). On a shared machine a multi-threaded
+#: BLAS call waits for every one of its threads to be scheduled, which makes
+#: thousands of small calls erratic; one thread keeps the ratios repeatable.
+BLAS_THREADS_ENV = "ROBUSTGMM_BENCH_BLAS_THREADS"
+
+
+def blas_threads() -> int:
+    try:
+        return max(1, int(os.environ.get(BLAS_THREADS_ENV, "1")))
+    except ValueError:
+        return 1
+
+
+@contextlib.contextmanager
+def _blas_limit(threads: int):
+    """Limit BLAS threads in this process (numpy's and scipy's libraries)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # a declared dependency; without it the default threads run
+        yield
+        return
+    import scipy.linalg  # noqa: F401  load the BLAS libraries before limiting them
+    from . import core  # noqa: F401
+    with threadpool_limits(limits=threads, user_api="blas"):
+        yield
+
+
+# ---------------------------------------------------------------------------
+# small helpers
+# ---------------------------------------------------------------------------
+def _spec(**kw):
+    from .spec import Regressor, Spec
+    base = dict(unit="unit", period="period", outcome="y", outcome_lags=(1,),
+                regressors=(Regressor("x", (0,), "endogenous"), Regressor("w", (0,), "exogenous")),
+                time_effects=True, equations="system", transform="fd", steps=2,
+                errors="robust", first_lag=2, last_lag=None, form="per-period")
+    base.update(kw)
+    return Spec(**base)
+
+
+def _panel(n_units: int, n_periods: int, seed: int = 1):
+    from .data import panel_from_frame
+    from .simulate import simulate_panel
+    df = simulate_panel(n_units, n_periods, seed=seed)
+    return panel_from_frame(df, "unit", "period", ["y", "x", "w"])
+
+
+def _best(fn: Callable[[], object]) -> float:
+    start = time.perf_counter()
+    fn()
+    return time.perf_counter() - start
+
+
+def _dense_instruments(spec, panel) -> np.ndarray:
+    """The stacked instrument matrix (one row per transformed or level row of every
+    unit, one column per kept instrument) as a dense C-ordered array."""
+    from .core import GMMProblem
+    from .core.design import LEVEL, TRANSFORMED
+    prob = GMMProblem(spec, panel)
+    d = prob.design
+    ch = d.chunk(0, panel.n_units)
+    pos = {int(j): p for p, j in enumerate(d.keep_z)}
+    parts = []
+    for eq in (TRANSFORMED, LEVEL):
+        for t in range(d.P):
+            present = np.flatnonzero(ch.rows[eq][:, t])
+            if not present.size:
+                continue
+            z = np.zeros((present.size, len(d.keep_z)))
+            for block, vals in ch.blocks:
+                if block.equation == eq and block.t == t:
+                    for k, c in enumerate(block.cols):
+                        if int(c) in pos:
+                            z[:, pos[int(c)]] += vals[present, k]
+            parts.append(z)
+    return np.ascontiguousarray(np.vstack(parts))
+
+
+def _machine() -> dict:
+    cpu = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8") as fh:
+            for line in fh:
+                if line.startswith("model name"):
+                    cpu = line.split(":", 1)[1].strip()
+                    break
+    except OSError:
+        pass
+    try:
+        load = os.getloadavg()
+    except OSError:
+        load = (math.nan, math.nan, math.nan)
+    try:
+        with open("/proc/meminfo", encoding="utf-8") as fh:
+            mem = int(fh.readline().split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        mem = None
+    return {"cpu": cpu, "cores": os.cpu_count(), "memory": mem, "load": load,
+            "platform": platform.platform(), "python": platform.python_version()}
+
+
+def _versions() -> dict:
+    import numpy
+    import pandas
+    import scipy
+    out = {"robustgmm": __version__, "numpy": numpy.__version__, "scipy": scipy.__version__,
+           "pandas": pandas.__version__}
+    try:
+        import linearmodels
+        out["linearmodels"] = linearmodels.__version__
+    except ImportError:
+        out["linearmodels"] = "not installed"
+    try:
+        import joblib
+        out["joblib"] = joblib.__version__
+    except ImportError:
+        pass
+    return out
+
+
+@dataclass
+class Outcome:
+    """One workload's figures and ratios (printed and written to bench.md)."""
+
+    title: str
+    rows: list = dataclasses.field(default_factory=list)      # (figure, value) pairs
+    ratios: list = dataclasses.field(default_factory=list)    # (name, ratio, limit, aim)
+    notes: list = dataclasses.field(default_factory=list)
+
+
+def _fmt_s(x: float) -> str:
+    return f"{x:.3f} s" if x >= 0.01 else f"{x * 1000:.2f} ms"
+
+
+# ---------------------------------------------------------------------------
+# 1. marginal cost against a dense Z'Z
+# ---------------------------------------------------------------------------
+def marginal_cost(sizes: Sizes, echo=print) -> Outcome:
+    from .core import fit
+    out = Outcome("1. Marginal cost against one dense Z'Z")
+    spec = _spec(equations="system", form="per-period", steps=2, time_effects=True)
+    n1, n2 = sizes.marginal_units
+    T = sizes.marginal_periods
+    panels = {n: _panel(n, T, seed=11) for n in (n1, n2)}
+    dense = {n: _dense_instruments(spec, panels[n]) for n in (n1, n2)}
+    fit(spec, panels[n1])  # warm up imports and caches
+    t_fit = {n: math.inf for n in (n1, n2)}
+    t_zz = {n: math.inf for n in (n1, n2)}
+    for _ in range(sizes.repeats):
+        for n in (n1, n2):
+            t_fit[n] = min(t_fit[n], _best(lambda: fit(spec, panels[n])))
+            z = dense[n]
+            t_zz[n] = min(t_zz[n], _best(lambda: z.T @ z))
+    res = fit(spec, panels[n2])
+    rows2, L = dense[n2].shape
+    out.rows += [
+        ("model", f"two-step system GMM, per-period instruments, y[t-1], x endogenous, "
+                  f"w exogenous, time effects; T = {T}; {L} instruments"),
+        (f"fit, N = {n1:,}", _fmt_s(t_fit[n1])),
+        (f"fit, N = {n2:,}", _fmt_s(t_fit[n2])),
+        (f"dense Z'Z, N = {n1:,} ({dense[n1].shape[0]:,} × {L})", _fmt_s(t_zz[n1])),
+        (f"dense Z'Z, N = {n2:,} ({rows2:,} × {L})", _fmt_s(t_zz[n2])),
+        ("extra fit time", _fmt_s(t_fit[n2] - t_fit[n1])),
+        ("extra Z'Z time", _fmt_s(t_zz[n2] - t_zz[n1])),
+    ]
+    extra_zz = t_zz[n2] - t_zz[n1]
+    ratio = (t_fit[n2] - t_fit[n1]) / extra_zz if extra_zz > 0 else math.nan
+    out.ratios.append(("extra fit time / extra dense Z'Z time", ratio, 3.0, 1.0))
+    out.notes.append(f"std. error kind {res.std_error_kind}; AR(2) and difference-in-Hansen "
+                     "included in the fit time")
+    del dense
+    gc.collect()
+    return out
+
+
+# ---------------------------------------------------------------------------
+# 2. scale: a fresh process per size, from the data file
+# ---------------------------------------------------------------------------
+def _peak_rss() -> tuple[int, int | None]:
+    """(``ru_maxrss`` of this process in bytes, ``VmHWM`` from /proc when available).
+
+    ``ru_maxrss`` also counts the resident size of the process that launched this
+    one at the moment it did (Linux keeps the high-water mark across ``exec``), so
+    the launcher stays small; ``VmHWM`` is the high-water mark of this process's
+    own memory map and is shown beside it."""
+    maxrss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
+    hwm = None
+    try:
+        with open("/proc/self/status", encoding="utf-8") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    hwm = int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return maxrss, hwm
+
+
+def _scale_child(path: str, n_periods: int, threads: int) -> dict:
+    """Run in a fresh interpreter: read the file, lay out the panel, fit; report
+    the phase times and the peak resident memory of this process."""
+    with _blas_limit(threads):
+        from .core import fit
+        from .data import load_panel
+        base_rss, base_hwm = _peak_rss()
+        spec = dataclasses.replace(_spec(form="collapsed", equations="system", steps=2),
+                                   data_file=Path(path), source=path)
+        t0 = time.perf_counter()
+        panel = load_panel(spec)
+        t1 = time.perf_counter()
+        res = fit(spec, panel)
+        t2 = time.perf_counter()
+    peak, hwm = _peak_rss()
+    return {"read_seconds": t1 - t0, "fit_seconds": t2 - t1, "total_seconds": t2 - t0,
+            "peak_rss": peak, "peak_hwm": hwm, "import_rss": base_hwm or base_rss,
+            "units": res.counts.units, "instruments": res.counts.instruments,
+            "estimate": res.term("y[t-1]").estimate}
+
+
+def _write_data(path: str, n_units: int, n_periods: int) -> dict:
+    from .simulate import simulate_panel
+    simulate_panel(n_units, n_periods, seed=5).to_parquet(path, index=False)
+    return {"path": path}
+
+
+def _child(*args: str) -> dict:
+    """Run ``python -m robustgmm.bench ARGS`` in a fresh interpreter; its last line of
+    output is JSON."""
+    cmd = [sys.executable, "-m", "robustgmm.bench", *args]
+    env = dict(os.environ)
+    src = str(Path(__file__).resolve().parent.parent)
+    env["PYTHONPATH"] = src + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    if proc.returncode != 0:
+        tail = (proc.stderr.strip().splitlines() or ["no message"])[-1]
+        raise RuntimeError(f"bench step {args[0]} failed: {tail}")
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def scale(sizes: Sizes, echo=print) -> Outcome:
+    out = Outcome("2. Scale: collapsed two-step system fit from the data file")
+    T = sizes.scale_periods
+    n1, n2 = sizes.scale_units
+    todo = [n1, n2] + ([sizes.scale_aim_units] if sizes.scale_aim_units else [])
+    threads = blas_threads()
+    results = {}
+    with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
+        for n in todo:
+            path = Path(tmp) / f"panel_{n}.parquet"
+            # written by another process, so that this launcher stays small (see _peak_rss)
+            _child("--write-data", str(path), str(n), str(T))
+            best = None
+            for _ in range(1 if n == sizes.scale_aim_units else max(1, sizes.repeats - 1)):
+                r = _child("--scale-child", str(path), str(T), str(threads))
+                if best is None or r["total_seconds"] < best["total_seconds"]:
+                    best = r
+            results[n] = best
+            echo(f"  scale N = {n:,}: {best['total_seconds']:.2f} s, "
+                 f"peak {best['peak_rss'] / GB:.2f} GB")
+            path.unlink()
+    for n in todo:
+        r = results[n]
+        hwm = (f", own high-water mark {r['peak_hwm'] / GB:.2f} GB" if r.get("peak_hwm") else "")
+        out.rows.append((f"N = {n:,}, T = {T} ({r['instruments']} instruments)",
+                         f"read+layout {r['read_seconds']:.2f} s, fit {r['fit_seconds']:.2f} s, "
+                         f"total {r['total_seconds']:.2f} s; peak memory (getrusage) "
+                         f"{r['peak_rss'] / GB:.2f} GB{hwm}; after imports "
+                         f"{r['import_rss'] / GB:.2f} GB"))
+    ratio = results[n2]["total_seconds"] / results[n1]["total_seconds"]
+    out.ratios.append((f"time(N = {n2:,}) / time(N = {n1:,})", ratio, 4.8 * (n2 / n1) / 4, None))
+    out.ratios.append((f"peak memory at N = {n2:,} / 3 GB", results[n2]["peak_rss"] / (3 * GB),
+                       1.0, None))
+    if sizes.scale_aim_units:
+        n3 = sizes.scale_aim_units
+        out.ratios.append((f"peak memory at N = {n3:,} / 8 GB (aim)",
+                           results[n3]["peak_rss"] / (8 * GB), 1.0, None))
+    from .core.estimator import DEFAULT_MEMORY_MB, MEMORY_ENV
+    budget = os.environ.get(MEMORY_ENV) or DEFAULT_MEMORY_MB
+    out.notes.append(f"data written as parquet; each size runs in a fresh interpreter; "
+                     f"memory budget of the core {budget} MB ({MEMORY_ENV})")
+    return out
+
+
+# ---------------------------------------------------------------------------
+# 3. audit throughput
+# ---------------------------------------------------------------------------
+AUDIT_VARY = dict(equations=("difference", "system"), form=("per-period", "collapsed"),
+                  last_lag=(2, 3, 4, None), steps=(1, 2), transform=("fd", "fod"))
+
+
+def audit_specs(base) -> list:
+    """The 64 variant specs of the throughput workload (base settings replaced)."""
+    import itertools
+    keys = list(AUDIT_VARY)
+    return [dataclasses.replace(base, **dict(zip(keys, combo)))
+            for combo in itertools.product(*(AUDIT_VARY[k] for k in keys))]
+
+
+def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
+    from . import core
+    out = Outcome("3. Audit throughput: 64 variants")
+    N, T = sizes.audit_units, sizes.audit_periods
+    panel = _panel(N, T, seed=21)
+    base = _spec()
+    specs = audit_specs(base)
+    core.fit(specs[0], panel)  # warm-up
+    t_single = math.inf
+    t_family = math.inf
+    has_family = hasattr(core, "fit_family") and hasattr(core, "share_key")
+    for _ in range(sizes.repeats):
+        t_single = min(t_single, _best(lambda: [_try_fit(core.fit, s, panel) for s in specs]))
+        if has_family:
+            t_family = min(t_family, _best(lambda: _fit_grouped(core, specs, panel)))
+    out.rows.append(("variants", f"{len(specs)} on N = {N:,}, T = {T}"))
+    out.rows.append(("sum of one-by-one fits", _fmt_s(t_single)))
+    if has_family:
+        groups = len({core.share_key(s) for s in specs})
+        out.rows.append((f"shared work (fit_family over {groups} share_key groups)",
+                         _fmt_s(t_family)))
+        out.ratios.append(("core shared work / one by one", t_family / t_single, 0.6, None))
+    else:
+        out.notes.append("core.fit_family is not available: shared work not measured")
+    try:
+        from . import audit as audit_mod
+        run_audit = audit_mod.audit
+    except (ImportError, AttributeError):
+        out.notes.append("the audit pipeline (robustgmm.audit) is not available: "
+                         "audit timings not measured")
+        return out
+    spec = _audit_base_spec(base)
+    with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
+        from .simulate import simulate_panel
+        path = Path(tmp) / "panel.parquet"
+        simulate_panel(N, T, seed=21).to_parquet(path, index=False)
+        spec = dataclasses.replace(spec, data_file=path, source=str(path))
+        t_jobs = {1: math.inf, 2: math.inf}
+        for _ in range(sizes.repeats):
+            for jobs in (1, 2):
+                t_jobs[jobs] = min(t_jobs[jobs], _best(
+                    lambda: run_audit(spec, jobs=jobs, cache_dir=None, progress=False)))
+    out.rows.append(("audit, jobs = 1 (no cache)", _fmt_s(t_jobs[1])))
+    out.rows.append(("audit, jobs = 2 (no cache)", _fmt_s(t_jobs[2])))
+    out.ratios.append(("audit (jobs = 1) / one-by-one fits", t_jobs[1] / t_single, 0.6, None))
+    out.ratios.append(("audit jobs = 2 / jobs = 1", t_jobs[2] / t_jobs[1], 0.75, None))
+    out.notes.append("the audit also reads the data file, plans the grid and estimates the "
+                     "OLS/within bounds of every variant; the one-by-one sum is fits only")
+    return out
+
+
+def _audit_base_spec(base):
+    from .spec import Vary
+    vary = Vary(**{k: tuple(v) for k, v in AUDIT_VARY.items()})
+    return dataclasses.replace(base, vary=vary)
+
+
+def _try_fit(fit, spec, panel):
+    try:
+        return fit(spec, panel)
+    except Exception as exc:  # a failing variant is part of an audit
+        return exc
+
+
+def _fit_grouped(core, specs, panel):
+    groups: dict = {}
+    for s in specs:
+        groups.setdefault(core.share_key(s), []).append(s)
+    return [core.fit_family(g, panel) for g in groups.values()]
+
+
+# ---------------------------------------------------------------------------
+# 4. against linearmodels IVGMM
+# ---------------------------------------------------------------------------
+def reference(sizes: Sizes, echo=print) -> Outcome:
+    from .core import fit
+    out = Outcome("4. Against linearmodels IVGMM (clustered weight), identical FOD problem")
+    try:
+        from linearmodels.iv import IVGMM
+    except ImportError:
+        out.notes.append("linearmodels is not installed (it comes with the test extra): "
+                         "not measured")
+        return out
+    N, T = sizes.reference_units, sizes.reference_periods
+    panel = _panel(N, T, seed=31)
+    spec = _spec(equations="difference", transform="fod", steps=2, form="per-period",
+                 time_effects=True)
+    y, X, Z, unit = _dense_stack(spec, panel)
+
+    def theirs():
+        return IVGMM(y, None, X, Z, weight_type="clustered", clusters=unit).fit(
+            cov_type="clustered", clusters=unit)
+
+    ref = theirs()
+    ours = fit(spec, panel)
+    t_ours = t_ref = math.inf
+    for _ in range(sizes.repeats):
+        t_ref = min(t_ref, _best(theirs))
+        t_ours = min(t_ours, _best(lambda: fit(spec, panel)))
+    diff = float(np.max(np.abs(np.asarray(ref.params) - ours.params)))
+    out.rows += [
+        ("problem", f"difference GMM, FOD, per-period, time effects; N = {N:,}, T = {T}; "
+                    f"{Z.shape[0]:,} rows × {Z.shape[1]} instruments, {X.shape[1]} regressors"),
+        ("linearmodels IVGMM (model + fit)", _fmt_s(t_ref)),
+        ("robustgmm fit (from the panel, all diagnostics)", _fmt_s(t_ours)),
+        ("largest coefficient difference", f"{diff:.1e}"),
+        ("Hansen J: ours / linearmodels", f"{ours.tests['hansen'].statistic:.6f} / "
+                                           f"{float(ref.j_stat.stat):.6f}"),
+    ]
+    out.ratios.append(("robustgmm / linearmodels", t_ours / t_ref, 0.5, None))
+    return out
+
+
+def _dense_stack(spec, panel):
+    """(y, X, Z, unit) of the stacked transformed rows with the kept columns."""
+    from .core import GMMProblem
+    from .core.design import TRANSFORMED
+    prob = GMMProblem(spec, panel)
+    d = prob.design
+    ch = d.chunk(0, panel.n_units)
+    ys, xs, zs, us = [], [], [], []
+    pos = {int(j): p for p, j in enumerate(d.keep_z)}
+    for t in range(d.P):
+        idx = np.flatnonzero(ch.rows[TRANSFORMED][:, t])
+        if not idx.size:
+            continue
+        z = np.zeros((idx.size, len(d.keep_z)))
+        for block, vals in ch.blocks:
+            if block.equation == TRANSFORMED and block.t == t:
+                for k, c in enumerate(block.cols):
+                    if int(c) in pos:
+                        z[:, pos[int(c)]] += vals[idx, k]
+        ys.append(ch.y[TRANSFORMED][idx, t])
+        xs.append(ch.x[TRANSFORMED][idx, t][:, d.keep_x])
+        zs.append(z)
+        us.append(idx)
+    return np.concatenate(ys), np.vstack(xs), np.vstack(zs), np.concatenate(us)
+
+
+# ---------------------------------------------------------------------------
+# the report
+# ---------------------------------------------------------------------------
+WORKLOADS = (marginal_cost, scale, audit_throughput, reference)
+
+
+def run(quick: bool = False, out_dir=None, *, sizes: Sizes | None = None,
+        echo: Callable[[str], None] = print) -> Path:
+    """Run every workload, print the ratios and write ``bench.md`` into ``out_dir``
+    (default ``reports/``). Returns the path of the written file."""
+    if sizes is None:
+        sizes = SIZES.get(os.environ.get(SIZES_ENV, ""), QUICK if quick else FULL)
+    out_dir = Path("reports") if out_dir is None else Path(out_dir)
+    start_machine = _machine()
+    started = _dt.datetime.now().astimezone()
+    threads = blas_threads()
+    echo(f"robustgmm bench ({sizes.name} sizes) on {start_machine['cores']} cores, "
+         f"{threads} BLAS thread{'s' if threads > 1 else ''} per process")
+    outcomes = []
+    for workload in WORKLOADS:
+        t0 = time.perf_counter()
+        try:
+            with _blas_limit(threads):
+                res = workload(sizes, echo)
+        except Exception as exc:  # report the failure, keep the other workloads
+            res = Outcome(workload.__name__)
+            res.notes.append(f"failed: {type(exc).__name__}: {' '.join(str(exc).split())}")
+        res.notes.append(f"workload ran in {time.perf_counter() - t0:.1f} s")
+        outcomes.append(res)
+        _echo_outcome(res, echo)
+    end_machine = _machine()
+    text = _markdown(sizes, outcomes, start_machine, end_machine, started, threads)
+    path = out_dir / "bench.md"
+    atomic_write_text(path, text)
+    echo(f"wrote {path}")
+    return path
+
+
+def _verdict(ratio, limit) -> str:
+    if ratio is None or not np.isfinite(ratio):
+        return "not measured"
+    return "holds" if ratio <= limit else "misses"
+
+
+def _echo_outcome(res: Outcome, echo) -> None:
+    echo(res.title)
+    for name, value in res.rows:
+        echo(f"  {name}: {value}")
+    for name, ratio, limit, aim in res.ratios:
+        echo(f"  ratio {name} = {ratio:.3f} (target ≤ {limit:g}"
+             + (f", aim {aim:g}" if aim is not None else "") + f"): {_verdict(ratio, limit)}")
+    for note in res.notes:
+        echo(f"  note: {note}")
+
+
+def _markdown(sizes, outcomes, m0, m1, started, threads) -> str:
+    v = _versions()
+    lines = ["# robustgmm benchmark", "",
+             f"Generated by `robustgmm bench{' --quick' if sizes.name == 'quick' else ''}` "
+             f"({sizes.name} sizes) on {started:%Y-%m-%d %H:%M %Z}. Every timing runs with "
+             f"{threads} BLAS thread{'s' if threads > 1 else ''} per process (as the audit "
+             f"runs its variants; set {BLAS_THREADS_ENV} to change), so both sides of a "
+             "ratio get the same share of the machine; parallelism is measured by the "
+             "audit's `jobs`.", ""]
+    busy = max(m0["load"][0], m1["load"][0])
+    if np.isfinite(busy) and busy > 0.5:
+        lines += [f"**Shared machine.** The one-minute load average was {m0['load'][0]:.2f} "
+                  f"at the start and {m1['load'][0]:.2f} at the end on {m0['cores']} cores: "
+                  "other processes were running, so absolute times are noisy. Each ratio "
+                  "compares timings taken side by side (best of repeats, interleaved).", ""]
+    if sizes.name != "full":
+        lines += ["These are not the full-size workloads: fixed costs dominate small panels, "
+                  "so the ratios below are not the targets of the full run.", ""]
+    lines += ["## Machine", "",
+              f"- CPU: {m0['cpu']}, {m0['cores']} logical cores"
+              + (f", {m0['memory'] / GB:.1f} GB memory" if m0['memory'] else ""),
+              f"- {m0['platform']}, Python {m0['python']}",
+              "- " + ", ".join(f"{k} {val}" for k, val in v.items()), "",
+              "## Ratios", "", "| workload | ratio | value | target | result |", "|---|---|---|---|---|"]
+    for res in outcomes:
+        for name, ratio, limit, aim in res.ratios:
+            tgt = f"≤ {limit:g}" + (f" (aim {aim:g})" if aim is not None else "")
+            lines.append(f"| {res.title.split('.')[0]} | {name} | {ratio:.3f} | {tgt} | "
+                         f"{_verdict(ratio, limit)} |")
+    lines.append("")
+    for res in outcomes:
+        lines += [f"## {res.title}", ""]
+        for name, value in res.rows:
+            lines.append(f"- {name}: {value}")
+        for note in res.notes:
+            lines.append(f"- note: {note}")
+        lines.append("")
+    return "\n".join(lines)
+
+
+def _main(argv: list[str]) -> int:
+    if len(argv) == 4 and argv[0] == "--scale-child":
+        print(json.dumps(_scale_child(argv[1], int(argv[2]), int(argv[3]))))
+        return 0
+    if len(argv) == 4 and argv[0] == "--write-data":
+        print(json.dumps(_write_data(argv[1], int(argv[2]), int(argv[3]))))
+        return 0
+    print("usage: robustgmm bench [--quick] [--out DIR]", file=sys.stderr)
+    return 2
+
+
+if __name__ == "__main__":
+    sys.exit(_main(sys.argv[1:]))

@@ -1,0 +1,43 @@
+"""`robustgmm bench --quick` runs every workload and writes its report.
+
+Tiny sizes (ROBUSTGMM_BENCH_SIZES=tiny) keep this to seconds. Nothing here looks at
+a timing: speed is what the bench reports, never what a test asserts.
+"""
+from __future__ import annotations
+
+import re
+
+from robustgmm import bench
+from robustgmm.cli import main
+
+
+def test_bench_quick_writes_every_workload(tmp_path, monkeypatch, capsys):
+    monkeypatch.setenv(bench.SIZES_ENV, "tiny")
+    out = tmp_path / "bench"
+    assert main(["bench", "--quick", "--out", str(out)]) == 0
+    text = (out / "bench.md").read_text(encoding="utf-8")
+    printed = capsys.readouterr().out
+    for title in ("1. Marginal cost", "2. Scale", "3. Audit throughput", "4. Against linearmodels"):
+        assert f"## {title}" in text
+        assert title in printed
+    assert "failed:" not in text, text
+    # every ratio of the four targets was measured (a number in the table), none skipped
+    rows = [line for line in text.splitlines() if line.startswith("| ") and "---" not in line][1:]
+    names = [r.split("|")[2].strip() for r in rows]
+    for expected in ("extra fit time / extra dense Z'Z time", "peak memory at N = 160 / 3 GB",
+                     "core shared work / one by one", "audit jobs = 2 / jobs = 1",
+                     "robustgmm / linearmodels"):
+        assert expected in names, names
+    for r in rows:
+        assert re.fullmatch(r"\d+\.\d{3}", r.split("|")[3].strip()), r
+    assert "## Machine" in text and "numpy" in text and "tiny sizes" in text
+    assert "BLAS thread" in text
+
+
+def test_bench_sizes_are_ordered():
+    """The quick mode is smaller than the full one in every workload (CI stays fast)."""
+    for field in ("marginal_units", "scale_units"):
+        assert getattr(bench.QUICK, field)[1] < getattr(bench.FULL, field)[1]
+    assert bench.QUICK.audit_units < bench.FULL.audit_units
+    assert bench.QUICK.scale_aim_units is None and bench.FULL.scale_aim_units == 1_000_000
+    assert len(bench.audit_specs(bench._spec())) == 64
