@@ -14,10 +14,12 @@
   with the same number of BLAS threads (:data:`BLAS_THREADS`, set with threadpoolctl
   in this process and in every worker), whatever the number of workers; results
   are returned in plan order, so an audit is bit-identical whatever ``jobs`` is.
-* **Panels**: the panel of each sample is built once by the caller and shared by
-  every variant of that sample; tasks are dispatched grouped by sample and by
-  instrument family (settings other than ``steps`` and ``errors``), so siblings that
-  could share moment matrices run next to each other.
+* **Panels and shared work**: the panel of each sample is built once by the caller
+  and shared by every variant of that sample. One task is one *share group*:
+  variants that differ only in steps, errors and last_lag
+  (:func:`robustgmm.core.share_key`), estimated together by
+  :func:`robustgmm.core.fit_family`, which sums the moment matrices once for the
+  group and lets each two-step variant reuse its one-step sibling.
 * **Cache**: one JSON file per variant under ``cache_dir``, named by a key that
   hashes the data (the panel's content hash), the variant's canonical estimation
   settings and the package version. The file stores the result with a sha256 of its
@@ -69,7 +71,7 @@ WORKER_STARTUP_SECONDS = 2.0
 # results of one variant as plain JSON-able records
 # ---------------------------------------------------------------------------
 def _num(x) -> float | None:
-    """A float for a record; NaN/inf are kept as NaN (JSON ``NaN``) but None stays None."""
+    """A float for a record (NaN stays NaN, written as JSON ``NaN``); None stays None."""
     if x is None:
         return None
     return float(x)
@@ -112,40 +114,74 @@ def fit_record(result, spec) -> dict:
     return record
 
 
-def estimate_variant(spec, panel, fit: Callable | None = None,
-                     sample: Callable | None = None) -> dict:
-    """Estimate one variant and its OLS/within bounds; never raises for a bad variant.
+def _failure(exc: BaseException) -> dict:
+    if isinstance(exc, EstimationError):  # a property of the model and data: cacheable
+        return {"status": FAILED, "reason": one_line(exc), "cacheable": True}
+    # a bug or a numerical breakdown: isolate it, and do not cache it
+    return {"status": FAILED, "reason": f"{type(exc).__name__}: {one_line(exc)}",
+            "cacheable": False}
 
-    Returns ``{"status", "reason", "fit", "bounds", "seconds", "cacheable"}``. ``fit``
-    and ``sample`` default to :func:`robustgmm.core.fit` and
-    :func:`robustgmm.core.estimation_sample` (the parameters exist for tests).
+
+def estimate_group(specs, panel, fit: Callable | None = None,
+                   sample: Callable | None = None) -> list[dict]:
+    """Estimate a share group of variants and their OLS/within bounds.
+
+    Never raises for a bad variant: each member gets ``{"status", "reason", "fit",
+    "bounds", "seconds", "cacheable"}``. By default the group goes to
+    :func:`robustgmm.core.fit_family`, which sums the moments once for the group and
+    reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
+    (tests) replaces it by one call per member; ``sample`` replaces
+    :func:`robustgmm.core.estimation_sample`. Bounds are computed once per distinct
+    estimation sample and model (members of a share group normally have one).
     """
     from . import bounds as bounds_mod
+    from . import core
 
-    if fit is None or sample is None:
-        from . import core
-        fit = fit or core.fit
-        sample = sample or core.estimation_sample
+    sample = sample or core.estimation_sample
     start = time.perf_counter()
-    out: dict[str, Any] = {"status": OK, "reason": "", "fit": None, "bounds": None,
-                           "cacheable": True}
-    try:
-        result = fit(spec, panel)
-        out["fit"] = fit_record(result, spec)
-    except EstimationError as exc:
-        out.update(status=FAILED, reason=one_line(exc))
-    except Exception as exc:  # a bug or a numerical breakdown: isolate it, do not cache
-        out.update(status=FAILED, reason=f"{type(exc).__name__}: {one_line(exc)}",
-                   cacheable=False)
-    if out["status"] == OK:
+    if fit is None:
+        results = core.fit_family(list(specs), panel)
+    else:
+        results = []
+        for spec in specs:
+            try:
+                results.append(fit(spec, panel))
+            except Exception as exc:  # noqa: BLE001 - recorded as the member's failure
+                results.append(exc)
+    memo: dict = {}
+    out = []
+    for spec, res in zip(specs, results):
+        if isinstance(res, BaseException):
+            out.append({"fit": None, "bounds": None, **_failure(res)})
+            continue
+        entry = {"status": OK, "reason": "", "fit": None, "bounds": None, "cacheable": True}
         try:
-            out["bounds"] = bounds_mod.ar_bounds(spec, panel, sample(spec, panel)).to_dict()
+            entry["fit"] = fit_record(res, spec)
+        except Exception as exc:  # noqa: BLE001
+            out.append({"fit": None, "bounds": None, **_failure(exc)})
+            continue
+        try:
+            mask = sample(spec, panel)
+            key = (hashlib.sha256(np.packbits(mask).tobytes()).hexdigest(), mask.shape,
+                   spec.time_effects, spec.regressor_terms())
+            if key not in memo:
+                memo[key] = bounds_mod.ar_bounds(spec, panel, mask).to_dict()
+            entry["bounds"] = memo[key]
         except EstimationError as exc:
-            out["bounds"] = {"error": one_line(exc)}
-        except Exception as exc:
-            out["bounds"] = {"error": f"{type(exc).__name__}: {one_line(exc)}"}
-    out["seconds"] = time.perf_counter() - start
+            entry["bounds"] = {"error": one_line(exc)}
+        except Exception as exc:  # noqa: BLE001
+            entry["bounds"] = {"error": f"{type(exc).__name__}: {one_line(exc)}"}
+        out.append(entry)
+    per_variant = (time.perf_counter() - start) / max(len(out), 1)
+    for entry in out:
+        entry["seconds"] = per_variant
     return out
+
+
+def estimate_variant(spec, panel, fit: Callable | None = None,
+                     sample: Callable | None = None) -> dict:
+    """One variant on its own (a share group of one); see :func:`estimate_group`."""
+    return estimate_group([spec], panel, fit, sample)[0]
 
 
 def one_line(exc: BaseException) -> str:
@@ -165,9 +201,13 @@ class Cache:
         self.corrupted = 0
 
     @staticmethod
-    def key(data_hash: str, spec) -> str:
+    def key(data_hash: str, spec, group: Any = None) -> str:
+        """sha256 of the data hash, the canonical settings, the package version and
+        ``group``: what else the result depends on (the instrument windows of the
+        share group it was estimated with; see :func:`_group_signature`)."""
         text = canonical_json({"format": CACHE_FORMAT, "version": __version__,
-                               "data": data_hash, "settings": canonical_settings(spec)})
+                               "data": data_hash, "settings": canonical_settings(spec),
+                               "group": group})
         return hashlib.sha256(text.encode()).hexdigest()
 
     def path(self, key: str) -> Path:
@@ -245,11 +285,19 @@ class RunStats:
         return out
 
 
-def _family_key(spec) -> str:
-    """Settings that fix the instrument set and transform (not steps/errors)."""
-    s = canonical_settings(spec)
-    s.pop("steps"); s.pop("errors")
-    return canonical_json(s)
+def _share_key(spec) -> str:
+    """Variants with the same key are estimated together by ``core.fit_family``
+    (they differ at most in steps, errors and last_lag)."""
+    from . import core
+    return core.share_key(spec)
+
+
+def _group_signature(members: Sequence[Variant]) -> list:
+    """The instrument windows of a share group. Members that differ in last_lag are
+    estimated from the moments of the widest window, which changes the order of
+    floating-point sums (results agree to rounding, not bit for bit); the cache key
+    records the windows so that a cached result always equals a fresh one."""
+    return sorted({"all" if v.spec.last_lag is None else str(v.spec.last_lag) for v in members})
 
 
 def _is_loky(backend_obj) -> bool:
@@ -332,27 +380,45 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
 
     ``panels`` maps :func:`robustgmm.grid.sample_key` to the sample's panel.
-    ``jobs``: worker count (None or -1: every core; 1: in this process).
-    ``progress``: a tqdm bar on stderr (None: only when stderr is a terminal).
-    ``fit``/``sample``: replacements for the core's functions (tests).
+    ``jobs``: worker count (None: every core, or this process for a small audit;
+    -1: every core; 1: this process). ``progress``: a tqdm bar on stderr (None: only
+    when stderr is a terminal). ``fit``/``sample``: replacements for the core's
+    functions (tests); with ``fit`` every variant is estimated on its own.
+
+    The unit of work is a share group (variants that differ only in steps, errors
+    and last_lag; :func:`robustgmm.core.share_key`), estimated together by
+    :func:`robustgmm.core.fit_family`. A group runs when any member is missing from
+    the cache; it always runs whole, so that its results do not depend on what was
+    cached (members already cached keep their cached result, which is identical).
     """
     start = time.perf_counter()
     todo = [v for v in variants if v.status == PLANNED]
     cache = Cache(cache_dir) if cache_dir is not None else None
+    by_key: dict[str, list[Variant]] = {}
+    for v in todo:
+        key = f"{v.id}" if fit is not None else _share_key(v.spec)
+        by_key.setdefault(key, []).append(v)
+    groups = sorted(by_key.values(), key=lambda g: (sample_key(g[0].spec.sample),
+                                                     min(v.order for v in g)))
     outcomes: dict[str, Outcome] = {}
     keys: dict[str, str] = {}
-    pending = []
-    for v in todo:
-        panel = panels[sample_key(v.spec.sample)]
-        if cache is not None:
-            keys[v.id] = cache.key(panel.data_hash, v.spec)
-            payload = cache.load(keys[v.id])
-            if payload is not None:
-                outcomes[v.id] = _outcome(v.id, payload, cached=True)
+    pending: list[list[Variant]] = []
+    for group in groups:
+        signature = None if fit is not None else _group_signature(group)
+        panel = panels[sample_key(group[0].spec.sample)]
+        missing = False
+        for v in group:
+            if cache is None:
+                missing = True
                 continue
-        pending.append(v)
-    # siblings next to each other: same panel, then same instrument family
-    pending.sort(key=lambda v: (sample_key(v.spec.sample), _family_key(v.spec), v.order))
+            keys[v.id] = cache.key(panel.data_hash, v.spec, signature)
+            payload = cache.load(keys[v.id])
+            if payload is None:
+                missing = True
+            else:
+                outcomes[v.id] = _outcome(v.id, payload, cached=True)
+        if missing:
+            pending.append(group)
 
     n_jobs = -1 if jobs is None else int(jobs)
     if progress is None:
@@ -362,36 +428,48 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
         from tqdm import tqdm
         bar = tqdm(total=len(todo), initial=len(outcomes), file=sys.stderr,
                    desc="variants", unit="variant", leave=False)
+    estimated = 0
 
-    def record(vid, payload):
-        cacheable = payload.pop("cacheable", True)
-        if cache is not None and cacheable:
-            cache.store(keys[vid], vid, payload)
-        outcomes[vid] = _outcome(vid, payload, cached=False)
-        if bar is not None:
-            bar.update(1)
+    def record(results):
+        nonlocal estimated
+        for vid, payload in results:
+            estimated += 1
+            if vid in outcomes:  # cached member of a group that had to run
+                continue
+            cacheable = payload.pop("cacheable", True)
+            if cache is not None and cacheable:
+                cache.store(keys[vid], vid, payload)
+            outcomes[vid] = _outcome(vid, payload, cached=False)
+            if bar is not None:
+                bar.update(1)
+
+    def task(group):
+        return joblib.delayed(_task)([v.id for v in group], [v.spec for v in group],
+                                     panels[sample_key(group[0].spec.sample)], fit, sample,
+                                     parent)
 
     backend_used = "in-process"
     n_workers = 1
     parent = os.getpid()
+    n_pending = sum(len(g) for g in pending)
     try:
         if pending and jobs is None and backend is None and _default_is_loky():
-            # jobs not set: time the first variant here; when the whole audit would
+            # jobs not set: time the first group here; when the whole audit would
             # take less than starting worker processes costs, stay in this process
             first = pending.pop(0)
+            t0 = time.perf_counter()
             with _blas_limit():
-                record(*_task(first.id, first.spec, panels[sample_key(first.spec.sample)],
-                              fit, sample, parent))
-            if len(pending) * outcomes[first.id].seconds < WORKER_STARTUP_SECONDS:
+                record(_task([v.id for v in first], [v.spec for v in first],
+                             panels[sample_key(first[0].spec.sample)], fit, sample, parent))
+            per_variant = (time.perf_counter() - t0) / len(first)
+            if sum(len(g) for g in pending) * per_variant < WORKER_STARTUP_SECONDS:
                 n_jobs = 1
         if pending:
             n_workers = joblib.effective_n_jobs(n_jobs)
             with _backend_context(backend, n_workers) as backend_used, _blas_limit():
                 n_workers = joblib.effective_n_jobs(n_jobs)  # as the active backend sees it
-                tasks = (joblib.delayed(_task)(v.id, v.spec, panels[sample_key(v.spec.sample)],
-                                               fit, sample, parent) for v in pending)
-                for vid, payload in _parallel(n_jobs)(tasks):
-                    record(vid, payload)
+                for results in _parallel(n_jobs)(task(g) for g in pending):
+                    record(results)
             if n_workers == 1:
                 backend_used = "in-process"
     except Exception as exc:
@@ -399,7 +477,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
             done = sum(1 for o in outcomes.values() if not o.cached)
             raise RuntimeError(
                 f"a worker process died (killed or out of memory) after {done} of "
-                f"{len(pending)} variants were estimated"
+                f"{n_pending} variants were estimated"
                 + ("; the finished ones are cached: rerun to resume" if cache else "")) from exc
         raise
     finally:
@@ -416,6 +494,8 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
         backend=backend_used,
         wall_seconds=time.perf_counter() - start,
         variant_seconds=sum(o.seconds for o in ordered.values() if not o.cached),
+        extra={"groups": len(groups), "estimated": estimated,
+               "shared": fit is None},
     )
     return ordered, stats
 
@@ -428,9 +508,9 @@ def _parallel(n_jobs: int) -> joblib.Parallel:
         return joblib.Parallel(n_jobs=n_jobs, return_as="generator")
 
 
-def _task(vid: str, spec, panel, fit, sample, parent_pid: int):
+def _task(ids, specs, panel, fit, sample, parent_pid: int):
     _limit_worker_blas(parent_pid)
-    return vid, estimate_variant(spec, panel, fit, sample)
+    return list(zip(ids, estimate_group(specs, panel, fit, sample)))
 
 
 def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:

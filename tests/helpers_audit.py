@@ -100,3 +100,29 @@ class KillWorkerOnce:
 
 def is_fod_collapsed_two_step(spec) -> bool:
     return spec.transform == "fod" and spec.form == "collapsed" and spec.steps == 2
+
+
+class CountingFamily:
+    """Wraps ``core.fit_family`` (install with monkeypatch, in-process runs): counts
+    groups and estimated specs; can raise KeyboardInterrupt on the k-th group (as
+    Ctrl-C would) and replace members' results by exceptions (``fail``: list of
+    (predicate on the spec, exception))."""
+
+    def __init__(self, interrupt_at_group=None, fail=None):
+        self.real = core.fit_family
+        self.groups = 0
+        self.specs = 0
+        self.interrupt_at_group = interrupt_at_group
+        self.fail = fail or []
+
+    def __call__(self, specs, panel, **kw):
+        self.groups += 1
+        if self.interrupt_at_group is not None and self.groups == self.interrupt_at_group:
+            raise KeyboardInterrupt
+        self.specs += len(specs)
+        results = self.real(specs, panel, **kw)
+        for i, spec in enumerate(specs):
+            for predicate, exc in self.fail:
+                if predicate(spec):
+                    results[i] = exc
+        return results

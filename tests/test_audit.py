@@ -17,7 +17,7 @@ from robustgmm.audit import audit, default_cache_dir, plan_frame, write_audit
 from robustgmm.bounds import ar_bounds
 from robustgmm.modelfile import spec_to_toml
 
-from helpers_audit import CountingFit, make_spec, write_panel
+from helpers_audit import CountingFamily, CountingFit, make_spec, write_panel
 
 FILES = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json")
 VARY = {"equations": ["difference", "system"], "steps": [1, 2],
@@ -91,15 +91,16 @@ def test_contract_tables_and_files(spec, tmp_path):
     assert "not proof" in manifest["disclaimer"]
 
 
-def test_identical_outputs_whatever_jobs_and_through_the_cache(spec, tmp_path):
+def test_identical_outputs_whatever_jobs_and_through_the_cache(spec, tmp_path, monkeypatch):
     one = write_audit(audit(spec, jobs=1), tmp_path / "one")
     two = write_audit(audit(spec, jobs=2), tmp_path / "two")
     cache = tmp_path / "cache"
     write_audit(audit(spec, jobs=2, cache_dir=cache), tmp_path / "warm")
-    fit = CountingFit()
-    rerun = audit(spec, jobs=1, cache_dir=cache, fit=fit)
+    counter = CountingFamily()
+    monkeypatch.setattr(core, "fit_family", counter)
+    rerun = audit(spec, jobs=1, cache_dir=cache)
     cached = write_audit(rerun, tmp_path / "cached")
-    assert fit.calls == 0 and rerun.manifest["run"]["computed"] == 0
+    assert counter.specs == 0 and rerun.manifest["run"]["computed"] == 0
     assert rerun.manifest["run"]["cached"] == 12
     for name in FILES:
         text = (one / name).read_bytes()

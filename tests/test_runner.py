@@ -10,10 +10,11 @@ import numpy as np
 import pytest
 
 from robustgmm import core, grid, runner
+from robustgmm.grid import canonical_json as canonical
 from robustgmm.errors import EstimationError
 from robustgmm.spec import SampleFilter
 
-from helpers_audit import (CountingFit, KillWorkerOnce, is_fod_collapsed_two_step, make_spec,
+from helpers_audit import (CountingFamily, CountingFit, KillWorkerOnce, is_fod_collapsed_two_step, make_spec,
                            outcome_text)
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
@@ -26,30 +27,43 @@ def planned(tmp_path):
     return spec, panels, grid.plan(spec, panels)
 
 
-def test_cache_rerun_computes_nothing_and_detects_corruption(planned, tmp_path):
+def _count(monkeypatch, **kw):
+    counter = CountingFamily(**kw)
+    monkeypatch.setattr(core, "fit_family", counter)
+    return counter
+
+
+def test_cache_rerun_computes_nothing_and_detects_corruption(planned, tmp_path, monkeypatch):
     spec, panels, variants = planned
     cache_dir = tmp_path / "cache"
-    fit = CountingFit()
-    first, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
-    assert fit.calls == stats.computed == len(variants) == 8
-    assert stats.cached == 0 and stats.failed == 0
+    counter = _count(monkeypatch)
+    first, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir)
+    # share groups differ only in steps: 4 groups of 2 (transform x form)
+    assert counter.specs == stats.computed == len(variants) == 8 and counter.groups == 4
+    assert stats.cached == 0 and stats.failed == 0 and stats.extra["groups"] == 4
     assert len(list(cache_dir.glob("*.json"))) == 8
 
-    fit = CountingFit()
-    again, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
-    assert fit.calls == 0 and stats.cached == 8 and stats.computed == 0
+    counter = _count(monkeypatch)
+    again, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir)
+    assert counter.specs == 0 and stats.cached == 8 and stats.computed == 0
     assert outcome_text(again) == outcome_text(first)  # bit-identical through the cache
     assert all(o.cached for o in again.values())
 
-    # a flipped digit in one entry and a truncated second entry: both recomputed
-    files = sorted(cache_dir.glob("*.json"))
-    entry = json.loads(files[0].read_text())
+    # a flipped digit in one entry and a truncated one in another group: both groups
+    # are estimated again (whole), only the two damaged entries are replaced
+    entries = {json.loads(f.read_text())["variant"]: f for f in cache_dir.glob("*.json")}
+    by_group = {}
+    for v in variants:
+        by_group.setdefault(core.share_key(v.spec), []).append(v.id)
+    g1, g2 = list(by_group.values())[:2]
+    entry = json.loads(entries[g1[0]].read_text())
     entry["payload"]["fit"]["terms"][0]["estimate"] += 1e-9
-    files[0].write_text(json.dumps(entry))
-    files[1].write_text(files[1].read_text()[:50])
-    fit = CountingFit()
-    third, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
-    assert fit.calls == 2 and stats.corrupted == 2 and stats.cached == 6
+    entries[g1[0]].write_text(json.dumps(entry))
+    entries[g2[1]].write_text(entries[g2[1]].read_text()[:50])
+    counter = _count(monkeypatch)
+    third, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir)
+    assert counter.groups == 2 and counter.specs == 4
+    assert stats.corrupted == 2 and stats.computed == 2 and stats.cached == 6
     assert outcome_text(third) == outcome_text(first)
 
 
@@ -62,18 +76,64 @@ def test_cache_key_changes_with_data_and_settings(planned):
         "h1", dataclasses.replace(a, source="renamed.toml", alpha=0.01))
 
 
-def test_interrupted_run_resumes_where_it_stopped(planned, tmp_path):
+def test_interrupted_run_resumes_where_it_stopped(planned, tmp_path, monkeypatch):
+    spec, panels, variants = planned
+    cache_dir = tmp_path / "cache"
+    _count(monkeypatch, interrupt_at_group=3)  # Ctrl-C during the third group
+    with pytest.raises(KeyboardInterrupt):
+        runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir)
+    assert len(list(cache_dir.glob("*.json"))) == 4  # two finished groups were kept
+    counter = _count(monkeypatch)
+    resumed, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir)
+    assert counter.specs == stats.computed == 4 and stats.cached == 4
+    monkeypatch.undo()
+    fresh, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=None)
+    assert outcome_text(resumed) == outcome_text(fresh)
+
+
+def test_interrupt_with_a_per_variant_estimator(planned, tmp_path):
     spec, panels, variants = planned
     cache_dir = tmp_path / "cache"
     with pytest.raises(KeyboardInterrupt):
         runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir,
                             fit=CountingFit(interrupt_at=4))
-    assert len(list(cache_dir.glob("*.json"))) == 3  # finished variants were kept
+    assert len(list(cache_dir.glob("*.json"))) == 3
     fit = CountingFit()
     resumed, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
     assert fit.calls == stats.computed == 5 and stats.cached == 3
-    fresh, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=None)
-    assert outcome_text(resumed) == outcome_text(fresh)
+
+
+def test_shared_work_gives_the_results_of_separate_fits(tmp_path):
+    # steps and errors siblings are exact; last_lag siblings agree to rounding
+    spec = make_spec(tmp_path, {"steps": [1, 2], "errors": ["robust", "conventional"],
+                                "last_lag": [2, 3, "all"]})
+    panels = grid.load_panels(spec)
+    variants = grid.plan(spec, panels)
+    shared, stats = runner.run_variants(variants, panels, jobs=1)
+    assert stats.extra == {"groups": 1, "estimated": 12, "shared": True}
+    alone, _ = runner.run_variants(variants, panels, jobs=1, fit=core.fit)
+    for v in variants:
+        a, b = shared[v.id].fit, alone[v.id].fit
+        for ta, tb in zip(a["terms"], b["terms"]):
+            assert ta["estimate"] == pytest.approx(tb["estimate"], rel=1e-9, abs=1e-12)
+            assert ta["std_error"] == pytest.approx(tb["std_error"], rel=1e-9, abs=1e-12)
+        assert a["tests"]["hansen"]["p_value"] == pytest.approx(
+            b["tests"]["hansen"]["p_value"], rel=1e-8, abs=1e-12)
+        assert shared[v.id].bounds == alone[v.id].bounds
+    same_window = [v for v in variants if v.spec.last_lag is None]
+    only, _ = runner.run_variants(same_window, panels, jobs=1)
+    for v in same_window:  # a group of one window: bit-identical to separate fits
+        assert canonical(only[v.id].fit) == canonical(alone[v.id].fit)
+
+
+def test_a_failing_member_of_a_share_group_is_isolated(planned, monkeypatch):
+    spec, panels, variants = planned
+    _count(monkeypatch, fail=[(lambda s: s.steps == 1 and s.form == "collapsed",
+                               EstimationError("the weight matrix is singular"))])
+    out, stats = runner.run_variants(variants, panels, jobs=1)
+    failed = [o for o in out.values() if o.status == runner.FAILED]
+    assert len(failed) == 2 and {o.reason for o in failed} == {"the weight matrix is singular"}
+    assert sum(o.status == runner.OK for o in out.values()) == 6
 
 
 @pytest.mark.slow  # restarts worker processes: about 10 s
