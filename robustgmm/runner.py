@@ -1,16 +1,15 @@
 """Run the variants of an audit: joblib over variants, on-disk cache, progress bar.
 
-* **Parallel**: one joblib task per variant. The default backend is loky (processes)
-  with ``jobs`` workers (default: every core, except that an audit too small to
-  repay starting worker processes — judged by timing its first variant against
-  :data:`WORKER_STARTUP_SECONDS` — runs in this process); each worker's BLAS is limited to
-  ``cores // workers`` threads through joblib's ``inner_max_num_threads``, so two
-  workers on two cores do not oversubscribe them. Any other joblib backend works
-  the same way: pass ``backend="dask"`` (or run the audit inside
-  ``joblib.parallel_config("dask")`` / ``parallel_backend("dask")``), with a
-  ``dask.distributed`` client, and the variants run on the cluster. Dask is not
-  required otherwise.
-* **Determinism**: each variant is estimated on its own, from the same inputs and
+* **Parallel**: one joblib task per share group (below). The default backend is
+  loky (processes) with ``jobs`` workers (default: every core, except that an audit
+  too small to repay starting worker processes — judged by timing its first group
+  against :data:`WORKER_STARTUP_SECONDS` — runs in this process); each worker's BLAS
+  is limited to :data:`BLAS_THREADS` threads, so workers never oversubscribe the
+  cores. Any other joblib backend works the same way: pass ``backend="dask"`` (or
+  run the audit inside ``joblib.parallel_config("dask")`` /
+  ``parallel_backend("dask")``) with a ``dask.distributed`` client, and the groups
+  run on the cluster. Dask is not required otherwise.
+* **Determinism**: each share group is estimated whole, from the same inputs and
   with the same number of BLAS threads (:data:`BLAS_THREADS`, set with threadpoolctl
   in this process and in every worker), whatever the number of workers; results
   are returned in plan order, so an audit is bit-identical whatever ``jobs`` is.
@@ -22,12 +21,12 @@
   group and lets each two-step variant reuse its one-step sibling.
 * **Cache**: one JSON file per variant under ``cache_dir``, named by a key that
   hashes the data (the panel's content hash), the variant's canonical estimation
-  settings and the package version. The file stores the result with a sha256 of its
+  settings, the package version and its share group's instrument windows. The file stores the result with a sha256 of its
   canonical text; an entry that does not parse or whose checksum does not match is
   treated as missing and recomputed (and counted as corrupted). Entries are written
   atomically by the parent process as soon as each result arrives, so an interrupted
-  audit (Ctrl-C, a killed worker) resumes where it stopped and an unchanged rerun
-  estimates nothing. Variants that fail with :class:`EstimationError` (a property of
+  audit (Ctrl-C, a killed worker) resumes where it stopped (a group with a missing
+  member runs whole again) and an unchanged rerun estimates nothing. Variants that fail with :class:`EstimationError` (a property of
   the model and data) are cached as failed; unexpected errors are not cached, so a
   rerun tries them again.
 * **Failure isolation**: an exception in a variant marks it ``failed`` with a one-line
