@@ -103,7 +103,10 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
     changes = max((len(cols) for _, cols, _ in departures), default=1)
     change_text = "one setting" if changes == 1 else \
         f"{changes} settings (no estimated variant changes only one)"
-    step = max(per_panel - 1, 1)
+    # balanced panels: 6 departures with room for 5 per panel give 3 + 3, not 5 + 1
+    room = max(per_panel - 1, 1)
+    n_panels = max(1, -(-len(departures) // room))
+    step = max(1, -(-len(departures) // n_panels))
     panels = [[base_col] + departures[i:i + step] for i in range(0, len(departures), step)] \
         or [[base_col]]
     est = audit.estimates.set_index(["variant", "term"])
@@ -155,12 +158,15 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
             lines.append(f"{label} & " + " & ".join(cells) + " \\\\")
         lines.append("\\bottomrule")
         lines.append("\\end{tabular}")
+    judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
+              f"their specification tests" if s.has_acceptable
+              else f"across all {s.n_ok} estimated variants")
     verdicts = "; ".join(f"\\texttt{{{tex(t.term)}}} {tex(t.verdict)}" for t in s.terms)
     failed = [row["variant"] for _, row in audit.variants.iterrows()
               if row["status"] != "ok"]
     note = (f"Standard errors in parentheses. Column (1) is the base model (variant "
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
-            f"Verdicts across all {s.n_ok} estimated variants: {verdicts}. "
+            f"Verdicts ({judged}): {verdicts}. "
             f"Statistical robustness does not establish instrument validity, which rests "
             f"on economic reasoning.")
     if failed:
