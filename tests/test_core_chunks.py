@@ -287,3 +287,22 @@ def test_more_instruments_than_units_warns_singular_weight():
     res = fit(sim_spec(time_effects=True), panel)
     assert res.counts.instruments > res.counts.units
     assert any("robust weight matrix is singular" in w for w in res.warnings)
+
+
+def test_memory_does_not_grow_with_units_beyond_the_raw_data():
+    """With a small memory budget the peak of the arrays a fit allocates (tracemalloc
+    sees numpy's buffers) grows by less than the raw N×P data when N grows 8×: the
+    chunk arrays are bounded by the budget, not by N."""
+    import tracemalloc
+
+    spec = sim_spec(time_effects=True)
+    peaks, raws = [], []
+    for n in (1000, 8000):
+        _, panel = sim_panel(n, 8, seed=4)
+        tracemalloc.start()
+        fit(spec, panel, memory_mb=2)
+        peaks.append(tracemalloc.get_traced_memory()[1])
+        tracemalloc.stop()
+        raws.append(sum(v.nbytes for v in panel.values.values()))
+    assert peaks[1] - peaks[0] < raws[1] - raws[0]
+    assert peaks[1] < 2 * 2**20 + raws[1]
