@@ -35,11 +35,41 @@ from scipy import sparse
 from .design import TRANSFORMED, Chunk, Design
 
 
+def _structural_zeros(design: Design, block) -> np.ndarray:
+    """Entries of a block that are zero for every unit by construction: the
+    instruments of the period dummies (Design: one "own" entry per dummy in every
+    row). The dummy of period ``s`` is non-zero in the level equation only at
+    ``t = s``; first-differenced, only at ``t = s`` and ``t = s + 1``; as a forward
+    orthogonal deviation (stored at row ``t`` for period ``t - 1``), only while
+    ``t - 1 ≤ s``. Skipping them makes the time-effect blocks cost what their
+    non-zero entries cost. :func:`prepare` checks that the skipped values are zero."""
+    zero = np.zeros(len(block.cols), dtype=bool)
+    first_own = len(block.lev_cols) + len(block.dif_cols)
+    kinds = design.x_kinds_all
+    period = dict(zip([k for k, kind in enumerate(kinds) if kind == "dummy"],
+                      design.dummy_periods))
+    t = block.t
+    for i, k in enumerate(block.own_idx):
+        s = period.get(int(k)) if int(k) < len(kinds) else None
+        if s is None:
+            continue
+        if block.equation != TRANSFORMED:
+            nonzero = t == s
+        elif not design.fod:
+            nonzero = t in (s, s + 1)
+        else:
+            nonzero = t - 1 <= s
+        zero[first_own + i] = not nonzero
+    return zero
+
+
 class Layout:
     """Where each instrument entry of a design's blocks lives (shared by its chunks).
 
-    ``slots``: the row slots ``(equation, period)``, transformed equation first;
-    ``starts``/``stops``: each block's entry range; ``block_slot``: its slot;
+    Row slots are ``equation · P + period`` (transformed equation first). Only the
+    entries that can be non-zero are laid out (``take`` of design block
+    ``source``; :func:`_structural_zeros`). ``starts``/``stops``: each laid-out
+    block's entry range; ``block_slot``: its slot;
     ``ent_slot``/``ent_col``: slot and instrument column of every entry;
     ``scatter``: the L × W 0/1 matrix ``C`` (CSR); ``pairs``: neighbouring
     transformed-equation blocks (``t``, ``t+1``) for the first-difference weight.
@@ -51,20 +81,30 @@ class Layout:
         self.R = self.P * len(self.equations)
         self.K = len(design.x_labels_all)
         self.L = design.L_all
-        blocks = design.blocks
-        widths = np.asarray([len(b.cols) for b in blocks], dtype=np.int64)
+        fd = self.fd = not design.fod
+        # entries of each design block that can be non-zero (see _structural_zeros);
+        # blocks left empty are not laid out at all
+        self.take, self.drop, self.source = [], [], []
+        for j, b in enumerate(design.blocks):
+            zero = _structural_zeros(design, b)
+            keep = np.flatnonzero(~zero)
+            if keep.size:
+                self.source.append(j)
+                self.take.append(keep)
+                self.drop.append(np.flatnonzero(zero))
+        blocks = [design.blocks[j] for j in self.source]
+        widths = np.asarray([len(t) for t in self.take], dtype=np.int64)
         self.starts = np.concatenate([[0], np.cumsum(widths)[:-1]]).astype(np.int64)
         self.stops = self.starts + widths
         self.W = int(widths.sum())
         self.block_slot = np.asarray([b.equation * self.P + b.t for b in blocks], dtype=np.int64)
-        self.block_cols = [np.asarray(b.cols, dtype=np.int64) for b in blocks]
+        self.block_cols = [np.asarray(b.cols, dtype=np.int64)[t] for b, t in zip(blocks, self.take)]
         self.ent_slot = np.repeat(self.block_slot, widths)
         self.ent_col = (np.concatenate(self.block_cols) if blocks
                         else np.zeros(0, dtype=np.int64))
         self.scatter = sparse.csr_matrix(
             (np.ones(self.W), (self.ent_col, np.arange(self.W))), shape=(self.L, self.W))
         # one-step weight: 2 on the diagonal of first-differenced rows, 1 elsewhere
-        fd = self.fd = not design.fod
         self.block_diag = np.asarray(
             [2.0 if (b.equation == TRANSFORMED and fd) else 1.0 for b in blocks])
         # flat L×L positions of each block's own products and of neighbour products
@@ -149,8 +189,13 @@ def prepare(chunk: Chunk, layout: Layout) -> Prepared:
     """Lay a design chunk's instrument blocks side by side (the one copy made)."""
     n = chunk.n
     ZT = np.empty((layout.W, n))
-    for j, (block, vals) in enumerate(chunk.blocks):
-        ZT[layout.starts[j]:layout.stops[j]] = vals.T
+    for j, src in enumerate(layout.source):
+        vals = chunk.blocks[src][1]
+        drop = layout.drop[j]
+        if drop.size and np.any(vals[:, drop]):
+            raise RuntimeError("internal error: a period-dummy instrument entry assumed zero "
+                               "is not (robustgmm.core.moments._structural_zeros)")
+        ZT[layout.starts[j]:layout.stops[j]] = vals[:, layout.take[j]].T
     eqs = layout.equations
     pc = Prepared(n=n, ZT=ZT, y=[chunk.y[e] for e in eqs], x=[chunk.x[e] for e in eqs],
                   rows=[chunk.rows[e] for e in eqs])
