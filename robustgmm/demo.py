@@ -42,7 +42,7 @@ inconclusive; in one staff hours came out robust); the demo uses one fixed seed,
 - ``orchards`` — 300 fictional fruit cooperatives in three regions, 2010-2019, an
   *unbalanced panel with gaps*: the irrigation effect is zero in the highland region
   and positive elsewhere, so *sample filters* (dropping a region, a later start)
-  change the answer.
+  move its estimate (the audit reports the spread as a caution).
 """
 from __future__ import annotations
 

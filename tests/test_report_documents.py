@@ -300,3 +300,40 @@ def test_small_audits_read_naturally(tmp_path, n):
         assert flat.startswith("In the single estimated specification, ")
     else:
         assert "positive in both" in flat
+
+
+def test_values_of_skipped_variants_are_not_called_varied(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 4, failed=0)
+    variants = pd.read_csv(out / "variants.csv")
+    extra = variants.iloc[[0, 1]].copy()
+    extra["variant"] = ["s1", "s2"]
+    extra["last_lag"] = 99
+    extra["is_base"] = False
+    extra["status"] = "skipped"
+    extra["reason"] = "lag window reaches past the panel"
+    for col in ("instruments", "units", "observations", "hansen_p", "sargan_p", "ar1_p",
+                "ar2_p", "ar_coefficient", "in_bounds"):
+        extra[col] = float("nan")
+    pd.concat([variants, extra]).to_csv(out / "variants.csv", index=False)
+    build_report(out)
+    flat = " ".join((out / "referee.txt").read_text().split())
+    assert "last instrument lag" not in flat and "99" not in flat
+    assert "2 combinations of settings were skipped as impossible" in flat
+    md = (out / "report.md").read_text()
+    assert "lag window reaches past the panel" in md  # the reason is in the table
+
+
+def test_latex_falls_back_to_the_closest_variants(tmp_path):
+    # the base uses a role no other variant shares: no variant differs in one setting
+    out = write_fake_audit(tmp_path / "a", 8, failed=0, role_column="role:x")
+    variants = pd.read_csv(out / "variants.csv")
+    variants["role:x"] = ["predetermined"] + ["endogenous"] * (len(variants) - 1)
+    variants.to_csv(out / "variants.csv", index=False)
+    audit = read_audit_folder(out)
+    from robustgmm.report.latex import one_at_a_time
+    cols = one_at_a_time(audit)
+    assert len(cols) > 1 and all(len(changed) == 2 for _, changed, _ in cols[1:])
+    assert all("role:x" in changed for _, changed, _ in cols[1:])
+    text = render_latex(audit)
+    assert "each other column changes 2 settings" in text
+    assert "x: endogenous" in text

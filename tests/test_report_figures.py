@@ -67,8 +67,10 @@ def test_specification_curve(audit):
     hlines = [tuple(line.get_ydata()) for line in ax.get_lines()]
     assert (0.0, 0.0) in hlines and (0.05, 0.05) in hlines
     # choice panel: one y tick per (setting, value) pair
-    expected_rows = sum(audit.variants[c].astype(str).nunique()
-                        for c in (audit.varied_settings or audit.setting_columns))
+    # (only settings that vary among the variants drawn, each value once)
+    frame = audit.term_estimates(FRAGILE)
+    varied = [c for c in audit.setting_columns if frame[c].astype(str).nunique() > 1]
+    expected_rows = sum(frame[c].astype(str).nunique() for c in (varied or audit.setting_columns))
     assert len(ax_choice.get_yticks()) == expected_rows
     # per-variant tick labels only up to the limit
     labels = [t.get_text() for t in ax_choice.get_xticklabels()]
@@ -157,3 +159,15 @@ def test_slug_is_file_safe_and_unique_names(tmp_path):
                                                     formats=("png",))]
     assert len(names) == len(set(names))
     assert ROBUST in audit.focus
+
+
+def test_variants_failing_a_test_are_drawn_hollow(tmp_path):
+    audit = read_audit_folder(write_fake_audit(tmp_path / "a", 24))
+    frame = audit.term_estimates(FRAGILE).sort_values(["estimate", "variant"])
+    assert not frame["acceptable"].all() and frame["acceptable"].any()
+    fig = figures.plot_specification_curve(Figure(), audit, FRAGILE)
+    points = _scatter_points(fig.axes[0])[0]
+    alpha = points.get_facecolors()[:, 3]
+    np.testing.assert_array_equal(alpha > 0, frame["acceptable"].to_numpy())
+    legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert "fails a specification test" in legend

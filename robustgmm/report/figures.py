@@ -141,13 +141,17 @@ def _sorted_term(audit: AuditFolder, term: str) -> pd.DataFrame:
 
 def _choice_rows(audit: AuditFolder, frame: pd.DataFrame):
     """(setting column, value) pairs shown in the choice panel, in a fixed order."""
-    columns = audit.varied_settings or audit.setting_columns
+    # settings that vary among the variants drawn (a value used only by skipped or
+    # failed variants would be an empty row)
+    columns = [c for c in audit.setting_columns if c in frame.columns]
+    varied = [c for c in columns if frame[c].map(value_text).nunique() > 1]
     rows = []
-    for col in columns:
-        if col not in frame.columns:
-            continue
+    for col in varied or columns:
+        drawn = set(frame[col].map(value_text))
+        # values in the order of variants.csv (base first), whatever the sorting
         for value in pd.unique(audit.variants[col]):
-            rows.append((col, value))
+            if value_text(value) in drawn:
+                rows.append((col, value))
     return rows
 
 
@@ -611,7 +615,8 @@ def render_figures(audit: AuditFolder, out_dir, *, formats=("png", "svg", "pdf")
             png, paths = _save(fig, out_dir, name, formats)
             made.append(FigureFile(name, title, kind, term, png, tuple(paths)))
 
-        rows = len(_choice_rows(audit, audit.variants))
+        rows = max((len(_choice_rows(audit, audit.term_estimates(t))) for t in audit.focus),
+                   default=0)
         for term in audit.focus:
             fig = Figure(figsize=(9.0, 3.4 + 0.2 * rows))
             plot_specification_curve(fig, audit, term)

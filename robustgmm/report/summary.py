@@ -178,7 +178,10 @@ def _count(mask) -> int:
 def summarize(audit: AuditFolder) -> AuditSummary:
     v = audit.variants
     ok = audit.ok_variants
-    varied = tuple((col, tuple(pd.unique(v[col]))) for col in audit.varied_settings)
+    # what the estimated variants vary (values used only by skipped or failed
+    # variants are not part of the evidence)
+    varied = tuple((col, tuple(pd.unique(ok[col]))) for col in audit.setting_columns
+                   if ok[col].map(value_text).nunique() > 1)
     terms = []
     for tv in audit.term_verdicts:
         every = audit.term_estimates(tv.term)
