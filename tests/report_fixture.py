@@ -90,7 +90,8 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
         variants["acceptable"] = ((variants["status"] == "ok") & (variants["hansen_p"] >= 0.05)
                                   & (variants["ar2_p"] >= 0.05))
         variants["flags"] = np.where(variants["hansen_p"] < 0.05, "hansen_rejects", "")
-    estimates = pd.DataFrame(est_rows)
+    estimates = pd.DataFrame(est_rows, columns=["variant", "term", "estimate", "std_error",
+                                                "p_value"])
     variants.to_csv(path / "variants.csv", index=False)
     estimates.to_csv(path / "estimates.csv", index=False)
     pd.DataFrame([{"term": AR, "ols": 0.75, "ols_std_error": 0.02,

@@ -337,3 +337,13 @@ def test_latex_falls_back_to_the_closest_variants(tmp_path):
     text = render_latex(audit)
     assert "each other column changes 2 settings" in text
     assert "x: endogenous" in text
+
+
+def test_an_audit_where_every_variant_failed_still_gets_a_report(tmp_path):
+    out = write_fake_audit(tmp_path / "a", 3, failed=3)
+    assert pd.read_csv(out / "estimates.csv").empty
+    paths = build_report(out)
+    assert (out / "report.html") in paths
+    flat = " ".join((out / "referee.txt").read_text().split())
+    assert f"the coefficient on {AR} could not be estimated in any specification" in flat
+    assert "3 further specifications could not be estimated" in flat

@@ -436,10 +436,6 @@ def read_audit_folder(out_dir) -> AuditFolder:
     if "variant" in bounds.columns:
         bounds["variant"] = bounds["variant"].astype(str)
 
-    unknown_terms = [v.term for v in term_verdicts if v.term not in set(estimates["term"])]
-    if unknown_terms:
-        raise InputError([f"{path / 'verdict.json'}: focus term '{t}' has no rows in "
-                          f"{path / 'estimates.csv'}" for t in unknown_terms])
     for col in ("instruments", "units", "observations", "hansen_p", "sargan_p",
                 "ar1_p", "ar2_p"):
         variants[col] = pd.to_numeric(variants[col], errors="coerce")
