@@ -653,7 +653,15 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
         final_tasks.setdefault(id(live[k].engine), (live[k].engine, []))[1].append(sol.task)
     for eng, tasks in final_tasks.values():
         eng.run_pass(tasks)
-    diffs = {key: _difference_hansen(live[key[0]], sol) for key, sol in sols.items()}
+    # difference-in-Hansen depends on the instrument set and the S of the weight only:
+    # one-step and two-step siblings share S (the one-step residuals), so compute once
+    by_s: dict = {}
+    diffs = {}
+    for key, sol in sols.items():
+        s_key = (key[0], id(sol.S_w))
+        if s_key not in by_s:
+            by_s[s_key] = _difference_hansen(live[key[0]], sol)
+        diffs[key] = dict(by_s[s_key])
     for i, spec in enumerate(specs):
         k = spec.last_lag
         if not isinstance(problems[k], GMMProblem):
