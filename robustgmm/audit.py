@@ -236,9 +236,12 @@ def _inside(est, ols, fe) -> bool | None:
 def write_audit(result: AuditResult, out_dir, *, model_file=None) -> Path:
     """Write variants.csv, estimates.csv, bounds.csv, verdict.json and manifest.json
     into ``out_dir`` (created if needed), each atomically; the manifest last, so a
-    folder with a manifest holds a complete audit."""
+    folder with a manifest holds a complete audit. A manifest left by an earlier audit
+    is removed first: if a write fails midway (full disk), the folder holds no
+    manifest rather than an old one beside a mix of old and new files."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
+    (out / "manifest.json").unlink(missing_ok=True)
     atomic_write_csv(out / "variants.csv", result.variants)
     atomic_write_csv(out / "estimates.csv", result.estimates)
     atomic_write_csv(out / "bounds.csv", result.bounds)

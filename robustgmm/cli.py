@@ -121,7 +121,8 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
             entries = [e.name for e in out.iterdir()]
         except OSError as exc:
             raise InputError(f"{path}: cannot read the {what} folder ({exc.strerror or exc})") from None
-        ours = "manifest.json" in entries or OUTPUT_MARKER in entries
+        ours = OUTPUT_MARKER in entries or (
+            "manifest.json" in entries and _is_our_manifest(out / "manifest.json"))
         if entries and not ours and not force:
             raise InputError(
                 f"{path}: folder exists, is not empty and holds no robustgmm output; "
@@ -140,6 +141,25 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
         raise InputError(f"{path}: cannot write into the {what} folder "
                          f"({exc.strerror or type(exc).__name__})") from None
     return out
+
+
+def _is_our_manifest(path: Path) -> bool:
+    """True when ``path`` is the manifest of a robustgmm audit (a web project or
+    another tool may well have a ``manifest.json`` of its own)."""
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(data, dict) and data.get("package") == "robustgmm"
+
+
+def _cannot_write(folder, exc: OSError) -> InputError:
+    """A failed output write (full disk, read-only or vanished folder) as one line.
+    The writers are atomic, so no half-written file is left behind."""
+    where = f" ({Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
+    return InputError(f"{folder}: cannot write the output files{where}: "
+                      f"{exc.strerror or type(exc).__name__}; "
+                      "files already there were left as they were")
 
 
 def check_json_path(path: str) -> Path:
@@ -296,8 +316,18 @@ def cmd_audit(args) -> int:
     result = audit_mod.audit(spec, jobs=args.jobs,
                              cache_dir=None if args.no_cache else out / ".cache",
                              progress=sys.stderr.isatty())
-    audit_mod.write_audit(result, out, model_file=Path(args.model))
-    _build_report_if_available(out)
+    try:
+        audit_mod.write_audit(result, out, model_file=Path(args.model))
+        _build_report_if_available(out)
+    except OSError as exc:
+        raise _cannot_write(args.out, exc) from None
+    run = (getattr(result, "manifest", None) or {}).get("run", {})
+    if run.get("cache_write_errors"):
+        print(f"robustgmm: note: {run['cache_write_errors']} cache entries could not be "
+              "written; a rerun will estimate those variants again", file=sys.stderr)
+    if run.get("lost"):
+        print(f"robustgmm: note: {run['lost']} variant(s) lost their worker process twice "
+              "and are recorded as failed; a rerun tries them again", file=sys.stderr)
     fragile = _fragile_terms(result.verdict)
     _out(_audit_summary(result, out, fragile))
     if args.fail_on_fragile and fragile:
@@ -353,7 +383,10 @@ def cmd_report(args) -> int:
 def cmd_demo(args) -> int:
     out = check_output_folder(args.out, args.force)
     from .demo import run_demo
-    run_demo(out, jobs=args.jobs)
+    try:
+        run_demo(out, jobs=args.jobs)
+    except OSError as exc:
+        raise _cannot_write(args.out, exc) from None
     _out(f"Wrote the demo audit to {out}")
     return EXIT_OK
 

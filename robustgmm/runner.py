@@ -31,6 +31,17 @@
   rerun tries them again.
 * **Failure isolation**: an exception in a variant marks it ``failed`` with a one-line
   reason; the other variants go on.
+* **Lost workers**: when a worker process dies (killed, crashed, out of memory), joblib
+  stops the whole map (``TerminatedWorkerError``). The results received until then are
+  kept (and cached). Each task marks its start in a private temporary folder, so the
+  groups that were running when the worker died are known: each of them is run once
+  more on its own (one task in a fresh worker); a group whose worker dies again is
+  recorded ``failed`` with that reason (not cached, so a rerun tries it again). The
+  groups that had not started are then submitted again as usual. Every group is thus
+  tried at most twice and the audit always completes.
+* **Cache writes**: a cache entry that cannot be written (full disk, read-only
+  folder) is counted (``cache_write_errors`` in the run figures) and skipped: the
+  cache only serves resumption, and the result itself is kept.
 """
 from __future__ import annotations
 
@@ -39,7 +50,9 @@ import hashlib
 import json
 import math
 import os
+import shutil
 import sys
+import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -198,6 +211,7 @@ class Cache:
         self.directory = Path(directory)
         self.directory.mkdir(parents=True, exist_ok=True)
         self.corrupted = 0
+        self.write_errors = 0
 
     @staticmethod
     def key(data_hash: str, spec, group: Any = None) -> str:
@@ -215,14 +229,14 @@ class Cache:
     def load(self, key: str) -> dict | None:
         path = self.path(key)
         try:
-            text = path.read_text(encoding="utf-8")
+            raw = path.read_bytes()
         except FileNotFoundError:
             return None
-        except OSError:
+        except OSError:  # e.g. a folder in its place
             self.corrupted += 1
             return None
         try:
-            entry = json.loads(text)
+            entry = json.loads(raw.decode("utf-8"))  # garbage bytes: UnicodeDecodeError
             payload = entry["payload"]
             ok = (entry.get("key") == key and entry.get("format") == CACHE_FORMAT
                   and entry.get("sha256") == _checksum(payload))
@@ -232,6 +246,16 @@ class Cache:
             self.corrupted += 1  # recomputed and overwritten by the caller
             return None
         return payload
+
+    def store_quietly(self, key: str, variant_id: str, payload: dict) -> bool:
+        """:meth:`store`, but a failed write (full disk, read-only folder) is only
+        counted: the cache serves resumption, the result itself is not lost."""
+        try:
+            self.store(key, variant_id, payload)
+        except OSError:
+            self.write_errors += 1
+            return False
+        return True
 
     def store(self, key: str, variant_id: str, payload: dict) -> None:
         entry = {"format": CACHE_FORMAT, "key": key, "version": __version__,
@@ -437,20 +461,68 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                 continue
             cacheable = payload.pop("cacheable", True)
             if cache is not None and cacheable:
-                cache.store(keys[vid], vid, payload)
+                cache.store_quietly(keys[vid], vid, payload)
             outcomes[vid] = _outcome(vid, payload, cached=False)
             if bar is not None:
                 bar.update(1)
 
-    def task(group):
+    def task(group, marker=None):
         return joblib.delayed(_task)([v.id for v in group], [v.spec for v in group],
                                      panels[sample_key(group[0].spec.sample)], fit, sample,
-                                     parent)
+                                     parent, marker)
+
+    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
+
+    def finished(group) -> bool:
+        return all(v.id in outcomes for v in group)
+
+    def record_lost(group) -> None:
+        for v in group:
+            if v.id in outcomes:
+                continue
+            deaths["lost"] += 1
+            outcomes[v.id] = Outcome(variant=v.id, status=FAILED, reason=LOST_REASON, fit=None,
+                                     bounds=None, seconds=0.0, cached=False)
+            if bar is not None:
+                bar.update(1)
+
+    def run_surviving_worker_deaths(groups) -> None:
+        """Map ``groups`` over the workers; survive workers that die (module docstring,
+        "Lost workers")."""
+        markers = Path(tempfile.mkdtemp(prefix="robustgmm-tasks-"))
+        try:
+            queue = list(range(len(groups)))
+            while queue:
+                try:
+                    for results in _parallel(n_jobs)(task(groups[i], str(markers / f"{i}"))
+                                                     for i in queue):
+                        record(results)
+                    return
+                except Exception as exc:  # noqa: BLE001 - only a lost worker is handled
+                    if not _worker_died(exc):
+                        raise
+                    deaths["worker_deaths"] += 1
+                unfinished = [i for i in queue if not finished(groups[i])]
+                started = [i for i in unfinished if (markers / f"{i}").exists()]
+                # without start marks (a remote worker) every unfinished group is a suspect
+                suspects = started or unfinished
+                for i in suspects:
+                    deaths["retried_alone"] += 1
+                    try:
+                        for results in _parallel(n_jobs)([task(groups[i])]):
+                            record(results)
+                    except Exception as exc:  # noqa: BLE001
+                        if not _worker_died(exc):
+                            raise
+                        deaths["worker_deaths"] += 1
+                        record_lost(groups[i])
+                queue = [i for i in unfinished if i not in set(suspects)]
+        finally:
+            shutil.rmtree(markers, ignore_errors=True)
 
     backend_used = "in-process"
     n_workers = 1
     parent = os.getpid()
-    n_pending = sum(len(g) for g in pending)
     try:
         if pending and jobs is None and backend is None and _default_is_loky():
             # jobs not set: time the first group here; when the whole audit would
@@ -467,18 +539,13 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
             n_workers = joblib.effective_n_jobs(n_jobs)
             with _backend_context(backend, n_workers) as backend_used, _blas_limit():
                 n_workers = joblib.effective_n_jobs(n_jobs)  # as the active backend sees it
-                for results in _parallel(n_jobs)(task(g) for g in pending):
-                    record(results)
+                if n_workers == 1:  # in this process: nothing to lose but ourselves
+                    for results in _parallel(n_jobs)(task(g) for g in pending):
+                        record(results)
+                else:
+                    run_surviving_worker_deaths(pending)
             if n_workers == 1:
                 backend_used = "in-process"
-    except Exception as exc:
-        if type(exc).__name__ == "TerminatedWorkerError":
-            done = sum(1 for o in outcomes.values() if not o.cached)
-            raise RuntimeError(
-                f"a worker process died (killed or out of memory) after {done} of "
-                f"{n_pending} variants were estimated"
-                + ("; the finished ones are cached: rerun to resume" if cache else "")) from exc
-        raise
     finally:
         if bar is not None:
             bar.close()
@@ -494,7 +561,10 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
         wall_seconds=time.perf_counter() - start,
         variant_seconds=sum(o.seconds for o in ordered.values() if not o.cached),
         extra={"groups": len(groups), "estimated": estimated,
-               "shared": fit is None},
+               "shared": fit is None,
+               **({k: v for k, v in deaths.items() if v}),
+               **({"cache_write_errors": cache.write_errors}
+                  if cache is not None and cache.write_errors else {})},
     )
     return ordered, stats
 
@@ -507,9 +577,25 @@ def _parallel(n_jobs: int) -> joblib.Parallel:
         return joblib.Parallel(n_jobs=n_jobs, return_as="generator")
 
 
-def _task(ids, specs, panel, fit, sample, parent_pid: int):
+def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = None):
+    if marker is not None:  # "this group has started" (see run_surviving_worker_deaths)
+        try:
+            Path(marker).touch()
+        except OSError:  # e.g. a remote worker without the parent's folder
+            pass
     _limit_worker_blas(parent_pid)
     return list(zip(ids, estimate_group(specs, panel, fit, sample)))
+
+
+#: Names of the exceptions joblib backends raise when a worker process dies: loky's
+#: ``TerminatedWorkerError`` (a ``BrokenProcessPool``) and dask's ``KilledWorker``.
+WORKER_DEATHS = ("TerminatedWorkerError", "BrokenProcessPool", "KilledWorker")
+LOST_REASON = ("the worker process estimating this variant died twice (killed, crashed or "
+               "out of memory); rerun the audit to try it again")
+
+
+def _worker_died(exc: BaseException) -> bool:
+    return any(t.__name__ in WORKER_DEATHS for t in type(exc).__mro__)
 
 
 def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:

@@ -82,19 +82,27 @@ def read_json(path) -> dict:
     return json.loads(Path(path).read_text())
 
 
-class KillWorkerOnce:
-    """Test double: the first estimation of a matching variant kills its worker
-    process (as an out-of-memory kill would); later calls estimate normally."""
+class KillWorker:
+    """Test double: the first ``times`` estimations of a matching variant kill their
+    worker process with SIGKILL (as the out-of-memory killer would); later calls
+    estimate normally. The count lives in the file ``marker`` (one byte per kill),
+    so it is shared by every worker process."""
 
-    def __init__(self, marker, predicate):
+    def __init__(self, marker, predicate, times=1):
         self.marker = Path(marker)
         self.predicate = predicate
+        self.times = times
+
+    def kills(self) -> int:
+        return len(self.marker.read_bytes()) if self.marker.exists() else 0
 
     def __call__(self, spec, panel):
         import os
-        if self.predicate(spec) and not self.marker.exists():
-            self.marker.touch()
-            os._exit(1)
+        import signal
+        if self.predicate(spec) and self.kills() < self.times:
+            with open(self.marker, "ab") as handle:
+                handle.write(b"x")
+            os.kill(os.getpid(), signal.SIGKILL)
         return core.fit(spec, panel)
 
 

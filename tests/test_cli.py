@@ -244,6 +244,10 @@ def fake_audit(monkeypatch):
 
     mod.audit, mod.write_audit = audit, write_audit
     monkeypatch.setitem(sys.modules, "robustgmm.audit", mod)
+    # 'from . import audit' takes the package attribute when the real module was
+    # imported earlier in the session (e.g. by tests/test_audit.py)
+    import robustgmm
+    monkeypatch.setattr(robustgmm, "audit", mod, raising=False)
     monkeypatch.setattr(cli, "_build_report_if_available", lambda out: calls.setdefault("report", out))
     return calls
 

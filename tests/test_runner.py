@@ -14,8 +14,7 @@ from robustgmm.grid import canonical_json as canonical
 from robustgmm.errors import EstimationError
 from robustgmm.spec import SampleFilter
 
-from helpers_audit import (CountingFamily, CountingFit, KillWorkerOnce, is_fod_collapsed_two_step, make_spec,
-                           outcome_text)
+from helpers_audit import CountingFamily, CountingFit, make_spec, outcome_text
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
 
@@ -134,23 +133,6 @@ def test_a_failing_member_of_a_share_group_is_isolated(planned, monkeypatch):
     failed = [o for o in out.values() if o.status == runner.FAILED]
     assert len(failed) == 2 and {o.reason for o in failed} == {"the weight matrix is singular"}
     assert sum(o.status == runner.OK for o in out.values()) == 6
-
-
-@pytest.mark.slow  # restarts worker processes: about 10 s
-def test_killed_worker_stops_the_run_and_a_rerun_resumes(planned, tmp_path):
-    spec, panels, variants = planned
-    cache_dir = tmp_path / "cache"
-    killer = KillWorkerOnce(tmp_path / "killed", is_fod_collapsed_two_step)
-    with pytest.raises(RuntimeError, match="worker process died.*rerun to resume"):
-        runner.run_variants(variants, panels, jobs=2, cache_dir=cache_dir, fit=killer)
-    assert (tmp_path / "killed").exists()
-    done = len(list(cache_dir.glob("*.json")))
-    assert done < len(variants)
-    resumed, stats = runner.run_variants(variants, panels, jobs=2, cache_dir=cache_dir,
-                                         fit=killer)
-    assert stats.cached == done and stats.computed == len(variants) - done
-    fresh, _ = runner.run_variants(variants, panels, jobs=1)
-    assert outcome_text(resumed) == outcome_text(fresh)
 
 
 def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
