@@ -19,3 +19,7 @@ class InputError(Exception):
 
 class EstimationError(Exception):
     """A model that cannot be estimated on the data it was given."""
+
+
+class UnderidentifiedError(EstimationError):
+    """Fewer instruments than parameters (or too few observations): nothing to estimate."""

@@ -265,9 +265,6 @@ def test_bad_input_exits_2_and_names_the_culprit(case, tmp_path, capsys):
     assert not (tmp_path / "out" / "manifest.json").exists()
 
 
-@pytest.mark.xfail(strict=True, reason="PENDING in robustgmm.core (requested from the lead): "
-                   "more instruments than observations is estimated with a warning, "
-                   "not reported as an error")
 def test_more_instruments_than_observations(tmp_path, capsys):
     frame = good_frame(n=3, periods=10)
     frame.to_csv(tmp_path / "panel.csv", index=False)

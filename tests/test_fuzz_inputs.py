@@ -221,19 +221,12 @@ def test_fit_on_random_panels_exits_0_or_2(tmp_path_factory, capsys, frame, role
     capsys.readouterr()
     code = main(["fit", str(folder / "model.toml")])
     out, err = capsys.readouterr()
-    # PENDING core fix (reported to the lead): the known division by zero is covered by
-    # the strict xfail below; this example is discarded, any other internal error fails
-    assume(not (code == 1 and "ZeroDivisionError" in err))
     assert code in (0, 2), err
     assert "Traceback" not in err
     if code == 2:
         assert err and all(line.startswith("robustgmm: error: ") for line in err.strip().splitlines())
 
 
-@pytest.mark.xfail(strict=True, reason="PENDING in robustgmm.core (reported to the lead): "
-                   "sigma2 = ssr / (n - K) divides by zero when a panel has as many "
-                   "transformed observations as parameters; it should be an EstimationError. "
-                   "Remove this marker and the xfail branch above once fixed.")
 def test_fit_with_as_many_observations_as_parameters(tmp_path, capsys):
     from robustgmm.cli import main
 

@@ -43,7 +43,7 @@ import numpy as np
 from scipy import special
 
 from ..data import Panel
-from ..errors import EstimationError
+from ..errors import EstimationError, UnderidentifiedError
 from ..spec import Spec, is_deterministic_label, settings_of
 from .design import Design
 from .linalg import independent_columns, inverse_or_pinv, sym_pinv
@@ -293,8 +293,17 @@ class GMMProblem:
         self.L, self.K = len(kz), len(kx)
         self.K_all = K
         self.scatter = self.engine.layout.scatter_rows(cols)
-        if self.L < self.K:
+        n_rows = d.n_rows[0] + d.n_rows[1]
+        if d.n_rows[0] <= self.K:
+            raise UnderidentifiedError(
+                f"only {d.n_rows[0]} observations in the transformed equation for {self.K} "
+                "parameters: too few observations for this model")
+        if self.L >= n_rows:
             raise EstimationError(
+                f"{self.L} instruments for only {n_rows} observations: reduce last_lag, "
+                "use collapsed instruments or add data")
+        if self.L < self.K:
+            raise UnderidentifiedError(
                 f"fewer instruments ({self.L}) than parameters ({self.K}): the model is not identified")
 
     def beta_all(self, beta):
@@ -352,8 +361,12 @@ def _p_normal(z):
 
 
 def _chi2(stat, df):
-    if df is None or df <= 0 or not np.isfinite(stat):
-        return TestResult(float(stat), math.nan, int(df) if df is not None else None)
+    """A chi-squared test; None when it has no degrees of freedom (an exactly or
+    under-identified instrument set has nothing to test)."""
+    if df is None or df <= 0:
+        return None
+    if not np.isfinite(stat):
+        return TestResult(float(stat), math.nan, int(df))
     # upper tail of χ²(df): scipy.special.chdtrc, as in scipy.stats.chi2.sf
     return TestResult(float(stat), float(special.chdtrc(df, stat)), int(df))
 
