@@ -52,7 +52,7 @@ from typing import Any, Callable, Mapping, Sequence
 
 import pandas as pd
 
-from .errors import EstimationError, InputError
+from .errors import EstimationError, InputError, UnderidentifiedError
 from .spec import SampleFilter, Spec
 
 #: Varied settings in grid order (the last varies fastest). Roles and samples are
@@ -407,7 +407,7 @@ def _with_counts(v: Variant, panel) -> Variant:
         mask = core.estimation_sample(v.spec, panel)
     except EstimationError as exc:
         message = _one_line(exc)
-        if is_order_condition(message):
+        if isinstance(exc, UnderidentifiedError) or is_order_condition(message):
             # the order condition: an impossible combination, skipped with its counts
             return dataclasses.replace(v, status=SKIPPED, reason=message)
         # a property of the data (no observations left, no variation): the variant
@@ -424,9 +424,10 @@ def _with_counts(v: Variant, panel) -> Variant:
 
 
 def is_order_condition(message: str) -> bool:
-    """Whether an estimation message is the order condition (the core's wording:
-    "fewer instruments (L) than parameters (K) ...")."""
-    return message.startswith("fewer instruments")
+    """Whether a recorded failure message is the order condition or too few
+    observations (the core raises :class:`UnderidentifiedError` with these wordings;
+    the runner keeps only the message)."""
+    return message.startswith(("fewer instruments", "only "))
 
 
 def _one_line(exc: BaseException) -> str:
