@@ -104,6 +104,10 @@ SPECS = [
     dict(equations="difference", transform="fod", form="per-period", time_effects=True),
     dict(equations="system", transform="fd", form="collapsed", time_effects=False,
          regressors=(Regressor("x", (0, 1), "predetermined"), Regressor("w", (0,), "exogenous"))),
+    # two outcome lags and an extra instrument column (non-contiguous regressor views)
+    dict(equations="system", transform="fod", form="per-period", time_effects=True,
+         outcome_lags=(1, 2), regressors=(Regressor("x", (0,), "endogenous"),),
+         extra_instruments=("w",), last_lag=4),
 ]
 
 
