@@ -234,7 +234,7 @@ def marginal_cost(sizes: Sizes, echo=print) -> Outcome:
     fit(spec, panels[n1])  # warm up imports and caches
     t_fit = {n: math.inf for n in (n1, n2)}
     t_zz = {n: math.inf for n in (n1, n2)}
-    for _ in range(sizes.repeats):
+    for _ in range(2 * sizes.repeats):  # cheap and noisy: more repeats
         for n in (n1, n2):
             t_fit[n] = min(t_fit[n], _best(lambda: fit(spec, panels[n])))
             z = dense[n]
