@@ -11,11 +11,20 @@ import tempfile
 from pathlib import Path
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 def atomic_write_bytes(path, data: bytes) -> Path:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp creates the file private (0600); give it the permissions an ordinary
+        # open() would, so a shared report stays readable by others
+        os.fchmod(fd, 0o666 & ~_umask())
         with os.fdopen(fd, "wb") as handle:
             handle.write(data)
             handle.flush()
