@@ -493,15 +493,20 @@ def _solution_stage(prob: GMMProblem, one: _OneStep, steps) -> _Solution:
     return _Solution(beta, beta_prev, weight, S_w, bread, rank_w, iterations, hansen, warns)
 
 
-def _difference_hansen(prob: GMMProblem, sol: _Solution) -> dict:
+def _difference_hansen(prob: GMMProblem, sol: _Solution, one: _OneStep | None = None) -> dict:
     """difference-in-Hansen (Eichenbaum, Hansen & Singleton 1988; Hayashi 2000, §3.6):
     C = J(all) − J(without the group), both efficient with blocks of the same S."""
     d = prob.design
     L, K = prob.L, prob.K
     S_w = sol.S_w
     out = {}
-    j_full_w, _ = sym_pinv(S_w)
-    b_full, _ = efficient_gmm(prob.zx, prob.zy, j_full_w)
+    if one is not None and S_w is one.S and one.beta2 is not None:
+        # S of the one-step residuals: its inverse and efficient estimate exist already
+        # (the same computations, so the same numbers)
+        j_full_w, b_full = one.W, one.beta2
+    else:
+        j_full_w, _ = sym_pinv(S_w)
+        b_full, _ = efficient_gmm(prob.zx, prob.zy, j_full_w)
     j_full = hansen_statistic(prob.zx, prob.zy, j_full_w, b_full)
     for group, pos in d.instrument_groups().items():
         keep = np.setdiff1d(np.arange(L), pos)
@@ -673,7 +678,7 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
     for key, sol in sols.items():
         s_key = (key[0], id(sol.S_w))
         if s_key not in by_s:
-            by_s[s_key] = _difference_hansen(live[key[0]], sol)
+            by_s[s_key] = _difference_hansen(live[key[0]], sol, ones[key[0]])
         diffs[key] = dict(by_s[s_key])
     for i, spec in enumerate(specs):
         k = spec.last_lag
