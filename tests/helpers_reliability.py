@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -128,6 +129,8 @@ def groups_started(counter: Path) -> int:
 #: Manifest entries that describe the run rather than its results (timings, the
 #: clock, worker counts, cache hits), left out when outputs are compared.
 VOLATILE_MANIFEST = ("timings", "created_utc", "run")
+#: Lines of report.html / report.md that show those entries (e.g. ``run.wall_seconds``).
+VOLATILE_LINE = re.compile(rb"created_utc|created\\_utc|\b(run|timings)\.[a-z\\_]+")
 
 
 def output_files(out: Path, *, skip=(".cache",)) -> dict[str, bytes]:
@@ -145,6 +148,9 @@ def output_files(out: Path, *, skip=(".cache",)) -> dict[str, bytes]:
             for key in VOLATILE_MANIFEST:
                 manifest.pop(key, None)
             data = json.dumps(manifest, sort_keys=True).encode()
+        elif rel.suffix in (".html", ".md"):  # the report's copy of the manifest
+            data = b"\n".join(line for line in data.split(b"\n")
+                              if not VOLATILE_LINE.search(line))
         files[str(rel)] = data
     return files
 
