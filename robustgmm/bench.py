@@ -252,7 +252,13 @@ def marginal_cost(sizes: Sizes, echo=print) -> Outcome:
         ("extra Z'Z time", _fmt_s(t_zz[n2] - t_zz[n1])),
     ]
     extra_zz = t_zz[n2] - t_zz[n1]
-    ratio = (t_fit[n2] - t_fit[n1]) / extra_zz if extra_zz > 0 else math.nan
+    extra_fit = t_fit[n2] - t_fit[n1]
+    if extra_zz > 0 and extra_fit > 0:
+        ratio = extra_fit / extra_zz
+    else:  # tiny workloads: the differences drown in timer noise
+        ratio = math.nan
+        out.notes.append("a time difference was not positive (below timer noise): "
+                         "ratio not measured")
     out.ratios.append(("extra fit time / extra dense Z'Z time", ratio, 3.0, 1.0))
     out.notes.append(f"std. error kind {res.std_error_kind}; AR(2) and difference-in-Hansen "
                      "included in the fit time")

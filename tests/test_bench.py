@@ -28,8 +28,10 @@ def test_bench_quick_writes_every_workload(tmp_path, monkeypatch, capsys):
                      "core shared work / one by one", "audit jobs = 2 / jobs = 1",
                      "robustgmm / linearmodels"):
         assert expected in names, names
-    for r in rows:
-        assert re.fullmatch(r"\d+\.\d{3}", r.split("|")[3].strip()), r
+    for r in rows:  # a number (nan only where tiny timings drown in noise)
+        value = r.split("|")[3].strip()
+        assert re.fullmatch(r"\d+\.\d{3}|nan", value), r
+        assert value != "nan" or "Z'Z" in r, r
     assert "## Machine" in text and "numpy" in text and "tiny sizes" in text
     assert "BLAS thread" in text
 
