@@ -155,10 +155,14 @@ def output_files(out: Path, *, skip=(".cache",)) -> dict[str, bytes]:
     return files
 
 
-def tree(folder: Path) -> dict[str, tuple[int, int]]:
-    """Every path under ``folder`` with its size and mtime (to see what changed)."""
+def tree(folder: Path) -> dict[str, tuple[int, int, bytes]]:
+    """Every file (or link) under ``folder`` with its size, mtime and content (to see
+    what changed); folders themselves are left out."""
     out = {}
     for path in Path(folder).rglob("*"):
+        if path.is_dir() and not path.is_symlink():
+            continue
         st = path.lstat()
-        out[str(path)] = (st.st_size, st.st_mtime_ns)
+        data = path.read_bytes() if path.is_file() else b""
+        out[str(path)] = (st.st_size, st.st_mtime_ns, data)
     return out
