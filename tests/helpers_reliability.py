@@ -8,8 +8,9 @@ on ``PYTHONPATH`` is imported at start-up by the ``robustgmm`` command *and by e
 worker process it starts* (loky workers inherit the environment). Driven by
 environment variables, it
 
-* counts estimations: ``ROBUSTGMM_TEST_COUNT=<file>`` appends ``start N`` / ``done N``
-  (N = variants in the share group) around every ``core.fit_family`` call;
+* counts estimations: ``ROBUSTGMM_TEST_COUNT=<file>`` appends ``start N PID`` /
+  ``done N`` (N = variants in the share group, PID = the process estimating it)
+  around every ``core.fit_family`` call;
 * paces them: ``ROBUSTGMM_TEST_PACE=<seconds>`` sleeps at the start of each group, so
   that a signal can be sent while the audit is certainly mid-run;
 * forbids the network: ``ROBUSTGMM_TEST_NONET=<file>`` installs an audit hook
@@ -43,7 +44,7 @@ if _count:
             handle.write(text + "\n")
 
     def fit_family(specs, panel, **kw):
-        _note(f"start {len(specs)}")
+        _note(f"start {len(specs)} {os.getpid()}")
         time.sleep(_pace)
         out = _real(specs, panel, **kw)
         _note(f"done {len(specs)}")
@@ -118,6 +119,14 @@ def count_estimations(counter: Path) -> int:
         return 0
     return sum(int(line.split()[1]) for line in counter.read_text().splitlines()
                if line.startswith("done "))
+
+
+def started_pids(counter: Path) -> list[int]:
+    """The processes that started a share group, in order."""
+    if not counter.exists():
+        return []
+    return [int(line.split()[2]) for line in counter.read_text().splitlines()
+            if line.startswith("start ")]
 
 
 def groups_started(counter: Path) -> int:

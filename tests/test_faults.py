@@ -25,8 +25,8 @@ from robustgmm.audit import audit, write_audit
 from helpers_audit import (CountingFamily, CountingFit, KillWorker, is_fod_collapsed_two_step,
                            make_spec, outcome_text)
 from helpers_reliability import (count_estimations, groups_started, harness_env,
-                                 install_harness, output_files, robustgmm_command, tree,
-                                 write_model)
+                                 install_harness, output_files, robustgmm_command,
+                                 started_pids, tree, write_model)
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
 CONTRACT = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json")
@@ -102,6 +102,44 @@ def test_killed_worker_through_the_audit_tables(tmp_path):
     assert result.manifest["run"]["lost"] == 1
     flags = {f["id"]: f for f in result.verdict["model"]}
     assert flags["variants_failed"]["figures"]["ids"] == list(failed["variant"])
+
+
+@pytest.mark.slow  # worker processes and two command-line audits, about 25 s
+def test_worker_killed_from_outside_during_a_command_line_audit(tmp_path):
+    """``robustgmm audit --jobs 2`` while a worker process is SIGKILLed from outside in
+    the middle of a share group: the audit completes (exit 0), every variant is
+    estimated, the results equal an undisturbed run's."""
+    model = write_model(tmp_path / "project", SIGINT_VARY, panel_kw={"n_units": 80,
+                                                                   "n_periods": 7})
+    harness = install_harness(tmp_path / "harness")
+    counter = tmp_path / "count"
+    env = harness_env(harness, ROBUSTGMM_TEST_COUNT=counter, ROBUSTGMM_TEST_PACE=0.8)
+    out = tmp_path / "out"
+    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        # the third group has started: its worker sleeps in the pace, mid-group
+        assert _wait_for(lambda: len(started_pids(counter)) >= 3, proc=proc), proc.communicate()
+        victim = started_pids(counter)[2]
+        assert victim != proc.pid
+        os.kill(victim, signal.SIGKILL)
+        _, err = proc.communicate(timeout=300)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 0, err
+    assert "Traceback" not in err
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["run"]["worker_deaths"] == 1 and manifest["run"]["failed"] == 0
+    v = pd.read_csv(out / "variants.csv")
+    assert len(v) == SIGINT_VARIANTS and (v["status"] == "ok").all()
+    clean = tmp_path / "clean"
+    done = subprocess.run(robustgmm_command("audit", model, "--out", clean, "--jobs", "1"),
+                          env=harness_env(harness), capture_output=True, text=True, timeout=600)
+    assert done.returncode == 0, done.stderr
+    got, fresh = output_files(out), output_files(clean)
+    for name in CONTRACT:
+        assert got[name] == fresh[name], name
 
 
 def test_worker_death_is_recognised_by_exception_type():
