@@ -325,6 +325,9 @@ def cmd_audit(args) -> int:
     if run.get("cache_write_errors"):
         print(f"robustgmm: note: {run['cache_write_errors']} cache entries could not be "
               "written; a rerun will estimate those variants again", file=sys.stderr)
+    if run.get("cache_unavailable"):
+        print(f"robustgmm: note: ran without a cache ({run['cache_unavailable']}); "
+              "an interrupted run of this audit cannot resume", file=sys.stderr)
     if run.get("lost"):
         print(f"robustgmm: note: {run['lost']} variant(s) lost their worker process twice "
               "and are recorded as failed; a rerun tries them again", file=sys.stderr)

@@ -41,7 +41,9 @@
   tried at most twice and the audit always completes.
 * **Cache writes**: a cache entry that cannot be written (full disk, read-only
   folder) is counted (``cache_write_errors`` in the run figures) and skipped: the
-  cache only serves resumption, and the result itself is kept.
+  cache only serves resumption, and the result itself is kept. A cache folder that
+  cannot be created at all (a file in its place) leaves the run without a cache
+  (``cache_unavailable`` in the run figures).
 """
 from __future__ import annotations
 
@@ -416,7 +418,12 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     """
     start = time.perf_counter()
     todo = [v for v in variants if v.status == PLANNED]
-    cache = Cache(cache_dir) if cache_dir is not None else None
+    cache, cache_problem = None, None
+    if cache_dir is not None:
+        try:
+            cache = Cache(cache_dir)
+        except OSError as exc:  # e.g. a file in its place: run without resuming
+            cache_problem = f"{cache_dir}: {exc.strerror or type(exc).__name__}"
     by_key: dict[str, list[Variant]] = {}
     for v in todo:
         key = f"{v.id}" if fit is not None else _share_key(v.spec)
@@ -564,7 +571,8 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                "shared": fit is None,
                **({k: v for k, v in deaths.items() if v}),
                **({"cache_write_errors": cache.write_errors}
-                  if cache is not None and cache.write_errors else {})},
+                  if cache is not None and cache.write_errors else {}),
+               **({"cache_unavailable": cache_problem} if cache_problem else {})},
     )
     return ordered, stats
 

@@ -427,6 +427,22 @@ def test_cache_entry_replaced_by_a_folder(planned, tmp_path):
     assert not _no_temporaries(cache_dir)
 
 
+def test_cache_folder_that_cannot_exist_runs_without_cache(tmp_path, capsys, monkeypatch):
+    model = write_model(tmp_path / "project", {"steps": [1, 2]})
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / cli.OUTPUT_MARKER).write_text("{}")
+    (out / ".cache").write_text("a file where the cache folder belongs")
+    monkeypatch.setattr(cli, "_build_report_if_available", lambda out: None)
+    code = cli.main(["audit", str(model), "--out", str(out), "--jobs", "1"])
+    err = capsys.readouterr().err
+    assert code == 0, err
+    assert "ran without a cache" in err and len(err.strip().splitlines()) == 1
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["run"]["computed"] == 2 and "cache_unavailable" in manifest["run"]
+    assert (out / ".cache").read_text() == "a file where the cache folder belongs"
+
+
 @pytest.mark.slow  # two command-line audits with their reports, about 14 s
 def test_corrupted_entry_through_the_command_line(tmp_path):
     """A damaged cache file in an audit folder: the rerun recomputes that variant's
