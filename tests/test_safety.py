@@ -528,8 +528,6 @@ def test_fit_shows_the_warnings(troubled, tmp_path, capsys):
     assert any("singular" in w for w in json.loads((tmp_path / "fit.json").read_text())["warnings"])
 
 
-@pytest.mark.xfail(strict=True, reason="pending in the core (estimator.py): a period dummy "
-                   "dropped because a regressor is collinear with the dummies is not reported")
 def test_a_dummy_dropped_for_collinearity_is_reported(troubled):
     # with a linear trend, the period dummies and the trend are collinear after the
     # transform; the core keeps the trend and silently drops one more dummy

@@ -280,6 +280,16 @@ class GMMProblem:
             raise EstimationError(
                 "regressor(s) with no independent variation after the transform: "
                 f"{', '.join(bad)} (constant within every unit, or collinear with other regressors)")
+        # the time effects lose one column among themselves (the base period); any
+        # further dummy dropped is taken by a regressor and is worth a warning
+        det = np.asarray([j for j in range(K) if is_deterministic_label(d.x_labels_all[j])], dtype=int)
+        if det.size:
+            alone = set(det[independent_columns(xx[np.ix_(det, det)])].tolist())
+            taken = [d.x_labels_all[j] for j in sorted(alone - set(keep_x.tolist()))]
+            if taken:
+                self.warnings.append(
+                    f"{', '.join(taken)} dropped: collinear with the regressors "
+                    "(a regressor repeats the time effects)")
         d.set_kept_columns(keep_x)
         nonzero = np.diag(zhz)[self._cmap] > 0
         d.keep_z = np.asarray([j for j in d.keep_z if nonzero[j]], dtype=int)
