@@ -544,8 +544,6 @@ def test_a_dummy_dropped_for_collinearity_is_reported(troubled):
     assert any(label in w for w in with_trend.warnings for label in dropped)
 
 
-@pytest.mark.xfail(strict=True, reason="pending in the report: the variants' numerical "
-                   "warnings (variants.csv 'warnings') are not shown in report.html/report.md")
 def test_reports_show_numerical_warnings(troubled, tmp_path):
     from robustgmm.audit import write_audit
     from robustgmm.report import build_report

@@ -101,6 +101,26 @@ def _bounds_table(audit: AuditFolder) -> tuple[list[str], list[list[str]], str]:
     return [names.get(h, h) for h in headers], rows, note
 
 
+def numerical_warnings(audit: AuditFolder, limit: int = 25) -> list[dict]:
+    """Warnings the estimation recorded (singular weights, dropped columns, too many
+    instruments), grouped by text: how many variants, and which (first few ids)."""
+    frame = audit.variants
+    if "warnings" not in frame.columns:
+        return []
+    seen: dict[str, list[str]] = {}
+    for variant, text in zip(frame["variant"], frame["warnings"]):
+        if not isinstance(text, str) or not text.strip():
+            continue
+        for warning in (w.strip() for w in text.split(" | ")):
+            if warning:
+                seen.setdefault(warning, []).append(str(variant))
+    out = []
+    for warning, ids in sorted(seen.items(), key=lambda kv: (-len(kv[1]), kv[0]))[:limit]:
+        shown = ", ".join(ids[:6]) + (f" and {len(ids) - 6} more" if len(ids) > 6 else "")
+        out.append({"text": warning, "n": len(ids), "variants": shown})
+    return out
+
+
 def build_context(audit: AuditFolder, figures: list[FigureFile],
                   summary: AuditSummary | None = None, *, inline_png: bool = True) -> dict:
     s = summary or summarize(audit)
@@ -148,6 +168,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "bounds_headers": bounds_headers,
         "bounds_rows": bounds_rows,
         "bounds_note": bounds_note,
+        "numerical_warnings": numerical_warnings(audit),
         "catalogue": [_rule(r) for r in rule_catalogue(audit)],
         "combination": str(audit.verdict_raw.get("combination") or ""),
         "provenance": provenance_items(dict(audit.manifest)),

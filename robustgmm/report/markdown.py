@@ -108,6 +108,11 @@ def render_markdown(ctx: dict) -> str:
     md += ["## Variants", "", esc(ctx["counts"]), ""]
     md += _table(ctx["headers"], [[(f"**{esc(c.text)}**" if base and c.text else esc(c.text))
                                    for c in cells] for base, _, cells in ctx["rows"]])
+    if ctx["numerical_warnings"]:
+        md += ["", "## Numerical warnings", "",
+               "Recorded by the estimation; the affected results deserve a second look.", ""]
+        md += [f"- {esc(w['text'])} ({w['n']} variant{'s' if w['n'] != 1 else ''}: "
+               f"{esc(w['variants'])})" for w in ctx["numerical_warnings"]]
     md += ["", "## Bounds for the autoregressive coefficient", "",
            "Pooled OLS is biased up and the within (fixed-effects) estimator biased down "
            "(Nickell 1981); a consistent estimate lies between them (Bond, Hoeffler & "
