@@ -134,6 +134,7 @@ class _PassContext:
         self._resid: dict = {}
         self._gt: dict = {}
         self._diffs = None
+        self._buf = None  # scratch for the entry-wise products, reused within the pass
 
     def resid(self, beta_all):
         key = beta_all.tobytes()
@@ -141,6 +142,12 @@ class _PassContext:
         if out is None:
             out = self._resid[key] = residual_rows(self.pc, beta_all)
         return out
+
+    def scratch(self):
+        """A (W, n) scratch array, allocated once per chunk and pass."""
+        if self._buf is None:
+            self._buf = np.empty_like(self.pc.ZT)
+        return self._buf
 
     def level_differences(self):
         if self._diffs is None:
@@ -152,7 +159,8 @@ class _PassContext:
         out = self._gt.get(key)
         if out is None:
             out = self._gt[key] = unit_moments_t(self.pc, self.layout,
-                                                 self.resid(prob.beta_all(beta)), prob.scatter)
+                                                 self.resid(prob.beta_all(beta)), prob.scatter,
+                                                 self.scratch())
         return out
 
 
@@ -243,7 +251,7 @@ class _FinalSums:
         if self.need:
             gtp = ctx.gt(prob, self.beta_prev)
             self.T += windmeijer_term(ctx.pc, ctx.layout, gtp, self.a, self.a_all,
-                                      prob.scatter, prob.keep_x)
+                                      prob.scatter, prob.keep_x, ctx.scratch())
         # AR(m): differenced level residuals (Arellano & Bond 1991, eq. (8))
         self.ar.add(ctx.pc, prob.beta_all(self.beta), prob.keep_x, gt, ctx.level_differences())
 

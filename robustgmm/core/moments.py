@@ -255,40 +255,48 @@ def residual_rows(pc: Prepared, beta_all: np.ndarray) -> np.ndarray:
 
 
 def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
-                   scatter: sparse.csr_matrix) -> np.ndarray:
+                   scatter: sparse.csr_matrix, buf: np.ndarray | None = None) -> np.ndarray:
     """Per-unit moment vectors as columns, ``G' = [g_1 … g_n]`` with ``g_i = Z_i' e_i``,
-    restricted to the instrument columns of ``scatter`` (rows of ``C``): (L_kept, n)."""
-    prod = pc.ZT * resid[layout.ent_slot]
-    return np.asarray(scatter @ prod)
+    restricted to the instrument columns of ``scatter`` (rows of ``C``): (L_kept, n).
+
+    ``buf`` (W, n), when given, receives the entry-wise products (it is reused across
+    coefficient vectors, so a pass allocates it once per chunk)."""
+    if buf is None:
+        buf = np.empty_like(pc.ZT)
+    ZT = pc.ZT
+    for j, slot in enumerate(layout.block_slot):
+        lo, hi = layout.starts[j], layout.stops[j]
+        np.multiply(ZT[lo:hi], resid[slot], out=buf[lo:hi])
+    return np.asarray(scatter @ buf)
 
 
 def windmeijer_term(pc: Prepared, layout: Layout, gt_prev: np.ndarray, a: np.ndarray,
                     a_all: np.ndarray, scatter: sparse.csr_matrix,
-                    keep_x: np.ndarray) -> np.ndarray:
+                    keep_x: np.ndarray, buf: np.ndarray | None = None) -> np.ndarray:
     """One chunk's ``T = Σ_i ∂(g_i g_i')/∂b · a`` of Windmeijer (2005), (L_kept, K_kept).
 
     With ``q_ik = Z_i' x_ik`` and ``g_i`` the moments at the previous estimate,
     column ``k`` is ``Σ_i q_ik (g_i'a) + g_i (q_ik'a)``. The first part is a
-    unit-weighted ``Z'X`` (weights ``c_i = g_i'a``); the second needs
-    ``(Q_k a)_i = Σ_rows x_irk (z_ir'a)``, an (n, K) array, then ``G'(Q a)``. No
-    n × L × K or L × L × K array is formed: the cost is O(n·W·K).
-    ``a`` is given on the kept instrument columns (the rows of ``scatter``) and,
-    as ``a_all``, spread over all the design's columns (zero elsewhere).
+    unit-weighted ``Z'X`` (weights ``c_i = g_i'a``): per block ``(ZT_b ∘ c) X_t``.
+    The second needs ``(Q_k a)_i = Σ_rows x_irk (z_ir'a)``, an (n, K) array built
+    from the per-row sums ``h_r = a_b' ZT_b``, then ``G'(Q a)``. No n × L × K or
+    L × L × K array is formed: the cost is O(n·W·K). ``a`` is given on the kept
+    instrument columns (the rows of ``scatter``) and, as ``a_all``, spread over all
+    the design's columns. ``buf`` (W, n) is scratch for ``ZT ∘ c``.
     """
-    K = layout.K
+    K, P, n = layout.K, layout.P, pc.n
     c = gt_prev.T @ a
-    zc = pc.ZT * c
-    P = layout.P
+    a_ent = a_all[layout.ent_col]
     part = np.empty((layout.W, K))
+    h = np.zeros((layout.R, n))
+    ZT = pc.ZT
+    zc = np.multiply(ZT, c, out=buf) if buf is not None else ZT * c
     for j, slot in enumerate(layout.block_slot):
-        a, b = layout.starts[j], layout.stops[j]
+        lo, hi = layout.starts[j], layout.stops[j]
         e, t = divmod(int(slot), P)
-        part[a:b] = zc[a:b] @ pc.x[e][:, t, :]
+        part[lo:hi] = zc[lo:hi] @ pc.x[e][:, t, :]
+        h[slot] = a_ent[lo:hi] @ ZT[lo:hi]
     first = np.asarray(scatter @ part)
-    # h[slot] = z_{i,slot}'a for every unit: sum the weighted entries of each block
-    weighted = pc.ZT * a_all[layout.ent_col][:, None]
-    h = np.zeros((layout.R, pc.n))
-    h[layout.block_slot] = np.add.reduceat(weighted, layout.starts, axis=0)
     qa = sum(np.einsum("pn,npk->nk", h[e * P:(e + 1) * P], x) for e, x in enumerate(pc.x))
     out = first + gt_prev @ qa
     return out[:, keep_x]
