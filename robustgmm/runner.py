@@ -163,6 +163,7 @@ def estimate_group(specs, panel, fit: Callable | None = None,
             except Exception as exc:  # noqa: BLE001 - recorded as the member's failure
                 results.append(exc)
     memo: dict = {}
+    masks: dict = {}
     out = []
     for spec, res in zip(specs, results):
         if isinstance(res, BaseException):
@@ -175,9 +176,15 @@ def estimate_group(specs, panel, fit: Callable | None = None,
             out.append({"fit": None, "bounds": None, **_failure(exc)})
             continue
         try:
-            mask = sample(spec, panel)
-            key = (hashlib.sha256(np.packbits(mask).tobytes()).hexdigest(), mask.shape,
-                   spec.time_effects, spec.regressor_terms())
+            # members of a share group differ only in steps, errors and last_lag,
+            # none of which moves the estimation sample: build it once
+            skey = (spec.outcome, spec.equations, spec.transform, spec.regressor_terms(),
+                    spec.extra_instruments)
+            if skey not in masks:
+                mask = sample(spec, panel)
+                masks[skey] = (mask, hashlib.sha256(np.packbits(mask).tobytes()).hexdigest())
+            mask, digest = masks[skey]
+            key = (digest, mask.shape, spec.time_effects, spec.regressor_terms())
             if key not in memo:
                 memo[key] = bounds_mod.ar_bounds(spec, panel, mask).to_dict()
             entry["bounds"] = memo[key]
@@ -449,6 +456,9 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                 outcomes[v.id] = _outcome(v.id, payload, cached=True)
         if missing:
             pending.append(group)
+    # the heaviest groups first, so parallel workers finish close together (the order
+    # of results does not depend on it)
+    pending.sort(key=lambda g: -_group_weight(g, panels[sample_key(g[0].spec.sample)]))
 
     n_jobs = -1 if jobs is None else int(jobs)
     if progress is None:
@@ -575,6 +585,15 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                **({"cache_unavailable": cache_problem} if cache_problem else {})},
     )
     return ordered, stats
+
+
+def _group_weight(group, panel) -> float:
+    """A rough cost of a share group: members × equations × instrument columns per
+    unit (per-period instruments grow with the periods, collapsed ones do not)."""
+    spec = group[0].spec
+    periods = max(getattr(panel, "n_periods", 1), 1)
+    width = periods * periods if spec.form == "per-period" else periods
+    return len(group) * (2 if spec.equations == "system" else 1) * width
 
 
 def _parallel(n_jobs: int) -> joblib.Parallel:
