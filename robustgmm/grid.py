@@ -53,7 +53,7 @@ from typing import Any, Callable, Mapping, Sequence
 import pandas as pd
 
 from .errors import EstimationError, InputError, UnderidentifiedError
-from .spec import SampleFilter, Spec
+from .spec import SampleFilter, Spec, canonical_settings, sample_restrictions  # noqa: F401 (re-exported)
 
 #: Varied settings in grid order (the last varies fastest). Roles and samples are
 #: handled specially: one dimension per regressor whose role is varied
@@ -68,43 +68,9 @@ PLANNED, SKIPPED = "planned", "skipped"
 # ---------------------------------------------------------------------------
 # canonical settings and ids
 # ---------------------------------------------------------------------------
-def sample_restrictions(sample: SampleFilter) -> dict:
-    """The restrictions of a sample filter, without its display name."""
-    return {
-        "period_from": sample.period_from,
-        "period_to": sample.period_to,
-        "exclude_column": sample.exclude_column,
-        "exclude_values": list(sample.exclude_values),
-    }
-
-
 def sample_key(sample: SampleFilter) -> str:
     """A string that identifies a sample by its restrictions (for grouping)."""
     return json.dumps(sample_restrictions(sample), sort_keys=True, default=str)
-
-
-def canonical_settings(spec: Spec) -> dict:
-    """Every setting that changes an estimate, as plain JSON values.
-
-    Display-only fields (source, focus, alpha, thresholds, vary, the data file path,
-    the sample's name) are left out, so the same model gives the same id and cache
-    key whatever it is called.
-    """
-    return {
-        "outcome": spec.outcome,
-        "outcome_lags": list(spec.outcome_lags),
-        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
-        "time_effects": bool(spec.time_effects),
-        "equations": spec.equations,
-        "transform": spec.transform,
-        "steps": spec.steps,
-        "errors": spec.errors,
-        "first_lag": spec.first_lag,
-        "last_lag": "all" if spec.last_lag is None else spec.last_lag,
-        "form": spec.form,
-        "extra_instruments": list(spec.extra_instruments),
-        "sample": sample_restrictions(spec.sample),
-    }
 
 
 def canonical_json(obj: Any) -> str:

@@ -174,6 +174,40 @@ def is_deterministic_label(label: str) -> bool:
     return label == CONST_LABEL or label.startswith("period[")
 
 
+def sample_restrictions(sample: SampleFilter) -> dict:
+    """The restrictions of a sample filter, without its display name."""
+    return {
+        "period_from": sample.period_from,
+        "period_to": sample.period_to,
+        "exclude_column": sample.exclude_column,
+        "exclude_values": list(sample.exclude_values),
+    }
+
+
+def canonical_settings(spec: Spec) -> dict:
+    """Every setting that changes an estimate, as plain JSON values.
+
+    Display-only fields (source, focus, alpha, thresholds, vary, the data file path,
+    the sample's name) are left out, so the same model gives the same variant id,
+    cache key and share group whatever it is called.
+    """
+    return {
+        "outcome": spec.outcome,
+        "outcome_lags": list(spec.outcome_lags),
+        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
+        "time_effects": bool(spec.time_effects),
+        "equations": spec.equations,
+        "transform": spec.transform,
+        "steps": spec.steps,
+        "errors": spec.errors,
+        "first_lag": spec.first_lag,
+        "last_lag": "all" if spec.last_lag is None else spec.last_lag,
+        "form": spec.form,
+        "extra_instruments": list(spec.extra_instruments),
+        "sample": sample_restrictions(spec.sample),
+    }
+
+
 def settings_of(spec: Spec) -> Mapping[str, Any]:
     """The estimation settings as plain values (for results and manifests)."""
     return {

@@ -44,7 +44,7 @@ from scipy import special
 
 from ..data import Panel
 from ..errors import EstimationError, UnderidentifiedError
-from ..spec import Spec, is_deterministic_label, settings_of
+from ..spec import Spec, canonical_settings, is_deterministic_label, settings_of
 from .design import Design
 from .linalg import independent_columns, inverse_or_pinv, sym_pinv
 from .moments import (ARSums, Layout, first_moments, prepare, residual_rows,
@@ -636,19 +636,8 @@ def share_key(spec: Spec) -> str:
     """Specs with equal keys can share their work in :func:`fit_family`: they differ
     at most in ``steps``, ``errors`` and ``last_lag``. (Display fields such as the
     focus, thresholds or the sample's name do not enter the key.)"""
-    s = spec.sample
-    key = {
-        "outcome": spec.outcome,
-        "outcome_lags": list(spec.outcome_lags),
-        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
-        "time_effects": bool(spec.time_effects),
-        "equations": spec.equations,
-        "transform": spec.transform,
-        "first_lag": spec.first_lag,
-        "form": spec.form,
-        "extra_instruments": list(spec.extra_instruments),
-        "sample": [s.period_from, s.period_to, s.exclude_column, list(s.exclude_values)],
-    }
+    key = {k: v for k, v in canonical_settings(spec).items()
+           if k not in ("steps", "errors", "last_lag")}
     return json.dumps(key, sort_keys=True, separators=(",", ":"), default=str)
 
 
