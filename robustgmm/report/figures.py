@@ -162,6 +162,23 @@ def _same(series: pd.Series, value) -> np.ndarray:
 # ---------------------------------------------------------------------------
 # 1. specification curve
 
+def _mark_base_and_truth(ax, handles, audit, term, frame, x, est, area, truth_style):
+    """Ring the base model's estimate and draw the true value when it is known;
+    returns the base model's positions."""
+    base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
+    if base.size:
+        ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
+                   edgecolors=VERMILLION, linewidths=1.6, zorder=4)
+        handles.append(Line2D([], [], color=VERMILLION, marker="o", markerfacecolor="none",
+                              linestyle="none", label="base model"))
+    truth = audit.truth_value(term)
+    if truth is not None:
+        ax.axhline(truth, color=GREEN, linestyle=truth_style, linewidth=1.2)
+        handles.append(Line2D([], [], color=GREEN, linestyle=truth_style,
+                              label=f"true value {truth:g}"))
+    return base
+
+
 def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
                              max_tick_labels: int = MAX_TICK_LABELS) -> Figure:
     """Sorted estimates of ``term`` with (1 - alpha) confidence intervals (estimate
@@ -211,16 +228,7 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
         handles.append(Line2D([], [], color=GREY, marker="o", markerfacecolor="none",
                               linestyle="none", markersize=4,
                               label="fails a specification test"))
-    base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
-    if base.size:
-        ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
-                   edgecolors=VERMILLION, linewidths=1.6, zorder=4)
-        handles.append(Line2D([], [], color=VERMILLION, marker="o", markerfacecolor="none",
-                              linestyle="none", label="base model"))
-    truth = audit.truth_value(term)
-    if truth is not None:
-        ax.axhline(truth, color=GREEN, linestyle="--", linewidth=1.2)
-        handles.append(Line2D([], [], color=GREEN, linestyle="--", label=f"true value {truth:g}"))
+    base = _mark_base_and_truth(ax, handles, audit, term, frame, x, est, area, truth_style="--")
     ax.set_ylabel(f"estimate, {100 * (1 - audit.alpha):g}% CI", fontsize=8)
     ax.legend(handles=handles, fontsize=7, frameon=False, loc="lower left",
               bbox_to_anchor=(0.0, 1.0), ncol=min(len(handles), 5), borderaxespad=0.2)
@@ -381,16 +389,7 @@ def plot_ar_band(ax, audit: AuditFolder, term: str, *, max_tick_labels: int = MA
     if band is not None and not inside.all():
         handles.append(Line2D([], [], color=VERMILLION, marker="o", linestyle="none",
                               markersize=4, label="outside the band"))
-    base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
-    if base.size:
-        ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
-                   edgecolors=VERMILLION, linewidths=1.6, zorder=4)
-        handles.append(Line2D([], [], color=VERMILLION, marker="o", markerfacecolor="none",
-                              linestyle="none", label="base model"))
-    truth = audit.truth_value(term)
-    if truth is not None:
-        ax.axhline(truth, color=GREEN, linestyle="-.", linewidth=1.2)
-        handles.append(Line2D([], [], color=GREEN, linestyle="-.", label=f"true value {truth:g}"))
+    _mark_base_and_truth(ax, handles, audit, term, frame, x, est, area, truth_style="-.")
     ax.set_xlim(-0.5 - 0.01 * n, n - 0.5 + 0.01 * n)
     ax.set_ylabel(f"estimate, {100 * (1 - audit.alpha):g}% CI", fontsize=8)
     _variant_ticks(ax, frame["variant"], max_tick_labels, "variants, sorted by estimate")
