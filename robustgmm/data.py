@@ -212,7 +212,7 @@ def _read(path: Path, kind: str, columns: list) -> pd.DataFrame:
     if kind == ".parquet":
         return pd.read_parquet(path, columns=columns)
     if kind == ".dta":
-        # Stata value labels are not applied: filters compare the stored codes.
+        # .dta value labels are not applied: filters compare the stored codes.
         return pd.read_stata(path, columns=columns, convert_categoricals=False)
     if kind == ".xlsx":
         return pd.read_excel(path, usecols=lambda c: c in set(columns))

@@ -74,7 +74,8 @@ def test_against_statsmodels_and_linearmodels(name):
     np.testing.assert_allclose(bo, ref.params[labels].to_numpy(), rtol=1e-8, atol=1e-10)
     np.testing.assert_allclose(np.sqrt(np.diag(Vo)), ref.bse[labels].to_numpy(), rtol=1e-8)
 
-    # within: PanelOLS with entity effects, Stata-style clustered factor
+    # within: PanelOLS with entity effects, clustered with the small-sample factors
+    # G/(G-1) (groups) and (n-1)/(n-k) (debiased)
     indexed = frame.set_index(["unit", "period"])
     X_fe = pd.concat([exog, dummies], axis=1) if spec.time_effects else exog
     X_fe.index = indexed.index
