@@ -85,8 +85,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("dir", metavar="DIR", help="an audit output folder")
 
     p = sub.add_parser("demo", help="run an audit on an invented scenario with known truth")
-    p.add_argument("--out", metavar="DIR", default="robustgmm-demo",
-                   help="output folder (default: ./robustgmm-demo)")
+    p.add_argument("--out", metavar="DIR", default="reports/demo",
+                   help="output folder (default: reports/demo, the committed example output)")
     p.add_argument("--jobs", type=_jobs, default=None, metavar="N", help="parallel workers")
     p.add_argument("--force", action="store_true",
                    help="write into an existing non-empty folder that robustgmm did not create")
