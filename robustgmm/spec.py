@@ -210,15 +210,9 @@ def canonical_settings(spec: Spec) -> dict:
 
 def settings_of(spec: Spec) -> Mapping[str, Any]:
     """The estimation settings as plain values (for results and manifests)."""
-    return {
-        "equations": spec.equations,
-        "transform": spec.transform,
-        "steps": spec.steps,
-        "errors": spec.errors,
-        "first_lag": spec.first_lag,
-        "last_lag": "all" if spec.last_lag is None else spec.last_lag,
-        "form": spec.form,
-        "time_effects": spec.time_effects,
-        "roles": {reg.name: reg.role for reg in spec.regressors},
-        "sample": spec.sample.name,
-    }
+    canonical = canonical_settings(spec)
+    out = {key: canonical[key] for key in ("equations", "transform", "steps", "errors",
+                                          "first_lag", "last_lag", "form", "time_effects")}
+    out["roles"] = {reg.name: reg.role for reg in spec.regressors}
+    out["sample"] = spec.sample.name
+    return out

@@ -7,6 +7,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from helpers_audit import model_dict
 from robustgmm import core, grid
 from robustgmm.errors import InputError
 from robustgmm.modelfile import spec_from_dict
@@ -20,17 +21,7 @@ def _spec(tmp_path, vary=None, n_units=40, n_periods=6, **sections):
         frame = simulate_panel(n_units, n_periods, PanelProcess(), seed=3)
         frame["late"] = np.where(frame["period"] >= frame["period"].min() + 3, 1.0, frame["x"])
         frame.to_csv(path, index=False)
-    d = {
-        "data": {"file": "panel.csv", "unit": "unit", "period": "period"},
-        "model": {"outcome": "y", "outcome_lags": [1],
-                  "regressors": [{"name": "x", "lags": [0], "role": "endogenous"},
-                                 {"name": "w", "lags": [0], "role": "exogenous"}]},
-    }
-    for key, value in sections.items():
-        d.setdefault(key, {}).update(value)
-    if vary is not None:
-        d["audit"] = {"vary": vary}
-    return spec_from_dict(d, base_dir=tmp_path)
+    return spec_from_dict(model_dict(vary, **sections), base_dir=tmp_path)
 
 
 def test_product_with_base_first_and_marked(tmp_path):
