@@ -32,6 +32,16 @@ VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "col
 CONTRACT = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json")
 
 
+def assert_equals_undisturbed_run(out, model, harness, clean):
+    """The contract files in ``out`` equal those of an audit run without faults."""
+    proc = subprocess.run(robustgmm_command("audit", model, "--out", clean, "--jobs", "1"),
+                          env=harness_env(harness), capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr
+    got, fresh = output_files(out), output_files(clean)
+    for name in CONTRACT:
+        assert got[name] == fresh[name], name
+
+
 @pytest.fixture
 def planned(tmp_path):
     spec = make_spec(tmp_path, VARY)
@@ -133,13 +143,7 @@ def test_worker_killed_from_outside_during_a_command_line_audit(tmp_path):
     assert manifest["run"]["worker_deaths"] == 1 and manifest["run"]["failed"] == 0
     v = pd.read_csv(out / "variants.csv")
     assert len(v) == SIGINT_VARIANTS and (v["status"] == "ok").all()
-    clean = tmp_path / "clean"
-    done = subprocess.run(robustgmm_command("audit", model, "--out", clean, "--jobs", "1"),
-                          env=harness_env(harness), capture_output=True, text=True, timeout=600)
-    assert done.returncode == 0, done.stderr
-    got, fresh = output_files(out), output_files(clean)
-    for name in CONTRACT:
-        assert got[name] == fresh[name], name
+    assert_equals_undisturbed_run(out, model, harness, tmp_path / "clean")
 
 
 def test_worker_death_is_recognised_by_exception_type():
@@ -219,13 +223,7 @@ def _interrupt_and_resume(tmp_path, jobs: int, whole_group: bool):
     assert manifest["run"]["computed"] == SIGINT_VARIANTS - done
 
     # and the resumed audit equals an uninterrupted one
-    clean = tmp_path / "clean"
-    proc = subprocess.run(robustgmm_command("audit", model, "--out", clean, "--jobs", "1"),
-                          env=harness_env(harness), capture_output=True, text=True, timeout=600)
-    assert proc.returncode == 0, proc.stderr
-    resumed, fresh = output_files(out), output_files(clean)
-    for name in CONTRACT:
-        assert resumed[name] == fresh[name], name
+    assert_equals_undisturbed_run(out, model, harness, tmp_path / "clean")
 
 
 @pytest.mark.slow  # two command-line audits and a clean one, about 15 s
