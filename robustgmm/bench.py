@@ -53,7 +53,7 @@ from typing import Callable
 import numpy as np
 
 from . import __version__
-from .io import atomic_write_text
+from .atomic import atomic_write_text
 
 GB = 1024 ** 3
 
@@ -86,7 +86,7 @@ SIZES = {"full": FULL, "quick": QUICK, "tiny": TINY}
 #: Environment variable that picks the sizes (``tiny`` for tests).
 SIZES_ENV = "ROBUSTGMM_BENCH_SIZES"
 #: BLAS threads for every timing (both sides of each ratio), as audits run their
-#: variants (robustgmm.runner.BLAS_THREADS). On a shared machine a multi-threaded
+#: variants (robustgmm.audit.runner.BLAS_THREADS). On a shared machine a multi-threaded
 #: BLAS call waits for every one of its threads to be scheduled, which makes
 #: thousands of small calls erratic; one thread keeps the ratios repeatable.
 BLAS_THREADS_ENV = "ROBUSTGMM_BENCH_BLAS_THREADS"

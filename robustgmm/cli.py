@@ -134,7 +134,7 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
             raise InputError(f"{path}: cannot create the {what} folder "
                              f"({exc.strerror or type(exc).__name__})") from None
     try:  # os.access is not reliable (e.g. for root or on network drives): try a write
-        from .io import atomic_write_text
+        from .atomic import atomic_write_text
         atomic_write_text(out / OUTPUT_MARKER,
                           json.dumps({"created_by": "robustgmm", "version": __version__}) + "\n")
     except OSError as exc:
@@ -278,7 +278,7 @@ def cmd_fit(args) -> int:
         raise EstimationError(f"{spec.source}: cannot estimate the model: {exc}") from None
     _out(format_fit_summary(spec, panel, result, all_terms=args.all_terms))
     if json_path is not None:
-        from .io import atomic_write_json
+        from .atomic import atomic_write_json
         try:
             atomic_write_json(json_path, result.to_dict())
         except OSError as exc:
@@ -289,10 +289,7 @@ def cmd_fit(args) -> int:
 
 
 def _plan_frame(spec):
-    try:
-        from .audit import plan_frame
-    except ImportError:
-        from .grid import plan_frame
+    from .audit.grid import plan_frame
     return plan_frame(spec)
 
 

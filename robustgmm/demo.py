@@ -55,7 +55,7 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from .io import atomic_write_json, atomic_write_text
+from .atomic import atomic_write_json, atomic_write_text
 
 BURN_IN = 50
 TRUTH_NAME = "truth.json"

@@ -81,7 +81,7 @@ class Vary:
 @dataclass(frozen=True)
 class Thresholds:
     """Verdict thresholds (``[audit.thresholds]``); each default is documented in
-    :mod:`robustgmm.verdicts` beside the rule that uses it, with its source."""
+    :mod:`robustgmm.audit.verdicts` beside the rule that uses it, with its source."""
 
     hansen_reject: float = 0.05
     hansen_too_high: float = 0.25

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from robustgmm import core
-from robustgmm.grid import canonical_json
+from robustgmm.audit.grid import canonical_json
 from robustgmm.modelfile import spec_from_dict
 from robustgmm.simulate import PanelProcess, simulate_panel
 

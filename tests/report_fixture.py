@@ -86,7 +86,7 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
             est_rows.append({"variant": vid, "term": term, "estimate": est,
                              "std_error": se, "p_value": erfc(abs(z) / sqrt(2))})
     variants = pd.DataFrame(rows)
-    if acceptable:  # as robustgmm.verdicts marks them: estimated and passing the tests
+    if acceptable:  # as robustgmm.audit.verdicts marks them: estimated and passing the tests
         variants["acceptable"] = ((variants["status"] == "ok") & (variants["hansen_p"] >= 0.05)
                                   & (variants["ar2_p"] >= 0.05))
         variants["flags"] = np.where(variants["hansen_p"] < 0.05, "hansen_rejects", "")

@@ -1,4 +1,4 @@
-"""Checks of the OLS / within bounds (robustgmm.bounds).
+"""Checks of the OLS / within bounds (robustgmm.audit.bounds).
 
 Sources: statsmodels OLS with ``cov_type="cluster"`` and linearmodels
 ``PanelOLS(entity_effects=True)`` with ``cov_type="clustered"`` (reference
@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from robustgmm.bounds import ar_bounds, nickell_bias, ols_and_within, sum_label
+from robustgmm.audit.bounds import ar_bounds, nickell_bias, ols_and_within, sum_label
 from robustgmm.data import Panel
 from robustgmm.spec import Regressor, Spec
 

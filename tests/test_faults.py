@@ -19,7 +19,8 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from robustgmm import cli, core, grid, io, runner
+from robustgmm import cli, core, atomic as io
+from robustgmm.audit import grid, runner
 from robustgmm.audit import audit, write_audit
 
 from helpers_audit import (CountingFamily, CountingFit, KillWorker, is_fod_collapsed_two_step,

@@ -1,4 +1,4 @@
-"""Variant grid: expansion, stable ids, skip rules, plan table (robustgmm.grid)."""
+"""Variant grid: expansion, stable ids, skip rules, plan table (robustgmm.audit.grid)."""
 from __future__ import annotations
 
 import dataclasses
@@ -8,7 +8,8 @@ import pandas as pd
 import pytest
 
 from helpers_audit import model_dict
-from robustgmm import core, grid
+from robustgmm import core
+from robustgmm.audit import grid
 from robustgmm.errors import InputError
 from robustgmm.modelfile import spec_from_dict
 from robustgmm.simulate import PanelProcess, simulate_panel

@@ -4,7 +4,7 @@ import stat
 
 import pytest
 
-from robustgmm.io import atomic_write_text
+from robustgmm.atomic import atomic_write_text
 
 
 def test_atomic_write_has_ordinary_permissions(tmp_path):

@@ -1,5 +1,5 @@
 """Runner: cache hit/miss/corruption, resume after an interrupt, failure isolation,
-determinism across jobs, joblib backends, progress bar (robustgmm.runner)."""
+determinism across jobs, joblib backends, progress bar (robustgmm.audit.runner)."""
 from __future__ import annotations
 
 import dataclasses
@@ -9,8 +9,9 @@ import math
 import numpy as np
 import pytest
 
-from robustgmm import core, grid, runner
-from robustgmm.grid import canonical_json as canonical
+from robustgmm import core
+from robustgmm.audit import grid, runner
+from robustgmm.audit.grid import canonical_json as canonical
 from robustgmm.errors import EstimationError
 from robustgmm.spec import SampleFilter
 

@@ -20,7 +20,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from robustgmm import cli, core, grid
+from robustgmm import cli, core
+from robustgmm.audit import grid
 from robustgmm.audit import audit
 from robustgmm.modelfile import read_model
 from robustgmm.simulate import simulate_panel

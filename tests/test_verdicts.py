@@ -1,4 +1,4 @@
-"""Verdict rules (robustgmm.verdicts) on constructed results with known answers, and
+"""Verdict rules (robustgmm.audit.verdicts) on constructed results with known answers, and
 on simulated panels with a known data-generating process (robustgmm.simulate)."""
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from robustgmm import verdicts
+from robustgmm.audit import verdicts
 from robustgmm.audit import audit
 from robustgmm.simulate import PanelProcess
 from robustgmm.spec import Regressor, Spec, Thresholds

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..io import atomic_write_text
+from ..atomic import atomic_write_text
 from .context import build_context
 from .figures import render_figures
 from .html import render_html

@@ -43,7 +43,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from scipy.stats import norm
 
-from ..io import atomic_write_bytes
+from ..atomic import atomic_write_bytes
 from .inputs import AuditFolder
 
 # Okabe-Ito palette

@@ -53,7 +53,7 @@ RESULT_COLUMNS = frozenset(VARIANTS_REQUIRED) | {
 }
 
 # Default thresholds, used only when neither verdict.json nor manifest.json states
-# them; they mirror robustgmm.spec.Thresholds (sources in robustgmm.verdicts).
+# them; they mirror robustgmm.spec.Thresholds (sources in robustgmm.audit.verdicts).
 DEFAULT_THRESHOLDS = {
     "hansen_reject": 0.05,
     "hansen_too_high": 0.25,

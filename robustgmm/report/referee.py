@@ -31,7 +31,7 @@ def _count_phrase(k: int, noun: str) -> str:
     return f"{k} {noun}{'s' if k != 1 else ''}"
 
 
-# Short clauses for the rules robustgmm.verdicts applies; other rules use their
+# Short clauses for the rules robustgmm.audit.verdicts applies; other rules use their
 # own description.
 RULE_CLAUSES = {
     "sign_change": "its sign changes across specifications",

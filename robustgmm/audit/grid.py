@@ -52,8 +52,8 @@ from typing import Any, Callable, Mapping, Sequence
 
 import pandas as pd
 
-from .errors import EstimationError, InputError, UnderidentifiedError
-from .spec import SampleFilter, Spec, canonical_settings, sample_restrictions  # noqa: F401 (re-exported)
+from ..errors import EstimationError, InputError, UnderidentifiedError
+from ..spec import SampleFilter, Spec, canonical_settings, sample_restrictions  # noqa: F401 (re-exported)
 
 #: Varied settings in grid order (the last varies fastest). Roles and samples are
 #: handled specially: one dimension per regressor whose role is varied
@@ -246,7 +246,7 @@ def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
     Problems with the data file itself (missing file, bad columns) are raised as
     :class:`InputError` by the data layer.
     """
-    from . import data
+    from .. import data
 
     panels: dict[str, Any] = {}
     frame = None
@@ -270,7 +270,7 @@ def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
 # planning on the data
 # ---------------------------------------------------------------------------
 def _core():
-    from . import core
+    from .. import core
     return core
 
 

@@ -24,7 +24,7 @@ from typing import Any, Callable, Mapping
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
+from ..errors import InputError
 
 #: Readable file types (pandas readers).
 SUPPORTED_EXTENSIONS = (".csv", ".parquet", ".dta", ".xlsx")

@@ -30,8 +30,8 @@ try:  # Python >= 3.11
 except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib  # type: ignore[no-redef]
 
-from .errors import InputError
-from .spec import (ERRORS, EQUATIONS, FORMS, ROLES, STEPS, TRANSFORMS, Regressor,
+from ..errors import InputError
+from ..spec import (ERRORS, EQUATIONS, FORMS, ROLES, STEPS, TRANSFORMS, Regressor,
                    SampleFilter, Spec, Thresholds, Vary, term_labels)
 
 #: Data file extensions the data layer reads (see :mod:`robustgmm.data`).

@@ -43,10 +43,11 @@ from typing import Any, Mapping
 import numpy as np
 import pandas as pd
 
-from . import __version__, grid, runner, verdicts
+from .. import __version__
+from . import grid, runner, verdicts
 from .grid import SKIPPED, plan_frame  # noqa: F401  (re-exported: robustgmm.audit.plan_frame)
-from .io import atomic_write_csv, atomic_write_json
-from .spec import Spec, settings_of
+from ..atomic import atomic_write_csv, atomic_write_json
+from ..spec import Spec, settings_of
 
 __all__ = ["AuditResult", "audit", "write_audit", "plan_frame", "default_cache_dir"]
 

@@ -76,7 +76,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
-from .spec import Spec, Thresholds
+from ..spec import Spec, Thresholds
 
 #: Hansen p-values at or above this count as "p ≈ 1" (Roodman 2009 calls a p-value
 #: of 1.000 a telltale sign of too many instruments; 0.99 catches values that round

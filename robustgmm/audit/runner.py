@@ -63,10 +63,10 @@ from typing import Any, Callable, Mapping, Sequence
 import joblib
 import numpy as np
 
-from . import __version__
-from .errors import EstimationError
+from .. import __version__
+from ..errors import EstimationError
 from .grid import PLANNED, Variant, canonical_json, canonical_settings, sample_key
-from .io import atomic_write_text
+from ..atomic import atomic_write_text
 
 CACHE_FORMAT = 1
 OK, FAILED = "ok", "failed"
@@ -149,7 +149,7 @@ def estimate_group(specs, panel, fit: Callable | None = None,
     estimation sample and model (members of a share group normally have one).
     """
     from . import bounds as bounds_mod
-    from . import core
+    from .. import core
 
     sample = sample or core.estimation_sample
     start = time.perf_counter()
@@ -320,7 +320,7 @@ class RunStats:
 def _share_key(spec) -> str:
     """Variants with the same key are estimated together by ``core.fit_family``
     (they differ at most in steps, errors and last_lag)."""
-    from . import core
+    from .. import core
     return core.share_key(spec)
 
 
@@ -345,7 +345,7 @@ def _blas_limit():
     except ImportError:  # pragma: no cover - a declared dependency
         yield
         return
-    from . import core  # noqa: F401  load numpy's and scipy's BLAS before limiting them
+    from .. import core  # noqa: F401  load numpy's and scipy's BLAS before limiting them
     import scipy.linalg  # noqa: F401
     with threadpool_limits(limits=BLAS_THREADS, user_api="blas"):
         yield
@@ -366,7 +366,7 @@ def _limit_worker_blas(parent_pid: int) -> None:
         from threadpoolctl import threadpool_limits
     except ImportError:  # pragma: no cover
         return
-    from . import core  # noqa: F401
+    from .. import core  # noqa: F401
     import scipy.linalg  # noqa: F401
     threadpool_limits(limits=BLAS_THREADS, user_api="blas")
     _LIMITED_PIDS.add(pid)

@@ -34,8 +34,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .errors import EstimationError
-from .spec import Spec
+from ..errors import EstimationError
+from ..spec import Spec
 
 def sum_label(spec: Spec) -> str:
     """Label of the sum of the AR coefficients (used when the outcome has several lags)."""
