@@ -20,7 +20,7 @@ from robustgmm.core import fit
 from robustgmm.data import load_panel
 from robustgmm.modelfile import read_model
 
-ROOT = Path(__file__).resolve().parents[1]
+ROOT = Path(__file__).resolve().parents[2]
 EXAMPLES = ROOT / "examples"
 COMMITTED = ROOT / "reports" / "demo"
 

@@ -3,7 +3,7 @@
 Source: Arellano, M. & Bond, S. (1991), "Some Tests of Specification for Panel Data:
 Monte Carlo Evidence and an Application to Employment Equations", Review of Economic
 Studies 58(2), 277–297, Table 4, columns (a1) one-step and (a2) two-step.
-Data: the 140-firm UK company panel 1976–1984 (tests/data, provenance in its README).
+Data: the 140-firm UK company panel 1976–1984 (tests/data/reference, provenance in its README).
 Model: n on n[t-1], n[t-2], w[t], w[t-1], k[t], k[t-1], k[t-2], ys[t], ys[t-1], ys[t-2]
 with time effects; instruments: all lags >= 2 of n per period; w, k, ys exogenous.
 
@@ -24,7 +24,7 @@ from robustgmm.core import fit
 from robustgmm.data import panel_from_frame
 from robustgmm.spec import Regressor, Spec
 
-DATA = Path(__file__).parent / "data" / "uk_company_panel_1976_1984.csv"
+DATA = Path(__file__).resolve().parents[1] / "data" / "reference" / "uk_company_panel_1976_1984.csv"
 
 # Arellano & Bond (1991), Table 4, column (a1): one-step, robust standard errors
 A1 = {  # term: (estimate, robust standard error)
