@@ -195,14 +195,11 @@ def _p(x) -> str:
     return "  <.001" if float(x) < 0.001 else f"{float(x):7.3f}"
 
 
-_STEPS = {1: "one-step", 2: "two-step", "iterated": "iterated"}
-_TRANSFORM = {"fd": "first differences", "fod": "forward orthogonal deviations"}
-_SE_KIND = {"windmeijer": "Windmeijer-corrected", "robust": "cluster-robust (by unit)",
-            "conventional": "conventional", "cluster": "cluster-robust (by unit)"}
 
 
 def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
     """A compact plain-text summary of one fit (our own layout)."""
+    from .options import CovarianceKind, Steps, Transform, label
     from .spec import is_deterministic_label
 
     c = result.counts
@@ -210,8 +207,8 @@ def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
         f"Model {spec.source}: {spec.outcome} on its lags "
         f"{', '.join(map(str, spec.outcome_lags))}"
         + (f" and {len(spec.regressors)} regressor(s)" if spec.regressors else ""),
-        f"{spec.equations} GMM, {_TRANSFORM.get(spec.transform, spec.transform)}, "
-        f"{_STEPS.get(spec.steps, spec.steps)}; instruments: lags {spec.first_lag}-"
+        f"{spec.equations} GMM, {label(Transform, spec.transform)}, "
+        f"{label(Steps, spec.steps)}; instruments: lags {spec.first_lag}-"
         f"{'all' if spec.last_lag is None else spec.last_lag}, {spec.form}"
         + ("; time effects" if spec.time_effects else ""),
         f"Sample: {spec.sample.name}; {c.observations} observations, {c.units} units, "
@@ -221,7 +218,7 @@ def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
     if panel is not None and panel.dropped_missing:
         lines.append(f"Rows with a missing value in a used column: {panel.dropped_missing} "
                      "(the observations they touch are left out)")
-    kind = _SE_KIND.get(result.std_error_kind, result.std_error_kind)
+    kind = label(CovarianceKind, result.std_error_kind)
     lines += ["", f"Coefficients (standard errors: {kind})"]
     shown = [t for t in result.terms if all_terms or not t.label.startswith("period[")]
     hidden = len(result.terms) - len(shown)

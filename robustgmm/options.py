@@ -119,11 +119,15 @@ def parse(kind: type[E], value: Any) -> E:
     raise ValueError(f"{value!r} is not one of {words}")
 
 
-def label(member: Any) -> str:
-    """The display label of an option value (a member or its word)."""
-    for kind in (Equations, Transform, Form, Errors, Role, Steps, CovarianceKind):
-        try:
-            return LABELS[parse(kind, member)]
-        except ValueError:
-            continue
-    return str(member)
+def label(kind: type[E], value: Any) -> str:
+    """The display label of an option value of ``kind`` (a member or its word).
+
+    The kind is named because a word can belong to two vocabularies
+    (``"conventional"`` is both an :class:`Errors` choice and a
+    :class:`CovarianceKind`)."""
+    return LABELS[parse(kind, value)]
+
+
+#: Name of the level-equation instrument group of system GMM in
+#: ``FitResult.difference_hansen`` (the core writes it, the verdicts read it).
+LEVEL_GROUP = "level equation"

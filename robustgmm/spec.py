@@ -1,22 +1,95 @@
 """The model specification: one frozen, flat object per model (and per variant).
 
 A variant of an audit is ``dataclasses.replace(spec, **settings)``, which is why the
-fields are flat rather than nested by model-file section. Reading and validating the
-model file lives in :mod:`robustgmm.modelfile`; this module holds the data types and
-the label conventions that every other layer shares.
+fields are flat rather than nested by model-file section. Reading the model file
+lives in :mod:`robustgmm.modelfile`; this module holds the data types and the label
+conventions that every other layer shares.
+
+Every type here checks itself on construction (``__post_init__``) with the checks
+the model-file reader uses (:mod:`robustgmm.modelfile.checks`), so
+``Spec(form="colapsed")`` raises the same one-line :class:`~robustgmm.errors.InputError`
+as ``form = "colapsed"`` in a model file, and no misspelt option reaches the core.
+
+The option fields hold the *words* of the vocabulary (the values of the enums of
+:mod:`robustgmm.options`: ``"system"``, ``"fd"``, ``2``, ``"iterated"``, ...), not
+enum members: a member given by the caller is stored as its word. A spec is then
+plain data, written to JSON and CSV as it is, and its canonical settings (hence the
+variant ids) never depend on how it was built. ``options.parse(Steps, spec.steps)``
+gives the member where a member is wanted; the string enums compare equal to their
+words, so ``spec.equations == Equations.SYSTEM`` holds either way.
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any, Callable, Mapping
 
-ROLES = ("endogenous", "predetermined", "exogenous")
-EQUATIONS = ("difference", "system")
-TRANSFORMS = ("fd", "fod")
-STEPS = (1, 2, "iterated")
-ERRORS = ("robust", "conventional")
-FORMS = ("per-period", "collapsed")
+from .errors import InputError
+
+
+def _validate(obj, checks: Mapping[str, Callable]) -> None:
+    """Run ``check`` on each named field of a frozen dataclass, store the parsed value
+    and raise one :class:`InputError` listing every field that fails."""
+    from .modelfile import checks as c  # the checks import nothing from this module
+
+    source = getattr(obj, "source", "<dict>")
+    owner = type(obj).__name__ if source == "<dict>" else f"{source}: {type(obj).__name__}"
+    problems = []
+    for name, check in checks.items():
+        value = getattr(obj, name)
+        try:
+            parsed = check(value)
+        except c.Bad as bad:
+            problems.append(f"{owner} {name} = {c.fmt(value)}: {bad}")
+            continue
+        if parsed is not value:
+            object.__setattr__(obj, name, parsed)
+    if problems:
+        raise InputError(problems)
+
+
+def _seq(check: Callable) -> Callable:
+    """A list check that also takes a tuple (the model file gives lists, code tuples)."""
+    return lambda v: check(list(v) if isinstance(v, tuple) else v)
+
+
+def _optional(check: Callable) -> Callable:
+    return lambda v: None if v is None else check(v)
+
+
+def _instance(kind: type, what: str) -> Callable:
+    def check(v):
+        from .modelfile.checks import Bad
+        if not isinstance(v, kind):
+            raise Bad(f"must be {what}")
+        return v
+    return check
+
+
+def _tuple_of(kind: type, what: str) -> Callable:
+    def check(v):
+        from .modelfile.checks import Bad
+        if not isinstance(v, (tuple, list)) or not all(isinstance(x, kind) for x in v):
+            raise Bad(f"must be a tuple of {what}")
+        return tuple(v)
+    return check
+
+
+def _each(check: Callable) -> Callable:
+    """A tuple of values each passing ``check`` (the values an audit tries)."""
+    def run(v):
+        from .modelfile.checks import Bad, fmt
+        if not isinstance(v, (tuple, list)):
+            raise Bad("must be a tuple of values to try")
+        out = []
+        for item in v:
+            try:
+                out.append(check(item))
+            except Bad as bad:
+                raise Bad(f"{fmt(item)} is not valid: {bad}") from None
+        return tuple(out)
+    return run
 
 
 @dataclass(frozen=True)
@@ -34,6 +107,11 @@ class Regressor:
     lags: tuple[int, ...] = (0,)
     role: str = "exogenous"
 
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {"name": c.v_name, "lags": _seq(c.v_lags(0, "0 is the current period")),
+                         "role": c.v_role})
+
 
 @dataclass(frozen=True)
 class SampleFilter:
@@ -48,6 +126,13 @@ class SampleFilter:
     period_to: int | None = None
     exclude_column: str | None = None
     exclude_values: tuple[Any, ...] = ()
+
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {"name": c.v_name, "period_from": _optional(c.v_period),
+                         "period_to": _optional(c.v_period),
+                         "exclude_column": _optional(c.v_name),
+                         "exclude_values": lambda v: () if len(v) == 0 else _seq(c.v_scalar_list)(v)})
 
     @property
     def is_full(self) -> bool:
@@ -74,6 +159,16 @@ class Vary:
     roles: tuple[tuple[str, tuple[str, ...]], ...] = ()
     samples: tuple[SampleFilter, ...] = ()
 
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {
+            "equations": _each(c.v_equations), "transform": _each(c.v_transform),
+            "steps": _each(c.v_steps), "form": _each(c.v_form),
+            "first_lag": _each(c.v_first_lag), "last_lag": _each(_optional(c.v_last_lag)),
+            "time_effects": _each(c.v_bool), "errors": _each(c.v_errors),
+            "roles": _each(_role_pair), "samples": _tuple_of(SampleFilter, "SampleFilter"),
+        })
+
     def is_empty(self) -> bool:
         return not any(getattr(self, f) for f in self.__dataclass_fields__)
 
@@ -90,6 +185,10 @@ class Thresholds:
     instruments_per_unit: float = 1.0
     spread_in_se: float = 2.0
     significant_share: float = 0.9
+
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {f.name: c.threshold_check(f.name) for f in dataclasses.fields(self)})
 
 
 @dataclass(frozen=True)
@@ -117,6 +216,27 @@ class Spec:
     vary: Vary = field(default_factory=Vary)
     thresholds: Thresholds = field(default_factory=Thresholds)
     source: str = "<dict>"
+
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {
+            "unit": c.v_name, "period": c.v_name, "outcome": c.v_name,
+            "data_file": _optional(lambda v: Path(v) if isinstance(v, str) else
+                                   _instance(Path, "a path or None")(v)),
+            "outcome_lags": _seq(c.v_lags(1, "a dynamic model needs at least one lag "
+                                             "of the outcome, e.g. [1]")),
+            "regressors": _tuple_of(Regressor, "Regressor"),
+            "time_effects": c.v_bool,
+            "equations": c.v_equations, "transform": c.v_transform, "steps": c.v_steps,
+            "errors": c.v_errors, "first_lag": c.v_first_lag,
+            "last_lag": _optional(c.v_last_lag), "form": c.v_form,
+            "extra_instruments": _seq(c.v_name_list),
+            "sample": _instance(SampleFilter, "a SampleFilter"),
+            "focus": _seq(c.v_name_list), "alpha": c.v_prob,
+            "vary": _instance(Vary, "a Vary"),
+            "thresholds": _instance(Thresholds, "a Thresholds"),
+            "source": _instance(str, "a text (the model file, for messages)"),
+        })
 
     # -- derived names -------------------------------------------------------
     def used_columns(self) -> tuple[str, ...]:
@@ -152,6 +272,14 @@ class Spec:
         for reg in self.regressors:
             lags.extend(reg.lags)
         return max(lags) if lags else 0
+
+
+def _role_pair(v):
+    """One ``(regressor, roles to try)`` pair of :attr:`Vary.roles`."""
+    from .modelfile import checks as c
+    if not (isinstance(v, (tuple, list)) and len(v) == 2):
+        raise c.Bad("must be a (regressor name, roles) pair")
+    return (c.v_name(v[0]), _each(c.v_role)(v[1]))
 
 
 def term_label(name: str, lag: int) -> str:

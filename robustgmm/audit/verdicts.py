@@ -76,6 +76,7 @@ from typing import Mapping
 import numpy as np
 import pandas as pd
 
+from ..options import LEVEL_GROUP  # noqa: F401  (read here, written by the core)
 from ..spec import Spec, Thresholds
 
 #: Hansen p-values at or above this count as "p ≈ 1" (Roodman 2009 calls a p-value
@@ -84,8 +85,6 @@ from ..spec import Spec, Thresholds
 HANSEN_NEAR_ONE = 0.99
 #: Fewest acceptable variants needed to call a conclusion robust or fragile.
 MIN_ACCEPTABLE = 2
-#: Name of the level-equation instrument group in ``FitResult.difference_hansen``.
-LEVEL_GROUP = "level equation"
 
 FRAGILE, ROBUST, INCONCLUSIVE = "fragile", "robust", "inconclusive"
 EFFECT_FRAGILE, EFFECT_INCONCLUSIVE, EFFECT_CAUTION, EFFECT_EXCLUDE = (

@@ -44,6 +44,7 @@ import numpy as np
 
 from ..data import Panel
 from ..errors import EstimationError
+from ..options import LEVEL_GROUP
 from ..spec import CONST_LABEL, Spec, period_label, term_label
 
 TRANSFORMED = 0
@@ -273,7 +274,7 @@ class Design:
             for var, lo, _ in self._gmm_windows():
                 vi = self.var_index[var]
                 dlag = lo - 1
-                group = "level equation"
+                group = LEVEL_GROUP
                 col = None
                 for t in np.flatnonzero(rows_l_any):
                     src = t - dlag

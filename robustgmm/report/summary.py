@@ -13,15 +13,15 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from ..options import LABELS, Steps, Transform
 from .figures import band_arrays, setting_name, value_text
 from .inputs import AuditFolder, Rule
 
+# (setting column, value as written in variants.csv) -> words; the option labels
+# come from the one label table (robustgmm.options.LABELS)
 VALUE_WORDS = {
-    ("transform", "fd"): "first differences",
-    ("transform", "fod"): "forward orthogonal deviations",
-    ("steps", "1"): "one-step",
-    ("steps", "2"): "two-step",
-    ("steps", "iterated"): "iterated",
+    **{("transform", m.value): LABELS[m] for m in Transform},
+    **{("steps", str(m.value)): LABELS[m] for m in Steps},
     ("time_effects", "True"): "with",
     ("time_effects", "False"): "without",
 }

@@ -1,0 +1,45 @@
+"""The fit summary names the standard errors with the one label table
+(robustgmm.options.LABELS); it used to print the raw word ``cluster-robust`` for a
+one-step robust fit because its own table had keys the core never emits."""
+from __future__ import annotations
+
+import pytest
+
+from robustgmm import options
+from robustgmm.cli import main
+from robustgmm.simulate import simulate_panel
+
+MODEL = """\
+[data]
+file = "panel.csv"
+unit = "unit"
+period = "period"
+
+[model]
+outcome = "y"
+
+[[model.regressors]]
+name = "w"
+
+[method]
+steps = {steps}
+errors = "{errors}"
+
+[instruments]
+form = "collapsed"
+last_lag = 3
+"""
+
+
+@pytest.mark.parametrize("steps, errors, kind", [
+    (1, "robust", options.CovarianceKind.CLUSTER_ROBUST),
+    (2, "robust", options.CovarianceKind.WINDMEIJER),
+    ('"iterated"', "robust", options.CovarianceKind.WINDMEIJER_ITERATED),
+    (1, "conventional", options.CovarianceKind.CONVENTIONAL),
+])
+def test_summary_labels_every_kind_the_core_emits(tmp_path, capsys, steps, errors, kind):
+    simulate_panel(120, 6, seed=3).to_csv(tmp_path / "panel.csv", index=False)
+    (tmp_path / "model.toml").write_text(MODEL.format(steps=steps, errors=errors))
+    assert main(["fit", str(tmp_path / "model.toml")]) == 0
+    out = capsys.readouterr().out
+    assert f"(standard errors: {options.LABELS[kind]})" in out
