@@ -15,7 +15,7 @@ import re
 
 import pandas as pd
 
-from .figures import value_text
+from .labels import value_text
 from .inputs import AuditFolder
 from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
 

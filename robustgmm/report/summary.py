@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..options import LABELS, Steps, Transform
-from .figures import band_arrays, setting_name, value_text
+from .labels import band_arrays, setting_name, value_text
 from .inputs import AuditFolder, Rule
 
 # (setting column, value as written in variants.csv) -> words; the option labels

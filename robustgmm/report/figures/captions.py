@@ -1,0 +1,46 @@
+"""How to read each figure, shared by the HTML and Markdown reports."""
+from __future__ import annotations
+
+CAPTIONS = {
+    "spec_curve": (
+        "Each dot is one estimated variant's coefficient on {term}, sorted from smallest "
+        "to largest, with its confidence interval; blue marks are significant at the "
+        "audit's level, grey ones are not, and the ringed dot is the base model. "
+        "Hollow, faint marks are variants that fail a specification test (Hansen, "
+        "AR(2) or difference-in-Hansen); they are shown but the verdict is judged on "
+        "the others. The "
+        "panel underneath shows the choices each variant makes: read a column down for "
+        "one variant's settings, read a row across to see where one choice puts the "
+        "estimate. A robust coefficient keeps its sign and significance along the whole "
+        "curve; a curve that crosses zero, or changes colour where one row of the panel "
+        "switches, shows which choice the conclusion depends on (specification curve: "
+        "Simonsohn, Simmons & Nelson 2020)."),
+    "hansen_drift": (
+        "Each mark is one estimated variant: its Hansen J p-value against its number "
+        "of instruments; colour gives the equations, shape the instrument form. Marks "
+        "below the dashed line reject the joint validity of the instruments (Hansen "
+        "1982). Marks above the dotted warning line (0.25 by default, common practice), "
+        "and above all p-values near 1, suggest that so many instruments have weakened "
+        "the test (Roodman 2009); they usually sit to the right. The dash-dotted line is "
+        "where instruments would equal units (common practice: stay left of it)."),
+    "ar_band": (
+        "Each dot is one estimated variant's autoregressive coefficient {term} with its "
+        "confidence interval, sorted. Pooled OLS is biased up and the within "
+        "(fixed-effects) estimator is biased down in short panels (Nickell 1981), so a "
+        "consistent GMM estimate should lie in the shaded band between them (Bond, "
+        "Hoeffler & Temple 2001; Bond 2002). Vermillion dots lie outside the band: "
+        "those variants are suspect (weak instruments pull toward the within value, "
+        "too many instruments toward OLS; Roodman 2009)."),
+    "diagnostics": (
+        "Rows are checks, columns are variants (base first). Green passes, yellow is a "
+        "warning, vermillion fails, dark grey marks a variant that could not be "
+        "estimated, light grey a check that does not apply (e.g. no level-equation "
+        "instruments in difference GMM) or was not reported. A column full of green is "
+        "a variant with clean diagnostics; a row with many failures points to a "
+        "problem shared by the model."),
+}
+
+
+def caption(kind: str, term: str | None = None) -> str:
+    return CAPTIONS[kind].format(term=term or "")
+

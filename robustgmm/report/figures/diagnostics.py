@@ -1,0 +1,128 @@
+"""Figure 4: the diagnostics matrix, variants x checks."""
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from matplotlib.colors import ListedColormap
+from matplotlib.patches import Patch
+
+from ..labels import band_arrays, mathtext_safe
+from ..inputs import AuditFolder
+from .common import (BLACK, BLUE, GREEN, GREY, GROUP_COLOURS, GROUP_MARKERS, LIGHT,
+                     MAX_TICK_LABELS, ORANGE, PURPLE, SKY, VERMILLION, YELLOW,
+                     choice_rows, critical, mark_base_and_truth, no_data, same, sizes,
+                     sorted_term, style, variant_ticks)
+
+
+PASS, WARN, FAIL, NOT_ESTIMATED = 0, 1, 2, 3
+STATE_NAMES = {PASS: "passes", WARN: "warning", FAIL: "fails",
+               NOT_ESTIMATED: "not estimated"}
+
+
+def _difference_hansen_column(frame: pd.DataFrame) -> str | None:
+    """The p-value column of the difference-in-Hansen test for the level-equation
+    instruments, when the audit writes one (name contains 'diff', 'hansen' and
+    'level'; or a single 'diff...hansen..._p' column)."""
+    cands = [c for c in frame.columns
+             if "hansen" in c.lower() and "diff" in c.lower() and c.lower().endswith("p")]
+    levels = [c for c in cands if "level" in c.lower()]
+    if levels:
+        return levels[0]
+    return cands[0] if len(cands) == 1 else None
+
+
+def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
+    """Variants x checks with states PASS / WARN / FAIL / NOT_ESTIMATED (NaN = the
+    check does not apply or was not reported). Thresholds are the audit's own.
+
+    Checks: AR(2) does not reject (Arellano & Bond 1991); Hansen does not reject
+    (Hansen 1982); Hansen p below the warning line (common practice; Roodman 2009);
+    instruments do not outnumber units (common practice); difference-in-Hansen of the
+    level-equation instruments does not reject (Blundell & Bond 1998; Roodman 2009);
+    AR coefficient inside the within-OLS band (Bond, Hoeffler & Temple 2001)."""
+    v = audit.variants
+    t = audit.thresholds
+    ok = (v["status"] == "ok").to_numpy()
+
+    def state(bad, warn=None, valid=None):
+        out = np.where(bad, FAIL, PASS).astype(float)
+        if warn is not None:
+            out = np.where(~bad & warn, WARN, out)
+        if valid is not None:
+            out = np.where(valid, out, np.nan)
+        return np.where(ok, out, NOT_ESTIMATED)
+
+    ar2 = v["ar2_p"].to_numpy(float)
+    hansen = v["hansen_p"].to_numpy(float)
+    inst = v["instruments"].to_numpy(float)
+    units = v["units"].to_numpy(float)
+    checks = {
+        "AR(2) does not reject": state(ar2 < t["ar2_reject"], valid=np.isfinite(ar2)),
+        "Hansen does not reject": state(hansen < t["hansen_reject"], valid=np.isfinite(hansen)),
+        "Hansen p below warning line": state(np.zeros(len(v), bool), hansen >= t["hansen_too_high"],
+                               valid=np.isfinite(hansen)),
+        "instruments within units": state(inst > units * t["instruments_per_unit"],
+                                     valid=np.isfinite(inst) & np.isfinite(units)),
+    }
+    dh = _difference_hansen_column(v)
+    if dh is not None:
+        p = pd.to_numeric(v[dh], errors="coerce").to_numpy(float)
+        checks["diff-in-Hansen (levels) ok"] = state(p < t["difference_hansen_reject"],
+                                                  valid=np.isfinite(p))
+    inside = _in_bounds(audit)
+    if inside is not None:
+        checks["AR coef. inside OLS-FE band"] = state(inside == 0.0, valid=np.isfinite(inside))
+    out = pd.DataFrame(checks, index=v["variant"].to_numpy())
+    out.index.name = "variant"
+    return out
+
+
+def _in_bounds(audit: AuditFolder) -> np.ndarray | None:
+    """1.0 inside, 0.0 outside, NaN unknown; from the audit's ``in_bounds`` column, or
+    recomputed from estimates.csv and bounds.csv for the first AR term."""
+    v = audit.variants
+    if "in_bounds" in v.columns:
+        vals = v["in_bounds"].map(lambda s: np.nan if pd.isna(s) or str(s).strip() == "" else
+                                  float(str(s).strip().lower() in ("true", "1", "1.0", "yes")))
+        return vals.to_numpy(float)
+    if not audit.ar_terms:
+        return None
+    term = audit.ar_terms[0]
+    frame = audit.term_estimates(term, ok_only=False)
+    lo_hi = band_arrays(audit, term, frame)
+    if lo_hi is None:
+        return None
+    lo, hi = np.minimum(*lo_hi), np.maximum(*lo_hi)
+    est = frame["estimate"].to_numpy(float)
+    inside = pd.Series(((est >= lo) & (est <= hi)).astype(float), index=frame["variant"])
+    return v["variant"].map(inside).to_numpy(float)
+
+
+def plot_diagnostics_matrix(ax, audit: AuditFolder, *, max_tick_labels: int = MAX_TICK_LABELS):
+    """Variants (columns, base first) x checks (rows); colour and legend give the state."""
+    style(ax)
+    ax.set_title("Diagnostics by variant", fontsize=10, loc="left")
+    table = diagnostics_table(audit)
+    order = [audit.base_variant] + [i for i in table.index if i != audit.base_variant]
+    table = table.loc[order]
+    matrix = np.ma.masked_invalid(table.to_numpy(float).T)
+    cmap = ListedColormap([GREEN, YELLOW, VERMILLION, "#595959"]).with_extremes(bad=LIGHT)
+    n = len(table)
+    ax.imshow(matrix, aspect="auto", cmap=cmap, vmin=-0.5, vmax=3.5, interpolation="nearest")
+    ax.set_yticks(np.arange(table.shape[1]))
+    ax.set_yticklabels(list(table.columns), fontsize=8)
+    if n <= 80:  # cell borders help only while cells are wide enough to see
+        ax.set_xticks(np.arange(-0.5, n, 1), minor=True)
+        ax.set_yticks(np.arange(-0.5, table.shape[1], 1), minor=True)
+        ax.grid(which="minor", color="white", linewidth=0.8)
+        ax.tick_params(which="minor", length=0)
+    ax.spines["left"].set_visible(False)
+    ax.spines["bottom"].set_visible(False)
+    variant_ticks(ax, table.index, max_tick_labels, "variants (base first)")
+    handles = [Patch(facecolor=c, label=STATE_NAMES[s]) for s, c in
+               ((PASS, GREEN), (WARN, YELLOW), (FAIL, VERMILLION), (NOT_ESTIMATED, "#595959"))]
+    handles.append(Patch(facecolor=LIGHT, label="not applicable"))
+    ax.legend(handles=handles, fontsize=7, frameon=False, loc="upper left",
+              bbox_to_anchor=(0.0, -0.12 if n > max_tick_labels else -0.35), ncol=5)
+    return ax
+
