@@ -80,6 +80,31 @@ class Status(enum.StrEnum):
     SKIPPED = "skipped"
 
 
+class Evidence(enum.StrEnum):
+    """What a variant can tell about a conclusion (column ``evidence`` of
+    variants.csv). ``acceptable``: estimated, every required specification test
+    computed and passed; ``untestable``: estimated and no test rejects, but a required
+    test cannot be computed (an exactly identified instrument set leaves nothing for
+    the Hansen test); ``rejected``: a specification test rejects; ``failed``: the
+    estimation failed; ``skipped``: not estimated (impossible, or the same estimation
+    as another variant)."""
+    ACCEPTABLE = "acceptable"
+    UNTESTABLE = "untestable"
+    REJECTED = "rejected"
+    FAILED = "failed"
+    SKIPPED = "skipped"
+
+
+class Effect(enum.StrEnum):
+    """What a verdict rule does when it fires."""
+    EXCLUDE = "variant not acceptable"
+    UNTESTABLE = "variant untestable"
+    CAUTION = "caution"
+    FRAGILE = "fragile"
+    INCONCLUSIVE = "inconclusive"
+    INFORMATION = "information"
+
+
 LABELS: dict[Any, str] = {
     Equations.DIFFERENCE: "difference GMM",
     Equations.SYSTEM: "system GMM",

@@ -185,6 +185,13 @@ class Thresholds:
     instruments_per_unit: float = 1.0
     spread_in_se: float = 2.0
     significant_share: float = 0.9
+    #: a variant whose standard error exceeds this many base standard errors is
+    #: uninformative: listed, but left out of ``spread`` and ``significance_flip``
+    uninformative_se_ratio: float = 3.0
+    #: ``hansen_p_high`` fires only from this many instruments per unit on
+    instruments_per_unit_warn: float = 0.25
+    #: count untestable variants (exactly identified) as evidence
+    count_untestable: bool = False
 
     def __post_init__(self):
         from .modelfile import checks as c

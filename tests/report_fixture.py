@@ -1,8 +1,10 @@
-"""A synthetic audit output folder that follows the design contract.
+"""A synthetic audit output folder written the way an audit writes it.
 
 The report tests run against folders written here, so that the report can be tested
-without estimating anything (and with any number of variants). The values are
-invented; only the layout is the contract's (design.md, "Outputs").
+without estimating anything (and with any number of variants). The estimates and
+test p-values are invented; the verdict columns of variants.csv and verdict.json
+come from the real rules (robustgmm.audit.verdicts.evaluate), so the report is
+tested on the documents the verdict module writes.
 """
 from __future__ import annotations
 
@@ -13,6 +15,9 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+
+from robustgmm.audit import verdicts
+from robustgmm.spec import SampleFilter, Spec, Vary
 
 AR = "y[t-1]"
 ROBUST = "x[t]"
@@ -32,6 +37,16 @@ def _grid(n_variants: int):
     combos = list(itertools.product(*values.values()))
     assert n_variants <= len(combos)
     return [dict(zip(values, c)) for c in combos[:n_variants]]
+
+
+def _spec(fragile_term: str) -> Spec:
+    """The model the fixture pretends to have audited (its focus terms and grid)."""
+    return Spec(unit="unit", period="period", outcome="y", focus=(AR, ROBUST, fragile_term),
+                vary=Vary(last_lag=(None, 2, 3, 4, 5, 6, 7, 8, 9, 10),
+                          samples=(SampleFilter("from 2013", period_from=2013),),
+                          steps=(2, 1), transform=("fd", "fod"),
+                          form=("per-period", "collapsed"),
+                          equations=("system", "difference")))
 
 
 def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
@@ -68,7 +83,9 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
             "hansen_p": hansen_p if ok else np.nan,
             "sargan_p": float(np.clip(hansen_p - 0.01, 0, 1)) if ok else np.nan,
             "ar1_p": 0.0001 if ok else np.nan,
-            "ar2_p": float(rng.uniform(0.01, 0.9)) if ok else np.nan,
+            "ar2_p": (0.5 if i == 0 else float(rng.uniform(0.01, 0.9))) if ok else np.nan,
+            "diff_hansen_level_p": (float(rng.uniform(0.1, 0.9)) if ok and
+                                    settings["equations"] == "system" else np.nan),
             "is_base": i == 0,
         }
         if role_column is not None:
@@ -86,36 +103,19 @@ def write_fake_audit(path, n_variants: int = 24, *, fragile_term: str = FRAGILE,
             est_rows.append({"variant": vid, "term": term, "estimate": est,
                              "std_error": se, "p_value": erfc(abs(z) / sqrt(2))})
     variants = pd.DataFrame(rows)
-    if acceptable:  # as robustgmm.audit.verdicts marks them: estimated and passing the tests
-        variants["acceptable"] = ((variants["status"] == "ok") & (variants["hansen_p"] >= 0.05)
-                                  & (variants["ar2_p"] >= 0.05))
-        variants["flags"] = np.where(variants["hansen_p"] < 0.05, "hansen_rejects", "")
     estimates = pd.DataFrame(est_rows, columns=["variant", "term", "estimate", "std_error",
                                                 "p_value"])
+    bounds = pd.DataFrame([{"variant": "base", "is_base": True, "term": AR, "ols": 0.75,
+                            "ols_std_error": 0.02, "fe": 0.35, "fe_std_error": 0.03}])
+    spec = _spec(fragile_term)
+    evaluation = verdicts.evaluate(spec, variants, estimates, bounds)
+    if acceptable:  # as an audit writes them
+        for col in ("evidence", "acceptable", "duplicate_of", "flags"):
+            variants[col] = evaluation.columns[col].to_numpy()
     variants.to_csv(path / "variants.csv", index=False)
     estimates.to_csv(path / "estimates.csv", index=False)
-    pd.DataFrame([{"term": AR, "ols": 0.75, "ols_std_error": 0.02,
-                   "fe": 0.35, "fe_std_error": 0.03}]).to_csv(path / "bounds.csv", index=False)
-    verdict = {
-        "alpha": 0.05,
-        "terms": {
-            AR: {"verdict": "robust", "rules": []},
-            ROBUST: {"verdict": "robust", "rules": []},
-            fragile_term: {"verdict": "fragile", "rules": [
-                {"id": "sign_change", "description": "the sign differs across ok variants",
-                 "source": "Simonsohn, Simmons & Nelson (2020)", "threshold": None,
-                 "figures": {"positive": 12, "negative": 11}},
-                {"id": "significance_share",
-                 "description": "significant at alpha in too few variants",
-                 "source": "common practice", "threshold": 0.9,
-                 "figures": {"share": 0.5}}]},
-        },
-        "model": [{"id": "instruments_exceed_units",
-                   "description": "some variants have more instruments than units",
-                   "source": "common practice; Roodman (2009)", "threshold": 1.0,
-                   "figures": {"variants": 3}}],
-    }
-    (path / "verdict.json").write_text(json.dumps(verdict, indent=2))
+    bounds.to_csv(path / "bounds.csv", index=False)
+    (path / "verdict.json").write_text(json.dumps(evaluation.verdict.to_dict(), indent=2))
     manifest = {
         "package": "robustgmm", "version": "0.1.0", "data_hash": "abc123" * 10,
         "model_file": "model <test>.toml", "outcome": "y",

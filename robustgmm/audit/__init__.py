@@ -12,8 +12,11 @@ id), ``order``, ``is_base``, every varied setting (``equations``, ``transform``,
 ``ar2_p``, ``diff_hansen_level_p`` (difference-in-Hansen of the level-equation
 instruments, system GMM), ``std_error_kind``, ``ar_term`` (the AR coefficient the
 band check uses: the single lag, or the sum of the lags), ``ar_coefficient``,
-``ar_ols``, ``ar_fe``, ``in_bounds``, ``acceptable`` and ``flags`` (variant rules of
-:mod:`robustgmm.verdicts` that fired), ``warnings``.
+``ar_ols``, ``ar_fe``, ``in_bounds``, ``evidence`` (acceptable / untestable /
+rejected / failed / skipped), ``acceptable`` (``evidence == "acceptable"``),
+``duplicate_of`` (the id of the earlier variant with the same estimates, else empty)
+and ``flags`` (variant rules of :mod:`robustgmm.audit.verdicts` that fired),
+``warnings``.
 
 ``estimates.csv`` — one row per ok variant × term (all terms, including the constant
 and period dummies): ``variant``, ``term``, ``estimate``, ``std_error``, ``z``,
@@ -93,9 +96,12 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
                                           progress=progress, backend=backend, fit=fit)
     t_run = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
-    verdict = verdicts.judge(spec, variants, estimates, bounds)
-    extra = verdicts.variant_columns(variants, spec)
-    variants = variants.assign(acceptable=extra["acceptable"], flags=extra["flags"])
+    evaluation = verdicts.evaluate(spec, variants, estimates, bounds)  # every rule, once
+    verdict = evaluation.verdict.to_dict()
+    extra = evaluation.columns
+    variants = variants.drop(columns=["duplicate_of"]).assign(
+        evidence=extra["evidence"], acceptable=extra["acceptable"],
+        duplicate_of=extra["duplicate_of"], flags=extra["flags"])
     variants = variants[[c for c in variants.columns if c != "warnings"] + ["warnings"]]
     t_end = time.perf_counter()
 
@@ -156,6 +162,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
         o = outcomes.get(v.id)
         row: dict[str, Any] = {"variant": v.id, "order": v.order, "is_base": v.is_base}
         row.update(v.settings_dict())
+        row["duplicate_of"] = getattr(v, "duplicate_of", "")
         status = v.status if o is None else o.status
         reason = v.reason if o is None else o.reason
         if status == runner.FAILED and grid.is_order_condition(reason):
@@ -209,7 +216,8 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
     lead = ["variant", "order", "is_base", *columns, "status", "reason", "instruments",
             "parameters", "units", "observations", "instruments_per_unit", "hansen_p",
             "hansen_df", "sargan_p", "ar1_p", "ar2_p", "diff_hansen_level_p", "std_error_kind",
-            "ar_term", "ar_coefficient", "ar_ols", "ar_fe", "in_bounds", "warnings"]
+            "ar_term", "ar_coefficient", "ar_ols", "ar_fe", "in_bounds", "duplicate_of",
+            "warnings"]
     variants = pd.DataFrame(vrows, columns=lead)
     for col in ("instruments", "parameters", "units", "observations", "hansen_df"):
         variants[col] = variants[col].astype("Int64")

@@ -252,6 +252,8 @@ def v_scalar_list(v):
 
 
 def threshold_check(name: str) -> Callable:
+    if name == "count_untestable":
+        return v_bool
     if name.endswith("share"):
         return v_share
     if name.endswith(("reject", "high")):

@@ -2,6 +2,7 @@
 report.html, report.md, table.tex, referee.txt, and build_report's file handling."""
 from __future__ import annotations
 
+import json
 import re
 import shutil
 import subprocess
@@ -281,7 +282,9 @@ def test_referee_summary_facts(built):
     audit = read_audit_folder(out)
     s = summarize(audit)
     frag = s.term(MARKUP_TERM)
-    assert frag.verdict == "fragile" and len(frag.fired) == 2
+    written = json.loads((out / "verdict.json").read_text())["terms"][MARKUP_TERM]
+    assert frag.verdict == "fragile" == written["verdict"]
+    assert [r.id for r in frag.fired] == [r["id"] for r in written["rules"]]
     assert s.n_failed == 1 and s.n_ok == 23 and s.n_variants == 24
     variants = pd.read_csv(out / "variants.csv")
     assert s.n_acceptable == int(variants["acceptable"].sum())

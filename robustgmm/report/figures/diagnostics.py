@@ -33,7 +33,8 @@ def _difference_hansen_column(frame: pd.DataFrame) -> str | None:
 
 def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
     """Variants x checks with states PASS / WARN / FAIL / NOT_ESTIMATED (NaN = the
-    check does not apply or was not reported). Thresholds are the audit's own.
+    check does not apply or was not reported). The states are the variant rules that
+    :mod:`robustgmm.audit.verdicts` evaluated (column ``flags``), read, not re-derived.
 
     Checks: AR(2) does not reject (Arellano & Bond 1991); Hansen does not reject
     (Hansen 1982); Hansen p below the warning line (common practice; Roodman 2009);
@@ -41,7 +42,6 @@ def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
     level-equation instruments does not reject (Blundell & Bond 1998; Roodman 2009);
     AR coefficient inside the within-OLS band (Bond, Hoeffler & Temple 2001)."""
     v = audit.variants
-    t = audit.thresholds
     ok = (v["status"] == "ok").to_numpy()
 
     def state(bad, warn=None, valid=None):
@@ -52,23 +52,31 @@ def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
             out = np.where(valid, out, np.nan)
         return np.where(ok, out, NOT_ESTIMATED)
 
+    # the states are the rules robustgmm.audit.verdicts evaluated (column "flags");
+    # nothing is compared with a threshold here
+    fired = v["flags"].fillna("").astype(str).str.split(";") if "flags" in v.columns \
+        else pd.Series([[]] * len(v), index=v.index)
+
+    def rule(rule_id):
+        return fired.map(lambda ids: rule_id in ids).to_numpy(bool)
+
     ar2 = v["ar2_p"].to_numpy(float)
     hansen = v["hansen_p"].to_numpy(float)
     inst = v["instruments"].to_numpy(float)
     units = v["units"].to_numpy(float)
     checks = {
-        "AR(2) does not reject": state(ar2 < t["ar2_reject"], valid=np.isfinite(ar2)),
-        "Hansen does not reject": state(hansen < t["hansen_reject"], valid=np.isfinite(hansen)),
-        "Hansen p below warning line": state(np.zeros(len(v), bool), hansen >= t["hansen_too_high"],
-                               valid=np.isfinite(hansen)),
-        "instruments within units": state(inst > units * t["instruments_per_unit"],
-                                     valid=np.isfinite(inst) & np.isfinite(units)),
+        "AR(2) does not reject": state(rule("ar2_rejects"), valid=np.isfinite(ar2)),
+        "Hansen does not reject": state(rule("hansen_rejects"), valid=np.isfinite(hansen)),
+        "Hansen p below warning line": state(np.zeros(len(v), bool), rule("hansen_p_high"),
+                                             valid=np.isfinite(hansen)),
+        "instruments within units": state(rule("instruments_exceed_units"),
+                                          valid=np.isfinite(inst) & np.isfinite(units)),
     }
     dh = _difference_hansen_column(v)
     if dh is not None:
         p = pd.to_numeric(v[dh], errors="coerce").to_numpy(float)
-        checks["diff-in-Hansen (levels) ok"] = state(p < t["difference_hansen_reject"],
-                                                  valid=np.isfinite(p))
+        checks["diff-in-Hansen (levels) ok"] = state(rule("difference_hansen_level_rejects"),
+                                                     valid=np.isfinite(p))
     inside = _in_bounds(audit)
     if inside is not None:
         checks["AR coef. inside OLS-FE band"] = state(inside == 0.0, valid=np.isfinite(inside))
