@@ -1,36 +1,12 @@
 """Audit one model: spec → panels → grid → runner → bounds → verdicts → tables.
 
-:func:`audit` returns an :class:`AuditResult` whose tables are the contract files
-(design.md, "Outputs"); :func:`write_audit` writes them atomically. Columns:
-
-``variants.csv`` — one row per variant, in plan order (base first): ``variant`` (stable
-id), ``order``, ``is_base``, every varied setting (``equations``, ``transform``,
-``steps``, ``errors``, ``form``, ``first_lag``, ``last_lag``, ``time_effects``,
-``role:NAME``, ``sample`` — only those varied), ``status`` (ok / failed / skipped),
-``reason``, ``instruments``, ``parameters``, ``units``, ``observations``,
-``instruments_per_unit``, ``hansen_p``, ``hansen_df``, ``sargan_p``, ``ar1_p``,
-``ar2_p``, ``diff_hansen_level_p`` (difference-in-Hansen of the level-equation
-instruments, system GMM), ``std_error_kind``, ``ar_term`` (the AR coefficient the
-band check uses: the single lag, or the sum of the lags), ``ar_coefficient``,
-``ar_ols``, ``ar_fe``, ``in_bounds``, ``evidence`` (acceptable / untestable /
-rejected / failed / skipped), ``acceptable`` (``evidence == "acceptable"``),
-``duplicate_of`` (the id of the earlier variant with the same estimates, else empty)
-and ``flags`` (variant rules of :mod:`robustgmm.audit.verdicts` that fired),
-``warnings``.
-
-``estimates.csv`` — one row per ok variant × term (all terms, including the constant
-and period dummies): ``variant``, ``term``, ``estimate``, ``std_error``, ``z``,
-``p_value``.
-
-``bounds.csv`` — one row per ok variant × AR term (and the sum of the AR terms when
-the outcome has several lags), base variant first: ``variant``, ``is_base``, ``term``,
-``ols``, ``ols_std_error``, ``fe``, ``fe_std_error`` (pooled OLS and within estimates
-on that variant's estimation sample, unit-clustered errors), ``gmm`` (the variant's
-estimate), ``in_bounds``, ``observations``, ``units``. The contract's one-row-per-term
-view is the ``is_base`` rows.
-
-``verdict.json`` — :func:`robustgmm.verdicts.judge`. ``manifest.json`` — package
-version, data hash(es), model file, settings, thresholds, run figures and timings.
+:func:`audit` returns an :class:`AuditResult` whose tables are the files of the audit
+folder; :func:`write_audit` writes them atomically. The files, their columns and
+their order are defined in :mod:`robustgmm.contract` (prose: ``docs/formats.md``):
+``variants.csv`` (one row per variant, plan order, base first), ``estimates.csv``
+(one row per ok variant × term, including the constant and period dummies),
+``bounds.csv`` (one row per ok variant × AR term, base rows first),
+``verdict.json`` (:func:`robustgmm.audit.verdicts.judge`) and ``manifest.json``.
 Everything but the manifest is identical whatever the number of jobs and whether
 results came from the cache.
 """
@@ -48,6 +24,7 @@ import pandas as pd
 
 from .. import __version__
 from . import grid, runner, verdicts
+from .. import contract
 from .grid import SKIPPED, plan_frame  # noqa: F401  (re-exported: robustgmm.audit.plan_frame)
 from ..atomic import atomic_write_csv, atomic_write_json
 from ..spec import Spec, settings_of
@@ -99,16 +76,18 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     evaluation = verdicts.evaluate(spec, variants, estimates, bounds)  # every rule, once
     verdict = evaluation.verdict.to_dict()
     extra = evaluation.columns
-    variants = variants.drop(columns=["duplicate_of"]).assign(
-        evidence=extra["evidence"], acceptable=extra["acceptable"],
-        duplicate_of=extra["duplicate_of"], flags=extra["flags"])
-    variants = variants[[c for c in variants.columns if c != "warnings"] + ["warnings"]]
+    variants = contract.frame_in_order(
+        contract.VARIANTS, variants.assign(
+            evidence=extra["evidence"], acceptable=extra["acceptable"],
+            duplicate_of=extra["duplicate_of"], flags=extra["flags"]),
+        grid.setting_columns(spec))
     t_end = time.perf_counter()
 
     base_panel = panels[grid.sample_key(spec.sample)]
     manifest = {
         "package": "robustgmm",
         "version": __version__,
+        "format_version": contract.FORMAT_VERSION,
         "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "model_file": spec.source,
         "data_file": None if spec.data_file is None else str(spec.data_file),
@@ -213,20 +192,14 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                                        if row["instruments"] is not None and row["units"] else np.nan)
         vrows.append(row)
 
-    lead = ["variant", "order", "is_base", *columns, "status", "reason", "instruments",
-            "parameters", "units", "observations", "instruments_per_unit", "hansen_p",
-            "hansen_df", "sargan_p", "ar1_p", "ar2_p", "diff_hansen_level_p", "std_error_kind",
-            "ar_term", "ar_coefficient", "ar_ols", "ar_fe", "in_bounds", "duplicate_of",
-            "warnings"]
+    # the verdict columns are added by the verdicts (see audit())
+    lead = [c for c in contract.VARIANTS.names(columns) if c not in contract.VERDICT_COLUMNS]
     variants = pd.DataFrame(vrows, columns=lead)
     for col in ("instruments", "parameters", "units", "observations", "hansen_df"):
         variants[col] = variants[col].astype("Int64")
     variants["in_bounds"] = variants["in_bounds"].astype("boolean")
-    estimates = pd.DataFrame(erows, columns=["variant", "term", "estimate", "std_error", "z",
-                                             "p_value"])
-    bounds = pd.DataFrame(brows, columns=["variant", "is_base", "term", "ols", "ols_std_error",
-                                          "fe", "fe_std_error", "gmm", "in_bounds",
-                                          "observations", "units"])
+    estimates = pd.DataFrame(erows, columns=contract.ESTIMATES.names())
+    bounds = pd.DataFrame(brows, columns=contract.BOUNDS.names())
     if len(bounds):
         # base rows first (the contract's one-row-per-term view), then plan order
         bounds = bounds.sort_values("is_base", ascending=False, kind="mergesort")
@@ -251,14 +224,13 @@ def write_audit(result: AuditResult, out_dir, *, model_file=None) -> Path:
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     (out / "manifest.json").unlink(missing_ok=True)
-    atomic_write_csv(out / "variants.csv", result.variants)
-    atomic_write_csv(out / "estimates.csv", result.estimates)
-    atomic_write_csv(out / "bounds.csv", result.bounds)
+    settings = result.manifest["vary"]
+    for table, frame in zip(contract.TABLES, (result.variants, result.estimates, result.bounds)):
+        atomic_write_csv(out / table.file, contract.frame_in_order(table, frame, settings))
     atomic_write_json(out / "verdict.json", result.verdict)
     manifest = dict(result.manifest)
     if model_file is not None:
         manifest["model_file"] = str(model_file)
-    manifest["files"] = ["variants.csv", "estimates.csv", "bounds.csv", "verdict.json",
-                         "manifest.json"]
+    manifest["files"] = list(contract.FILES)
     atomic_write_json(out / "manifest.json", manifest)
     return out

@@ -1,32 +1,32 @@
-"""The report documents built from synthetic audit folders (tests/report_fixture.py):
-report.html, report.md, table.tex, referee.txt, and build_report's file handling."""
+"""The report documents built from audit folders made by the real writer
+(tests/report_fixture.py, built once per session): report.html, report.md,
+table.tex, referee.txt, build_report's file handling and the strict reader."""
 from __future__ import annotations
 
-import json
 import re
 import shutil
 import subprocess
 from html.parser import HTMLParser
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pytest
 
-from report_fixture import AR, FRAGILE, ROBUST, write_fake_audit
+from report_fixture import AR, FRAGILE, NOISE_NAME, ROBUST, ROBUST_NAME, copy_folder
 from robustgmm.errors import InputError
 from robustgmm.report import build_report, read_audit_folder
 from robustgmm.report.latex import render_latex, tex
 from robustgmm.report.referee import CAUTION, referee_paragraph
 from robustgmm.report.summary import fmt, summarize
 
-MARKUP_TERM = 'w<script>alert("x")</script>&[t]'
-MARKUP_COLUMN = "<b>lev</b>_role"
+MARKUP_TERM = FRAGILE  # 'w<script>alert("x")</script>&[t]'
+MARKUP_COLUMN = f"role:{NOISE_NAME}"  # "role:<b>lev</b>"
 
 
 @pytest.fixture(scope="module")
-def built(tmp_path_factory):
-    out = write_fake_audit(tmp_path_factory.mktemp("audit") / "out", 24, truth=True,
-                           fragile_term=MARKUP_TERM, role_column=MARKUP_COLUMN)
+def built(audit_folder, tmp_path_factory):
+    out = copy_folder(audit_folder("main"), tmp_path_factory.mktemp("audit") / "out")
     paths = build_report(out)
     return out, paths
 
@@ -83,30 +83,101 @@ def test_not_an_audit_folder_names_each_missing_file(tmp_path):
     assert all("\n" not in p for p in problems)
 
 
-def test_missing_folder_and_bad_json(tmp_path):
+def test_missing_folder_and_bad_json(tmp_path, writable_folder):
     with pytest.raises(InputError, match="not a folder"):
         build_report(tmp_path / "nowhere")
-    out = write_fake_audit(tmp_path / "a", 3)
+    out = writable_folder("two")
     (out / "verdict.json").write_text("{not json")
     with pytest.raises(InputError, match="verdict.json: not valid JSON"):
         build_report(out)
 
 
-def test_missing_estimate_column_is_named(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 3)
+def test_missing_estimate_column_is_named(writable_folder):
+    out = writable_folder("two")
     frame = pd.read_csv(out / "estimates.csv").drop(columns=["std_error"])
     frame.to_csv(out / "estimates.csv", index=False)
     with pytest.raises(InputError, match=r"estimates.csv: column 'std_error' missing"):
         build_report(out)
 
 
-def test_extra_columns_are_tolerated(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 4)
+def test_an_unknown_column_is_named(writable_folder):
+    # the reader is strict: a column that is not in robustgmm.contract is refused
+    out = writable_folder("two")
     frame = pd.read_csv(out / "variants.csv")
     frame["some_future_column"] = 1.5
     frame.to_csv(out / "variants.csv", index=False)
-    build_report(out)
-    assert "some_future_column" not in (out / "report.md").read_text()
+    with pytest.raises(InputError) as info:
+        build_report(out)
+    assert info.value.problems == [
+        f"{out / 'variants.csv'}: column 'some_future_column' is not part of the format "
+        "(format_version 1; see docs/formats.md)"]
+
+
+def test_a_renamed_column_is_named_twice(writable_folder):
+    # no synonyms: "p" for "p_value" is a missing column and an unknown one
+    out = writable_folder("two")
+    frame = pd.read_csv(out / "estimates.csv").rename(columns={"p_value": "p"})
+    frame.to_csv(out / "estimates.csv", index=False)
+    with pytest.raises(InputError) as info:
+        read_audit_folder(out)
+    assert [p.split(": ", 1)[1] for p in info.value.problems] == [
+        "column 'p_value' missing",
+        "column 'p' is not part of the format (format_version 1; see docs/formats.md)"]
+
+
+def test_a_cell_of_the_wrong_kind_is_named(writable_folder):
+    out = writable_folder("two")
+    frame = pd.read_csv(out / "variants.csv")
+    frame["hansen_p"] = frame["hansen_p"].astype(object)
+    frame.loc[0, "hansen_p"] = "high"
+    frame.to_csv(out / "variants.csv", index=False)
+    with pytest.raises(InputError, match=r"variants.csv: column 'hansen_p' holds 'high', "
+                                         r"not a number$"):
+        read_audit_folder(out)
+
+
+def test_another_format_version_is_refused(writable_folder):
+    import json
+    out = writable_folder("two")
+    manifest = json.loads((out / "manifest.json").read_text())
+    manifest["format_version"] = 0
+    (out / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(InputError, match=r"manifest.json: format_version is 0, this robustgmm "
+                                         r"reads 1; rerun the audit"):
+        read_audit_folder(out)
+    del manifest["format_version"]
+    (out / "manifest.json").write_text(json.dumps(manifest))
+    with pytest.raises(InputError, match="format_version is null"):
+        read_audit_folder(out)
+
+
+def test_a_missing_verdict_key_is_named(writable_folder):
+    import json
+    out = writable_folder("two")
+    verdict = json.loads((out / "verdict.json").read_text())
+    del verdict["alpha"]
+    verdict["terms"][AR].pop("passed")
+    (out / "verdict.json").write_text(json.dumps(verdict))
+    with pytest.raises(InputError) as info:
+        read_audit_folder(out)
+    assert [p.split("verdict.json: ", 1)[1] for p in info.value.problems] == [
+        "key 'alpha' missing"]
+    verdict["alpha"] = 0.05
+    (out / "verdict.json").write_text(json.dumps(verdict))
+    with pytest.raises(InputError, match=re.escape(f"terms['{AR}']: key 'passed' missing")):
+        read_audit_folder(out)
+
+
+def test_the_reader_reads_what_the_writer_wrote(audit_folder):
+    # ids stay text and every column of the format is there, in the writer's order
+    from robustgmm import contract
+    audit = read_audit_folder(audit_folder("main"))
+    assert list(audit.variants.columns) == contract.VARIANTS.names(audit.setting_columns)
+    assert list(audit.estimates.columns) == contract.ESTIMATES.names()
+    assert list(audit.bounds.columns) == contract.BOUNDS.names()
+    assert audit.variants["variant"].map(type).eq(str).all()
+    assert set(audit.estimates["variant"]) <= set(audit.variants["variant"])
+    assert audit.manifest["format_version"] == contract.FORMAT_VERSION
 
 
 # -- HTML --------------------------------------------------------------------
@@ -154,8 +225,9 @@ def test_html_content(built):
     assert audit.manifest["data_hash"] in text
 
 
-def test_html_without_truth_has_no_truth_section(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 5, truth=False)
+def test_html_without_truth_has_no_truth_section(writable_folder):
+    out = writable_folder("two")
+    (out / "truth.json").unlink()
     build_report(out)
     assert "Known truth" not in (out / "report.html").read_text()
     assert "Known truth" not in (out / "report.md").read_text()
@@ -205,9 +277,8 @@ def test_latex_structure(built):
     assert len(bodies) >= 1 and "(2)" in text
 
 
-def test_latex_columns_are_one_setting_departures(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 32, failed=0)
-    audit = read_audit_folder(out)
+def test_latex_columns_are_one_setting_departures(audit_folder):
+    audit = read_audit_folder(audit_folder("five"))
     from robustgmm.report.latex import one_at_a_time
     cols = one_at_a_time(audit)
     assert cols[0] == (audit.base_variant, (), ())
@@ -217,8 +288,8 @@ def test_latex_columns_are_one_setting_departures(tmp_path):
         diffs = [c for c in audit.setting_columns if str(row[c]) != str(base[c])]
         assert len(changed) == 1 and diffs == list(changed)
         assert str(values[0]) == str(row[changed[0]])
-    # the fixture's grid varies five settings with two values each -> five departures
-    assert len(cols) == 6
+    # the folder's grid varies five settings with two values each -> five departures
+    assert len(audit.setting_columns) == 5 and len(cols) == 6
 
 
 @pytest.mark.skipif(not any(shutil.which(e) for e in ("pdflatex", "lualatex", "xelatex")),
@@ -257,8 +328,8 @@ def test_referee_numbers_equal_the_estimates(built):
         e = est[(est["term"] == term) & est["variant"].isin(acc_ids)]
         m = re.search(re.escape(f"coefficient on {term} stays between ") +
                       r"(-?\d+\.\d+) and (-?\d+\.\d+) \(base model (-?\d+\.\d+), standard error "
-                      r"(\d+\.\d+)\); it is positive in (all \d+|\d+ of \d+) and significant at "
-                      r"the 5% level in (all \d+|\d+ of \d+)", flat)
+                      r"(\d+\.\d+)\); it is (positive|negative) in (all \d+|\d+ of \d+) and "
+                      r"significant at the 5% level in (all \d+|\d+ of \d+)", flat)
         assert m, term
         lo, hi, base, se = (float(m.group(i)) for i in range(1, 5))
         assert lo == pytest.approx(e["estimate"].min(), abs=5e-4)
@@ -266,10 +337,12 @@ def test_referee_numbers_equal_the_estimates(built):
         b = est[(est["term"] == term) & (est["variant"] == audit.base_variant)].iloc[0]
         assert base == pytest.approx(b["estimate"], abs=5e-4)
         assert se == pytest.approx(b["std_error"], abs=5e-4)
-        n_pos = int((e["estimate"] > 0).sum())
+        # the sign named is the base model's; the count is of variants sharing it
+        assert m.group(5) == ("positive" if b["estimate"] > 0 else "negative")
+        n_same = int((np.sign(e["estimate"]) == np.sign(b["estimate"])).sum())
         n_sig = int((e["p_value"] < 0.05).sum())
-        assert m.group(5) == (f"all {n_ok}" if n_pos == n_ok else f"{n_pos} of {n_ok}")
-        assert m.group(6) == (f"all {n_ok}" if n_sig == n_ok else f"{n_sig} of {n_ok}")
+        assert m.group(6) == (f"all {n_ok}" if n_same == n_ok else f"{n_same} of {n_ok}")
+        assert m.group(7) == (f"all {n_ok}" if n_sig == n_ok else f"{n_sig} of {n_ok}")
     # the AR band sentence uses bounds.csv
     bounds = pd.read_csv(out / "bounds.csv").iloc[0]
     assert f"within (fixed-effects) estimate of {fmt(bounds['fe'])}" in flat
@@ -278,24 +351,27 @@ def test_referee_numbers_equal_the_estimates(built):
 
 
 def test_referee_summary_facts(built):
+    import json
     out, _ = built
     audit = read_audit_folder(out)
     s = summarize(audit)
     frag = s.term(MARKUP_TERM)
-    written = json.loads((out / "verdict.json").read_text())["terms"][MARKUP_TERM]
-    assert frag.verdict == "fragile" == written["verdict"]
-    assert [r.id for r in frag.fired] == [r["id"] for r in written["rules"]]
-    assert s.n_failed == 1 and s.n_ok == 23 and s.n_variants == 24
+    verdict = json.loads((out / "verdict.json").read_text())["terms"][MARKUP_TERM]
+    assert frag.verdict == verdict["verdict"] == "fragile"
+    assert [r.id for r in frag.fired] == [r["id"] for r in verdict["rules"]]
     variants = pd.read_csv(out / "variants.csv")
+    status = variants["status"].value_counts()
+    assert s.n_failed == status["failed"] > 0 and s.n_ok == status["ok"]
+    assert s.n_variants == len(variants)
     assert s.n_acceptable == int(variants["acceptable"].sum())
     e = pd.read_csv(out / "estimates.csv")
     e = e[e["term"] == MARKUP_TERM]
-    assert frag.n_ok == 23 and frag.ok_low == e["estimate"].min()
+    assert frag.n_ok == status["ok"] == len(e) and frag.ok_low == e["estimate"].min()
 
 
 @pytest.mark.parametrize("n", [1, 2])
-def test_small_audits_read_naturally(tmp_path, n):
-    out = write_fake_audit(tmp_path / "a", n)
+def test_small_audits_read_naturally(writable_folder, n):
+    out = writable_folder({1: "one", 2: "two"}[n])
     build_report(out)
     flat = " ".join((out / "referee.txt").read_text().split())
     assert "1 estimated specifications" not in flat
@@ -305,9 +381,11 @@ def test_small_audits_read_naturally(tmp_path, n):
         assert "positive in both" in flat
 
 
-def test_values_of_skipped_variants_are_not_called_varied(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 4, failed=0)
+def test_values_of_skipped_variants_are_not_called_varied(writable_folder):
+    # last_lag takes a second value only in skipped variants
+    out = writable_folder("skips")
     variants = pd.read_csv(out / "variants.csv")
+    assert set(variants["last_lag"].astype(str)) == {"4"}
     extra = variants.iloc[[0, 1]].copy()
     extra["variant"] = ["s1", "s2"]
     extra["last_lag"] = 99
@@ -320,30 +398,39 @@ def test_values_of_skipped_variants_are_not_called_varied(tmp_path):
     pd.concat([variants, extra]).to_csv(out / "variants.csv", index=False)
     build_report(out)
     flat = " ".join((out / "referee.txt").read_text().split())
-    assert "last instrument lag" not in flat and "99" not in flat
+    assert "last instrument lag" not in flat and not re.search(r"(?<![\d.])99\b", flat)
     assert "2 combinations of settings were skipped as impossible" in flat
     md = (out / "report.md").read_text()
     assert "lag window reaches past the panel" in md  # the reason is in the table
 
 
-def test_latex_falls_back_to_the_closest_variants(tmp_path):
+def test_latex_falls_back_to_the_closest_variants(writable_folder):
     # the base uses a role no other variant shares: no variant differs in one setting
-    out = write_fake_audit(tmp_path / "a", 8, failed=0, role_column="role:x")
+    out = writable_folder("roles")
+    column = f"role:{ROBUST_NAME}"
     variants = pd.read_csv(out / "variants.csv")
-    variants["role:x"] = ["predetermined"] + ["endogenous"] * (len(variants) - 1)
+    assert len(variants) == 8
+    # drop the variant that differs from the base in the role only, then give the
+    # base a role no other variant has
+    others = [c for c in ("steps", "form") if c in variants.columns]
+    base = variants[variants["is_base"]].iloc[0]
+    twin = (variants[others] == base[others]).all(axis=1) & ~variants["is_base"]
+    assert twin.sum() == 1
+    variants = variants[~twin]
+    variants[column] = ["predetermined"] + ["endogenous"] * (len(variants) - 1)
     variants.to_csv(out / "variants.csv", index=False)
     audit = read_audit_folder(out)
     from robustgmm.report.latex import one_at_a_time
     cols = one_at_a_time(audit)
     assert len(cols) > 1 and all(len(changed) == 2 for _, changed, _ in cols[1:])
-    assert all("role:x" in changed for _, changed, _ in cols[1:])
+    assert all(column in changed for _, changed, _ in cols[1:])
     text = render_latex(audit)
     assert "each other column changes 2 settings" in text
-    assert "x: endogenous" in text
+    assert f"{tex(ROBUST_NAME)}: endogenous" in text
 
 
-def test_an_audit_where_every_variant_failed_still_gets_a_report(tmp_path):
-    out = write_fake_audit(tmp_path / "a", 3, failed=3)
+def test_an_audit_where_every_variant_failed_still_gets_a_report(writable_folder):
+    out = writable_folder("all_failed")
     assert pd.read_csv(out / "estimates.csv").empty
     paths = build_report(out)
     assert (out / "report.html") in paths

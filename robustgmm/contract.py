@@ -1,0 +1,228 @@
+"""The formats robustgmm writes and reads: the audit folder and the fit JSON.
+
+One table per file: its columns in order, each with its kind and one line of
+meaning. :func:`robustgmm.audit.write_audit` writes the columns in this order and
+:func:`robustgmm.report.read_audit_folder` accepts exactly these columns (plus the
+varied settings the manifest names), so the writer and the reader cannot drift apart.
+The prose version is ``docs/formats.md``.
+
+**Adding a column** is one line in the table of its file below (and the writer
+filling it); bump :data:`FORMAT_VERSION` when a column is renamed or removed, or
+changes meaning, so that an old folder is refused with a clear message instead of
+being misread.
+
+Kinds (how the reader parses a CSV column; empty cells are missing values):
+
+- ``text``: a string (ids stay strings: ``00123456`` keeps its zeros);
+- ``int``: a whole number, missing allowed;
+- ``float``: a number (``%.17g`` in the file, so a reread equals what was computed);
+- ``bool``: ``True`` / ``False``, missing allowed;
+- ``setting``: a varied setting, as the model file writes it (``system``, ``2``,
+  ``all``, ``True``, a role or a sample name).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Iterable, Sequence
+
+import pandas as pd
+
+#: Version of the audit-folder format, written into manifest.json.
+FORMAT_VERSION = 1
+
+KINDS = ("text", "int", "float", "bool", "setting")
+
+
+@dataclass(frozen=True)
+class Column:
+    name: str
+    kind: str
+    doc: str
+
+    def __post_init__(self):
+        assert self.kind in KINDS, self.kind
+
+
+@dataclass(frozen=True)
+class Table:
+    """A CSV file of the audit folder. ``settings_after`` names the column after
+    which the varied settings (one column each, named as in manifest.json ``vary``)
+    are inserted; None when the file has none."""
+
+    file: str
+    columns: tuple[Column, ...]
+    settings_after: str | None = None
+
+    def names(self, settings: Sequence[str] = ()) -> list[str]:
+        """Column names in file order, with the varied ``settings`` in place."""
+        out = []
+        for col in self.columns:
+            out.append(col.name)
+            if col.name == self.settings_after:
+                out.extend(settings)
+        return out
+
+    def kinds(self, settings: Sequence[str] = ()) -> dict[str, str]:
+        out = {c.name: c.kind for c in self.columns}
+        out.update({s: "setting" for s in settings})
+        return out
+
+    def problems(self, columns: Iterable[str], settings: Sequence[str], where) -> list[str]:
+        """One line per missing or unexpected column (a renamed column shows as both)."""
+        present = list(columns)
+        expected = self.names(settings)
+        out = [f"{where}: column '{c}' missing" for c in expected if c not in present]
+        out += [f"{where}: column '{c}' is not part of the format "
+                f"(format_version {FORMAT_VERSION}; see docs/formats.md)"
+                for c in present if c not in expected]
+        return out
+
+
+VARIANTS = Table("variants.csv", (
+    Column("variant", "text", "stable id: the first 8 hex digits of the sha256 of the canonical settings"),
+    Column("order", "int", "position in the plan, 1 = the base model"),
+    Column("is_base", "bool", "True for the base model (exactly one row)"),
+    Column("status", "text", "ok, failed or skipped"),
+    Column("reason", "text", "why a variant failed or was skipped (empty when ok)"),
+    Column("instruments", "int", "instrument columns used"),
+    Column("parameters", "int", "estimated coefficients"),
+    Column("units", "int", "units in the estimation sample"),
+    Column("observations", "int", "level observations in the estimation sample"),
+    Column("instruments_per_unit", "float", "instruments / units"),
+    Column("hansen_p", "float", "Hansen J p-value"),
+    Column("hansen_df", "int", "Hansen J degrees of freedom"),
+    Column("sargan_p", "float", "Sargan p-value (not robust to heteroskedasticity)"),
+    Column("ar1_p", "float", "Arellano-Bond AR(1) p-value, differenced residuals"),
+    Column("ar2_p", "float", "Arellano-Bond AR(2) p-value, differenced residuals"),
+    Column("diff_hansen_level_p", "float",
+           "difference-in-Hansen p-value of the level-equation instruments (system GMM)"),
+    Column("std_error_kind", "text",
+           "cluster-robust, windmeijer, windmeijer-iterated or conventional"),
+    Column("ar_term", "text", "the AR term the band check uses (one lag, or the sum of the lags)"),
+    Column("ar_coefficient", "float", "its GMM estimate"),
+    Column("ar_ols", "float", "pooled OLS estimate on the variant's sample"),
+    Column("ar_fe", "float", "within (fixed-effects) estimate on the variant's sample"),
+    Column("in_bounds", "bool", "the GMM estimate lies between the within and OLS estimates"),
+    Column("evidence", "text", "acceptable, untestable, rejected, failed or skipped"),
+    Column("acceptable", "bool", "evidence is acceptable: estimated and no rejection rule fired"),
+    Column("duplicate_of", "text",
+           "the id of the earlier variant with the same estimates (empty when none)"),
+    Column("flags", "text", "variant rules that fired, separated by ';'"),
+    Column("warnings", "text", "estimation warnings, separated by ' | '"),
+), settings_after="is_base")
+
+ESTIMATES = Table("estimates.csv", (
+    Column("variant", "text", "variant id"),
+    Column("term", "text", "term label: NAME[t], NAME[t-1], const, period[1984]"),
+    Column("estimate", "float", "coefficient"),
+    Column("std_error", "float", "standard error (the variant's std_error_kind)"),
+    Column("z", "float", "estimate / std_error"),
+    Column("p_value", "float", "two-sided normal p-value"),
+))
+
+BOUNDS = Table("bounds.csv", (
+    Column("variant", "text", "variant id (the base model's rows first)"),
+    Column("is_base", "bool", "True on the base model's rows"),
+    Column("term", "text", "an AR term, or the sum of the AR terms"),
+    Column("ols", "float", "pooled OLS estimate"),
+    Column("ols_std_error", "float", "its unit-clustered standard error"),
+    Column("fe", "float", "within (fixed-effects) estimate"),
+    Column("fe_std_error", "float", "its unit-clustered standard error"),
+    Column("gmm", "float", "the variant's GMM estimate"),
+    Column("in_bounds", "bool", "gmm lies between fe and ols"),
+    Column("observations", "int", "observations of the OLS and within regressions"),
+    Column("units", "int", "units of the OLS and within regressions"),
+))
+
+TABLES = (VARIANTS, ESTIMATES, BOUNDS)
+#: Columns of variants.csv filled by the verdicts (robustgmm.audit.verdicts), not by
+#: the tables of the audit.
+VERDICT_COLUMNS = ("evidence", "acceptable", "duplicate_of", "flags")
+
+#: Top-level keys of verdict.json (built by :func:`robustgmm.audit.verdicts.judge`).
+VERDICT_KEYS = ("alpha", "base_variant", "base_acceptable", "base_evidence", "base_statement",
+                "closest_acceptable", "thresholds", "combination", "disclaimer", "variants",
+                "diagnostics", "terms", "model", "rules")
+#: Keys of one focus term's entry in verdict.json ``terms``.
+TERM_KEYS = ("verdict", "reason", "summary", "base", "figures", "rules", "passed",
+             "not_evaluated", "drivers", "key_driver", "influence")
+#: Keys of one rule (a fired rule, a model flag, an entry of the rule catalogue).
+RULE_KEYS = ("id", "description", "source", "threshold", "effect")
+
+#: Keys of manifest.json that the report reads (the writer adds run figures,
+#: timings and the environment, see docs/formats.md).
+MANIFEST_KEYS = ("format_version", "package", "version", "model_file", "data_hash",
+                 "outcome", "base_variant", "vary", "focus", "alpha", "thresholds", "files")
+
+#: The files of an audit folder in the order written (manifest.json last, so a
+#: folder with a manifest holds a complete audit).
+FILES = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json", "manifest.json")
+#: Optional: the true parameters of a simulated process ({"parameters": {term: value}}).
+TRUTH_FILE = "truth.json"
+
+#: Keys of the JSON of ``robustgmm fit --json`` (:meth:`FitResult.to_dict`).
+FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings")
+FIT_TERM_KEYS = ("estimate", "std_error", "z", "p_value")
+FIT_TEST_KEYS = ("ar1", "ar2", "sargan", "hansen", "difference_hansen")
+FIT_COUNT_KEYS = ("observations", "units", "instruments", "periods", "parameters",
+                  "instruments_per_unit")
+
+
+# ---------------------------------------------------------------------------
+def frame_in_order(table: Table, frame: pd.DataFrame, settings: Sequence[str] = ()) -> pd.DataFrame:
+    """``frame`` with exactly the table's columns in file order (the writer's check:
+    a column the writer forgot or invented is a bug, raised here)."""
+    expected = table.names(settings)
+    missing = [c for c in expected if c not in frame.columns]
+    extra = [c for c in frame.columns if c not in expected]
+    if missing or extra:
+        raise AssertionError(f"{table.file}: writer columns differ from the format: "
+                             f"missing {missing}, unexpected {extra}")
+    return frame[expected]
+
+
+def read_table(table: Table, path: Path, settings: Sequence[str],
+               problems: list[str]) -> pd.DataFrame | None:
+    """Read one CSV of the format, appending one line per problem to ``problems``
+    (a missing file, a missing or unexpected column, a cell of the wrong kind).
+
+    Text columns are read as strings; the other kinds are checked and left as pandas
+    reads them (a whole-number column with a missing value is float, a boolean
+    column with one is object), empty cells are missing values."""
+    if not path.is_file():
+        problems.append(f"{path}: file missing (not an audit output folder? "
+                        f"run `robustgmm audit MODEL.toml --out {path.parent}` first)")
+        return None
+    kinds = table.kinds(settings)
+    try:
+        frame = pd.read_csv(path, dtype={c: str for c, k in kinds.items() if k == "text"})
+    except Exception as exc:  # pandas raises several parser error types
+        first = str(exc).splitlines()[0] if str(exc) else ""
+        problems.append(f"{path}: cannot be read as CSV ({exc.__class__.__name__}: {first})")
+        return None
+    found = table.problems(frame.columns, settings, path)
+    if found:
+        problems.extend(found)
+        return None
+    before = len(problems)
+    for col, kind in kinds.items():
+        values = frame[col]
+        present = values[values.notna()]
+        if present.empty:  # an empty table (every variant failed) or column
+            continue
+        if kind in ("int", "float"):
+            if not pd.api.types.is_numeric_dtype(values) or pd.api.types.is_bool_dtype(values):
+                wrong = present[pd.to_numeric(present, errors="coerce").isna()]
+                shown = wrong.iloc[0] if len(wrong) else present.iloc[0]
+                problems.append(f"{path}: column '{col}' holds {shown!r}, not a number")
+            elif kind == "int" and (present % 1 != 0).any():
+                problems.append(f"{path}: column '{col}' holds "
+                                f"{present[present % 1 != 0].iloc[0]!r}, not a whole number")
+        elif kind == "bool":
+            wrong = present[~present.map(lambda v: isinstance(v, (bool,)) or
+                                         type(v).__name__ == "bool_")]
+            if len(wrong):
+                problems.append(f"{path}: column '{col}' holds {wrong.iloc[0]!r}, "
+                                "not True or False")
+    return None if len(problems) > before else frame
