@@ -440,8 +440,7 @@ def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
     else:
         out.notes.append("core.fit_family is not available: shared work not measured")
     try:
-        from . import audit as audit_mod
-        run_audit = audit_mod.audit
+        from .audit import audit as run_audit
     except (ImportError, AttributeError):
         out.notes.append("the audit pipeline (robustgmm.audit) is not available: "
                          "audit timings not measured")

@@ -305,13 +305,13 @@ def cmd_audit(args) -> int:
             _out("\n" + ", ".join(f"{n} {s}" for s, n in counts.items()))
         return EXIT_OK
     out = check_output_folder(args.out, args.force)
-    from . import audit as audit_mod
+    from .audit import audit as run_audit, write_audit
 
-    result = audit_mod.audit(spec, jobs=args.jobs,
+    result = run_audit(spec, jobs=args.jobs,
                              cache_dir=None if args.no_cache else out / ".cache",
                              progress=sys.stderr.isatty())
     try:
-        audit_mod.write_audit(result, out, model_file=Path(args.model))
+        write_audit(result, out, model_file=Path(args.model))
         _build_report_if_available(out)
     except OSError as exc:
         raise _cannot_write(args.out, exc) from None

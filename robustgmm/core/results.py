@@ -1,4 +1,12 @@
-"""Immutable results of one estimation, convertible to pandas and to the contract JSON."""
+"""Immutable results of one estimation, convertible to pandas and to one JSON record.
+
+:meth:`FitResult.to_dict` is the one record of a fit: the JSON of ``robustgmm fit
+--json`` (keys in :mod:`robustgmm.contract`, prose in ``docs/formats.md``) and what a
+cache stores; :meth:`FitResult.from_dict` reads it back. The round trip is exact for
+every finite number and for NaN (JSON has no NaN: it is written ``null`` and read
+back as NaN; an infinity, which no fit produces, would come back as NaN too).
+:class:`FitFailure` is the record of a variant that could not be estimated.
+"""
 from __future__ import annotations
 
 import math
@@ -16,6 +24,32 @@ def _clean(x):
         return None
     x = float(x)
     return x if math.isfinite(x) else None
+
+
+def _float(x) -> float:
+    """The inverse of :func:`_clean`: None is NaN."""
+    return math.nan if x is None else float(x)
+
+
+def _plain(value):
+    """Diagnostics as JSON values: arrays as nested lists, non-finite floats as None."""
+    if isinstance(value, np.ndarray):
+        return _plain(value.tolist())
+    if isinstance(value, (list, tuple)):
+        return [_plain(v) for v in value]
+    if isinstance(value, (float, np.floating)):
+        return _clean(value)
+    if isinstance(value, np.integer):
+        return int(value)
+    return value
+
+
+def _array(value):
+    """The inverse of :func:`_plain` for one diagnostic: lists become float arrays."""
+    if isinstance(value, list):
+        return np.array([[_float(x) for x in row] if isinstance(row, list) else _float(row)
+                         for row in value], dtype=float)
+    return value
 
 
 @dataclass(frozen=True)
@@ -38,6 +72,10 @@ class TestResult:
         if self.df is not None:
             out["df"] = int(self.df)
         return out
+
+    @classmethod
+    def from_dict(cls, d: Mapping) -> "TestResult":
+        return cls(_float(d["statistic"]), _float(d["p_value"]), d.get("df"))
 
 
 @dataclass(frozen=True)
@@ -118,7 +156,14 @@ class FitResult:
         return pd.DataFrame(rows, columns=["test", "statistic", "df", "p_value"]).set_index("test")
 
     def to_dict(self) -> dict:
-        """The JSON of ``robustgmm fit --json`` (design contract), plus warnings."""
+        """The one record of this fit, JSON-ready (the JSON of ``robustgmm fit --json``).
+
+        Keys: ``terms`` (label → estimate, std_error, z, p_value, in estimation
+        order), ``std_error_kind``, ``tests`` (ar1, ar2, sargan, hansen → statistic,
+        p_value, df, or null where the test is not defined; ``difference_hansen``:
+        group → test), ``counts``, ``settings``, ``warnings``, ``vcov`` (the K × K
+        covariance of the standard errors, rows in term order) and ``diagnostics``.
+        """
         tests = {name: (t.to_dict() if t is not None else None) for name, t in self.tests.items()}
         tests["difference_hansen"] = {g: t.to_dict() for g, t in self.difference_hansen.items()}
         c = self.counts
@@ -130,7 +175,53 @@ class FitResult:
             "counts": {"observations": c.observations, "units": c.units,
                        "instruments": c.instruments, "periods": c.periods,
                        "parameters": c.parameters,
-                       "instruments_per_unit": _clean(c.instruments_per_unit)},
+                       "instruments_per_unit": _clean(c.instruments_per_unit),
+                       "transformed_rows": c.transformed_rows, "level_rows": c.level_rows},
             "settings": dict(self.settings),
             "warnings": list(self.warnings),
+            "vcov": _plain(self.vcov),
+            "diagnostics": {k: _plain(v) for k, v in self.diagnostics.items()},
         }
+
+    @classmethod
+    def from_dict(cls, d: Mapping) -> "FitResult":
+        """The fit of a record written by :meth:`to_dict` (``from_dict(r.to_dict())``
+        equals ``r``, NaN for NaN)."""
+        tests = dict(d["tests"])
+        diff = tests.pop("difference_hansen")
+        c = d["counts"]
+        return cls(
+            terms=tuple(TermEstimate(label, _float(t["estimate"]), _float(t["std_error"]),
+                                     _float(t["z"]), _float(t["p_value"]))
+                        for label, t in d["terms"].items()),
+            std_error_kind=d["std_error_kind"],
+            tests={k: (None if t is None else TestResult.from_dict(t)) for k, t in tests.items()},
+            difference_hansen={g: TestResult.from_dict(t) for g, t in diff.items()},
+            counts=Counts(**{f: c[f] for f in Counts.__dataclass_fields__}),
+            warnings=tuple(d["warnings"]),
+            vcov=_array(d["vcov"]) if d["vcov"] else np.zeros((0, 0)),
+            settings=d["settings"],
+            diagnostics={k: _array(v) for k, v in d["diagnostics"].items()},
+        )
+
+
+@dataclass(frozen=True)
+class FitFailure:
+    """The record of a variant that could not be estimated: ``error_type`` is the
+    exception's class name (``EstimationError``, ``UnderidentifiedError``, ...),
+    ``reason`` its one-line message."""
+
+    error_type: str
+    reason: str
+
+    @classmethod
+    def from_exception(cls, exc: BaseException) -> "FitFailure":
+        text = " ".join(str(exc).split()) or type(exc).__name__
+        return cls(type(exc).__name__, text)
+
+    def to_dict(self) -> dict:
+        return {"error_type": self.error_type, "reason": self.reason}
+
+    @classmethod
+    def from_dict(cls, d: Mapping) -> "FitFailure":
+        return cls(d["error_type"], d["reason"])
