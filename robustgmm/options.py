@@ -153,6 +153,9 @@ def label(kind: type[E], value: Any) -> str:
     return LABELS[parse(kind, value)]
 
 
+#: Data file kinds the data layer reads (the model file checks [data] file against it).
+DATA_EXTENSIONS = (".csv", ".parquet", ".dta", ".xlsx")
+
 #: Name of the level-equation instrument group of system GMM in
 #: ``FitResult.difference_hansen`` (the core writes it, the verdicts read it).
 LEVEL_GROUP = "level equation"

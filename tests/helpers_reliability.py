@@ -26,7 +26,8 @@ import subprocess
 import sys
 from pathlib import Path
 
-from robustgmm.modelfile import spec_from_dict, spec_to_toml
+from helpers_toml import spec_to_toml
+from robustgmm.modelfile import spec_from_dict
 
 from helpers_audit import model_dict, write_panel
 

@@ -25,9 +25,8 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
+from ..options import DATA_EXTENSIONS as SUPPORTED_EXTENSIONS  # readable file types
 
-#: Readable file types (pandas readers).
-SUPPORTED_EXTENSIONS = (".csv", ".parquet", ".dta", ".xlsx")
 #: How many examples a message lists (duplicate rows, bad values).
 MAX_EXAMPLES = 3
 #: Widest calendar accepted: the panel is laid out on every integer between the

@@ -176,28 +176,22 @@ def v_period(v):
     return int(v)
 
 
-def v_prob(v):
-    if not is_num(v) or not math.isfinite(v):
-        raise Bad("must be a number strictly between 0 and 1")
-    if not 0 < v < 1:
-        raise Bad("must be strictly between 0 and 1")
-    return float(v)
+def _v_number(inside: Callable[[float], bool], what: str, where: str) -> Callable:
+    """A check for a finite number: ``what`` says the kind of number wanted when the
+    value is not one, ``where`` the range when it falls outside ``inside``."""
+    def check(v):
+        if not is_num(v) or not math.isfinite(v):
+            raise Bad(f"must be {what}")
+        if not inside(v):
+            raise Bad(f"must be {where}")
+        return float(v)
+    return check
 
 
-def v_share(v):
-    if not is_num(v) or not math.isfinite(v):
-        raise Bad("must be a number in (0, 1]")
-    if not 0 < v <= 1:
-        raise Bad("must be above 0 and at most 1")
-    return float(v)
-
-
-def v_positive(v):
-    if not is_num(v) or not math.isfinite(v):
-        raise Bad("must be a positive number")
-    if v <= 0:
-        raise Bad("must be above 0")
-    return float(v)
+v_prob = _v_number(lambda v: 0 < v < 1, "a number strictly between 0 and 1",
+                   "strictly between 0 and 1")
+v_share = _v_number(lambda v: 0 < v <= 1, "a number in (0, 1]", "above 0 and at most 1")
+v_positive = _v_number(lambda v: v > 0, "a positive number", "above 0")
 
 
 def v_lags(minimum: int, what: str) -> Callable:

@@ -16,7 +16,7 @@ from robustgmm import __version__, core
 from robustgmm.audit import grid
 from robustgmm.audit import audit, default_cache_dir, plan_frame, write_audit
 from robustgmm.audit.bounds import ar_bounds
-from robustgmm.modelfile import spec_to_toml
+from helpers_toml import spec_to_toml
 
 from helpers_audit import CountingFamily, CountingFit, make_spec, write_panel
 

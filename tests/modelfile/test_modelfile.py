@@ -12,7 +12,8 @@ from pathlib import Path
 import pytest
 
 from robustgmm.errors import InputError
-from robustgmm.modelfile import read_model, spec_from_dict, spec_to_dict, spec_to_toml
+from helpers_toml import spec_to_toml
+from robustgmm.modelfile import read_model, spec_from_dict, spec_to_dict
 from robustgmm.spec import Regressor, SampleFilter, Spec, Thresholds, Vary
 
 FULL = """\

@@ -1,0 +1,127 @@
+"""Checks across keys of a model file, run on the spec the reader built.
+
+Each check first asks the reader whether the paths it depends on parsed
+(:meth:`~robustgmm.modelfile.schema.Reader.ok`): a key that failed its own check was
+replaced by its default, and judging the default would report a problem the user
+never wrote (a bad ``period_from`` of a varied sample would make it "the same as the
+base sample"), while a bad value elsewhere must not silence an unrelated check (a bad
+``[sample] name`` used to hide a misspelt focus term).
+"""
+from __future__ import annotations
+
+import dataclasses
+
+from ..spec import Spec, term_labels
+from .checks import closest, fmt, key_text
+from .schema import RESERVED_NAMES, Reader
+
+_RESERVED = ("the name \"period\" is reserved for period-dummy labels (period[1984]); "
+             "rename the column")
+
+
+def cross_checks(spec: Spec, r: Reader) -> None:
+    """Append a problem to ``r`` for every inconsistency between keys of ``spec``."""
+    _columns(spec, r)
+    _lag_window(spec, r)
+    _focus(spec, r)
+    _vary(spec, r)
+
+
+def _columns(spec: Spec, r: Reader) -> None:
+    add = r.add
+    if spec.unit == spec.period:
+        add("[data] period", "is the same column as [data] unit", spec.period)
+    for key, col in (("unit", spec.unit), ("period", spec.period)):
+        if spec.outcome == col:
+            add("[model] outcome", f"is the {key} column; choose the outcome variable",
+                spec.outcome)
+    if spec.outcome in RESERVED_NAMES:
+        add("[model] outcome", _RESERVED, spec.outcome)
+    seen: dict[str, int] = {}
+    for i, reg in enumerate(spec.regressors, start=1):
+        header = f"[[model.regressors]] #{i} ({key_text(reg.name)}) name"
+        if reg.name == spec.outcome:
+            add(header, "is the outcome; its lags go in [model] outcome_lags", reg.name)
+        elif reg.name in (spec.unit, spec.period):
+            add(header, "is the unit or period column, not a variable", reg.name)
+        elif reg.name in RESERVED_NAMES:
+            add(header, _RESERVED, reg.name)
+        if reg.name in seen:
+            add(header, f"duplicate regressor (also #{seen[reg.name]}); list each "
+                "variable once with all its lags", reg.name)
+        else:
+            seen[reg.name] = i
+    model_vars = {spec.outcome, *seen}
+    for name in spec.extra_instruments:
+        if name in model_vars:
+            add("[instruments] extra", f"{fmt(name)} is already a model variable; "
+                "list only additional instrument columns", list(spec.extra_instruments))
+        elif name in (spec.unit, spec.period):
+            add("[instruments] extra", f"{fmt(name)} is the unit or period column",
+                list(spec.extra_instruments))
+
+
+_LAGS = (("instruments", "first_lag"), ("instruments", "last_lag"))
+
+
+def _lag_window(spec: Spec, r: Reader) -> None:
+    if spec.last_lag is not None and spec.last_lag < spec.first_lag and r.ok(*_LAGS):
+        r.add("[instruments] last_lag", f"is below first_lag = {spec.first_lag}; "
+              "the lag window would be empty", spec.last_lag)
+
+
+def _focus(spec: Spec, r: Reader) -> None:
+    # the labels are only known when the outcome lags and the regressors' names and
+    # lags parsed (a bad role does not change them)
+    if not r.ok(("model", "outcome_lags")) or any(
+            p[:2] == ("model", "regressors") and (len(p) == 2 or p[-1] in ("name", "lags"))
+            for p in r.bad_paths):
+        return
+    labels = term_labels(spec)
+    for term in spec.focus:
+        if term in labels:
+            continue
+        if term == "const" or term.startswith("period["):
+            msg = f"{fmt(term)}: the constant and period dummies cannot be focus terms"
+        else:
+            hint = closest(term, labels)
+            msg = f"{fmt(term)} is not a term of the model"
+            if hint:
+                msg += f" (did you mean {fmt(hint)}?)"
+        msg += "; terms: " + ", ".join(labels)
+        r.add("[audit] focus", msg, list(spec.focus))
+
+
+def _vary(spec: Spec, r: Reader) -> None:
+    add, vary = r.add, spec.vary
+    lags_ok = r.ok(*_LAGS, ("audit", "vary", "first_lag"), ("audit", "vary", "last_lag"))
+    first_lags = set(vary.first_lag) | {spec.first_lag}
+    for value in (vary.last_lag if lags_ok else ()):
+        if value is not None and value < min(first_lags):
+            add("[audit.vary] last_lag", f"{value} is below every first_lag tried "
+                f"({', '.join(map(str, sorted(first_lags)))}); no variant could use it",
+                ["all" if v is None else v for v in vary.last_lag])
+    if spec.last_lag is not None and lags_ok:
+        for value in vary.first_lag:
+            if value > spec.last_lag and not any(v is None or v >= value for v in vary.last_lag):
+                add("[audit.vary] first_lag", f"{value} is above last_lag = {spec.last_lag} "
+                    "and no varied last_lag reaches it; no variant could use it",
+                    list(vary.first_lag))
+    names = [reg.name for reg in spec.regressors]
+    for reg, _roles in vary.roles:
+        if reg not in names:
+            hint = closest(reg, names)
+            add(f"[audit.vary.roles] {key_text(reg)}", "is not a regressor of the model"
+                + (f" (did you mean {fmt(hint)}?)" if hint else
+                   ("; regressors: " + ", ".join(dict.fromkeys(names)) if names
+                    else "; the model has none")))
+    seen = [spec.sample.name]
+    for i, s in enumerate(vary.samples, start=1):
+        head = f"[[audit.vary.sample]] #{i} ({key_text(s.name)})"
+        if s.name in seen:
+            add(f"{head} name", "is used by another sample; give each a distinct name", s.name)
+        seen.append(s.name)
+        # compare restrictions only when both samples were read as written
+        if (r.ok(("sample",), ("audit", "vary", "sample", i))
+                and dataclasses.replace(s, name=spec.sample.name) == spec.sample):
+            add(head, "has the same restrictions as the base sample; it would repeat it")
