@@ -389,7 +389,7 @@ def _scale_workload(sizes: Sizes) -> dict:
         out.ratios.append((f"peak memory at N = {n3:,} / 8 GB (aim)",
                            results[n3]["peak_rss"] / (8 * GB), 1.0, None))
     try:
-        from .core.estimator import DEFAULT_MEMORY_MB, MEMORY_ENV
+        from .core.engine import DEFAULT_MEMORY_MB, MEMORY_ENV
         budget = os.environ.get(MEMORY_ENV) or DEFAULT_MEMORY_MB
     except ImportError:  # an older core (the bench also measures earlier versions)
         MEMORY_ENV, budget = "ROBUSTGMM_MEMORY_MB", "default"

@@ -239,11 +239,17 @@ def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
         lines += ["", "Specification tests",
                   f"  {'test':<{width}}  {'statistic':>10}  {'df':>4}  {'p':>7}"]
         for name, t in rows:
+            if getattr(t, "reason", None):  # not computed validly: say why, show no number
+                lines.append(f"  {name:<{width}}  {t.reason}")
+                continue
             df = "" if t.df is None else str(t.df)
             lines.append(f"  {name:<{width}}  {_num(t.statistic, 10, 3)}  {df:>4}  {_p(t.p_value)}")
         if dh:
             lines.append("  difference-in-Hansen (excluding each instrument group):")
             for group, t in dh:
+                if getattr(t, "reason", None):
+                    lines.append(f"  {'  ' + group:<{width}}  {t.reason}")
+                    continue
                 df = "" if t.df is None else str(t.df)
                 lines.append(f"  {'  ' + group:<{width}}  {_num(t.statistic, 10, 3)}  "
                              f"{df:>4}  {_p(t.p_value)}")

@@ -92,7 +92,8 @@ VARIANTS = Table("variants.csv", (
     Column("instruments_per_unit", "float", "instruments / units"),
     Column("hansen_p", "float", "Hansen J p-value"),
     Column("hansen_df", "int", "Hansen J degrees of freedom"),
-    Column("sargan_p", "float", "Sargan p-value (not robust to heteroskedasticity)"),
+    Column("sargan_p", "float",
+           "Sargan p-value (not robust to heteroskedasticity; difference GMM only)"),
     Column("ar1_p", "float", "Arellano-Bond AR(1) p-value, differenced residuals"),
     Column("ar2_p", "float", "Arellano-Bond AR(2) p-value, differenced residuals"),
     Column("diff_hansen_level_p", "float",
@@ -104,6 +105,9 @@ VARIANTS = Table("variants.csv", (
     Column("ar_ols", "float", "pooled OLS estimate on the variant's sample"),
     Column("ar_fe", "float", "within (fixed-effects) estimate on the variant's sample"),
     Column("in_bounds", "bool", "the GMM estimate lies between the within and OLS estimates"),
+    Column("unavailable_tests", "text",
+           "tests not reported because they would not have their stated distribution, "
+           "each 'name: reason', separated by ' | ' (e.g. Sargan in system GMM)"),
     Column("evidence", "text", "acceptable, untestable, rejected, failed or skipped"),
     Column("acceptable", "bool", "evidence is acceptable: estimated and no rejection rule fired"),
     Column("duplicate_of", "text",
@@ -166,7 +170,7 @@ FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings"
 FIT_TERM_KEYS = ("estimate", "std_error", "z", "p_value")
 FIT_TEST_KEYS = ("ar1", "ar2", "sargan", "hansen", "difference_hansen")
 FIT_COUNT_KEYS = ("observations", "units", "instruments", "periods", "parameters",
-                  "instruments_per_unit")
+                  "redundant_instruments", "instruments_per_unit")
 
 
 # ---------------------------------------------------------------------------

@@ -23,3 +23,8 @@ class EstimationError(Exception):
 
 class UnderidentifiedError(EstimationError):
     """Fewer instruments than parameters (or too few observations): nothing to estimate."""
+
+
+class RankConditionError(UnderidentifiedError):
+    """Enough instruments, but a term that no instrument moves (rank of Z'X below the
+    number of parameters): only the data show it, so in an audit the variant fails."""

@@ -134,6 +134,15 @@ def _p(test) -> float:
     return np.nan if not test or test.get("p_value") is None else float(test["p_value"])
 
 
+def _unavailable(fit: dict) -> str:
+    """The tests of a fit that are not reported, each with its reason ("name: reason",
+    joined by " | "): e.g. Sargan in system GMM, a difference-in-Hansen group whose
+    removal leaves the model unidentified."""
+    items = [(name, t) for name, t in fit["tests"].items() if t]
+    items += [(f"difference-in-Hansen {g}", t) for g, t in fit["difference_hansen"].items() if t]
+    return " | ".join(f"{name}: {t['reason']}" for name, t in items if t.get("reason"))
+
+
 def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     columns = grid.setting_columns(spec)
     vrows, erows, brows = [], [], []
@@ -144,8 +153,8 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
         row["duplicate_of"] = getattr(v, "duplicate_of", "")
         status = v.status if o is None else o.status
         reason = v.reason if o is None else o.reason
-        if status == runner.FAILED and grid.is_order_condition(reason):
-            status = SKIPPED  # the order condition is an impossible combination, as in the plan
+        if status == runner.FAILED and o is not None and grid.is_underidentified(o.error_type):
+            status = SKIPPED  # not identified: an impossible combination, as in the plan
         row.update(status=status, reason=reason, instruments=v.instruments,
                    parameters=v.parameters, units=v.units, observations=None)
         fit = o.fit if (o is not None and o.status == runner.OK) else None
@@ -153,7 +162,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
         row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, ar1_p=np.nan, ar2_p=np.nan,
                    diff_hansen_level_p=np.nan, std_error_kind=None, ar_term=None,
                    ar_coefficient=np.nan, ar_ols=np.nan, ar_fe=np.nan, in_bounds=None,
-                   warnings="")
+                   unavailable_tests="", warnings="")
         if fit is not None:
             c = fit["counts"]
             tests = fit["tests"]
@@ -165,6 +174,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                        ar2_p=_p(tests.get("ar2")),
                        diff_hansen_level_p=_p(fit["difference_hansen"].get(verdicts.LEVEL_GROUP)),
                        std_error_kind=fit["std_error_kind"],
+                       unavailable_tests=_unavailable(fit),
                        warnings=" | ".join(fit.get("warnings", [])))
             gmm = {t["term"]: t["estimate"] for t in fit["terms"]}
             for t in fit["terms"]:

@@ -16,6 +16,10 @@ Planning (:func:`plan`) looks at the data. A variant is *skipped*, with the reas
 stated, only when it cannot be estimated or would repeat another variant exactly:
 
 * ``last_lag < first_lag``: the lag window is empty;
+* settings invalid by construction (the core's ``invalid_reason``, the one place
+  this rule lives): ``first_lag = 1`` (the level at t−1 is correlated with the
+  transformed error) and conventional errors with one-step system GMM (the one-step
+  weight is not proportional to the covariance of the stacked errors);
 * ``first_lag`` beyond the panel: no period has a level that many periods back
   (a panel of ``P`` periods has lags up to ``P - 1``);
 * the model's own lags leave no transformed equation (``max lag + 1 > P - 1``);
@@ -35,8 +39,8 @@ runner records it as *failed*, like any other estimation failure.
 Everything else is estimable and is *planned*, even when a setting makes no
 difference on these data (e.g. collapsed vs per-period with two periods): the audit
 shows that it made no difference rather than hiding the variant. Settings that are
-unusual but well defined (conventional errors with iterated weighting, one-step
-errors with ``errors = "conventional"``) are not impossible either.
+unusual but well defined (conventional errors with iterated weighting, or with
+one-step difference GMM) are not impossible either.
 
 Instrument and parameter counts come from the core before any estimation
 (:func:`design_counts`; the plan that ``robustgmm audit --plan`` prints).
@@ -178,8 +182,8 @@ def _shown(column: str, value: Any) -> Any:
 def expand(spec: Spec) -> list[Variant]:
     """All variants of ``spec`` (base first, then the product grid), deduplicated.
 
-    Static skips (those that need no data) are applied here: ``last_lag <
-    first_lag``.
+    Static skips (those that need no data) are applied here: settings invalid by
+    construction and ``last_lag < first_lag``.
     """
     dims = _dimensions(spec)
     columns = [c for c, _, _ in dims]
@@ -209,7 +213,10 @@ def expand(spec: Spec) -> list[Variant]:
     variants = []
     for order, (vspec, shown, is_base, digest) in enumerate(unique, start=1):
         status, reason = PLANNED, ""
-        if vspec.last_lag is not None and vspec.last_lag < vspec.first_lag:
+        invalid = _core().invalid_reason(vspec)
+        if invalid:
+            status, reason = SKIPPED, invalid
+        elif vspec.last_lag is not None and vspec.last_lag < vspec.first_lag:
             status = SKIPPED
             reason = (f"last_lag = {vspec.last_lag} is below first_lag = {vspec.first_lag}: "
                       "the instrument lag window is empty")
@@ -373,7 +380,7 @@ def _with_counts(v: Variant, panel) -> Variant:
         mask = core.estimation_sample(v.spec, panel)
     except EstimationError as exc:
         message = _one_line(exc)
-        if isinstance(exc, UnderidentifiedError) or is_order_condition(message):
+        if isinstance(exc, UnderidentifiedError):
             # the order condition: an impossible combination, skipped with its counts
             return dataclasses.replace(v, status=SKIPPED, reason=message)
         # a property of the data (no observations left, no variation): the variant
@@ -389,11 +396,11 @@ def _with_counts(v: Variant, panel) -> Variant:
     return filled
 
 
-def is_order_condition(message: str) -> bool:
-    """Whether a recorded failure message is the order condition or too few
-    observations (the core raises :class:`UnderidentifiedError` with these wordings;
-    the runner keeps only the message)."""
-    return message.startswith(("fewer instruments", "only "))
+def is_underidentified(error_type: str) -> bool:
+    """Whether a recorded failure's exception type is :class:`UnderidentifiedError`
+    (the order or rank condition fails, or too few observations): the variant is an
+    impossible combination, shown as skipped. Decided by type, never by message."""
+    return error_type == UnderidentifiedError.__name__
 
 
 def _one_line(exc: BaseException) -> str:

@@ -94,8 +94,11 @@ def _num(x) -> float | None:
 def _test(t) -> dict | None:
     if t is None:
         return None
-    return {"statistic": _num(t.statistic), "p_value": _num(t.p_value),
-            "df": None if getattr(t, "df", None) is None else int(t.df)}
+    out = {"statistic": _num(t.statistic), "p_value": _num(t.p_value),
+           "df": None if getattr(t, "df", None) is None else int(t.df)}
+    if getattr(t, "reason", None):
+        out["reason"] = t.reason  # a test that cannot be computed validly, and why
+    return out
 
 
 def fit_record(result, spec) -> dict:
@@ -130,10 +133,11 @@ def fit_record(result, spec) -> dict:
 
 def _failure(exc: BaseException) -> dict:
     if isinstance(exc, EstimationError):  # a property of the model and data: cacheable
-        return {"status": FAILED, "reason": one_line(exc), "cacheable": True}
+        return {"status": FAILED, "reason": one_line(exc), "cacheable": True,
+                "error_type": type(exc).__name__}
     # a bug or a numerical breakdown: isolate it, and do not cache it
     return {"status": FAILED, "reason": f"{type(exc).__name__}: {one_line(exc)}",
-            "cacheable": False}
+            "cacheable": False, "error_type": type(exc).__name__}
 
 
 def estimate_group(specs, panel, fit: Callable | None = None,
@@ -290,6 +294,8 @@ class Outcome:
     bounds: dict | None
     seconds: float
     cached: bool
+    #: the exception type of a failure (``UnderidentifiedError``, ...), "" otherwise
+    error_type: str = ""
 
 
 @dataclass(frozen=True)
@@ -628,4 +634,5 @@ def _worker_died(exc: BaseException) -> bool:
 def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:
     return Outcome(variant=vid, status=payload["status"], reason=payload["reason"],
                    fit=payload.get("fit"), bounds=payload.get("bounds"),
-                   seconds=float(payload.get("seconds", 0.0)), cached=cached)
+                   seconds=float(payload.get("seconds", 0.0)), cached=cached,
+                   error_type=str(payload.get("error_type", "")))

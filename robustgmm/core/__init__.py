@@ -2,6 +2,14 @@
 
 It knows nothing of files or audits: it takes a :class:`robustgmm.spec.Spec` and a
 :class:`robustgmm.data.Panel` and returns a :class:`FitResult`.
+
+Modules, one job each: ``design`` (rows, regressors, instrument columns, chunk
+arrays), ``moments`` (batched sums over units), ``engine`` (chunked passes within a
+memory budget), ``problem`` (identification, moment sums, GMM estimators),
+``covariance`` (variance estimators by (steps, errors)), ``diagnostics``
+(AR(m), Sargan, Hansen, difference-in-Hansen), ``family`` (the fit and shared
+work), ``results`` (the immutable result record), ``linalg`` (small rescaled
+factorisations).
 """
 from __future__ import annotations
 
@@ -10,16 +18,19 @@ import numpy as np
 from ..data import Panel
 from ..spec import Spec
 from .design import Design
-from .estimator import GMMProblem, fit, fit_family, share_key
+from .family import fit, fit_family, invalid_reason, share_key
+from .problem import GMMProblem
 from .results import Counts, FitResult, TermEstimate, TestResult
 
-__all__ = ["fit", "fit_family", "share_key", "count_instruments", "estimation_sample", "FitResult", "TermEstimate",
-           "TestResult", "Counts", "Design", "GMMProblem"]
+__all__ = ["fit", "fit_family", "share_key", "invalid_reason", "count_instruments",
+           "estimation_sample", "FitResult", "TermEstimate", "TestResult", "Counts", "Design",
+           "GMMProblem"]
 
 
 def count_instruments(spec: Spec, panel: Panel) -> int:
     """Number of instrument columns the model uses on this panel (after dropping
-    empty columns and the instruments of collinear period dummies)."""
+    empty columns, redundant time moments and the instruments of dropped period
+    dummies)."""
     return GMMProblem(spec, panel).L
 
 

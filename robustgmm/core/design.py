@@ -31,10 +31,14 @@ Instruments (all zero where a row or a source value is missing):
   transformed value in the transformed equation and the first difference in the
   level equation (valid when the variable's correlation with the unit effect is
   constant over time, the same condition that system GMM imposes on the others).
-* time effects: in difference GMM the transformed period dummies; in system GMM the
-  constant and the period dummies in the level equation only. Their moments in the
-  transformed equation would repeat the level ones (a differenced residual is the
-  difference of two level residuals), which makes the robust weight matrix singular.
+* time effects: the transformed period dummies in the transformed equation and,
+  in system GMM, the constant and the period dummies in the level equation. In
+  system GMM most transformed-equation time moments repeat level ones (a
+  differenced residual is the difference of two level residuals), but not all: the
+  first transformed row involves the level shock of a period without a level row,
+  and with attrition more rows do. :meth:`Design.time_functionals` expresses each
+  time moment as a linear function of the level residuals, and the estimator keeps
+  those that are not implied by the ones before them (level moments first).
 """
 from __future__ import annotations
 
@@ -44,7 +48,7 @@ import numpy as np
 
 from ..data import Panel
 from ..errors import EstimationError
-from ..options import LEVEL_GROUP
+from ..options import LEVEL_GROUP, Equations, Form, Role, Transform, parse
 from ..spec import CONST_LABEL, Spec, period_label, term_label
 
 TRANSFORMED = 0
@@ -114,8 +118,27 @@ class Design:
     def __init__(self, spec: Spec, panel: Panel):
         self.spec = spec
         self.panel = panel
-        self.system = spec.equations == "system"
-        self.fod = spec.transform == "fod"
+        match parse(Equations, spec.equations):
+            case Equations.SYSTEM:
+                self.system = True
+            case Equations.DIFFERENCE:
+                self.system = False
+            case other:
+                raise ValueError(f"unknown equations {other!r}")
+        match parse(Transform, spec.transform):
+            case Transform.FOD:
+                self.fod = True
+            case Transform.FD:
+                self.fod = False
+            case other:
+                raise ValueError(f"unknown transform {other!r}")
+        match parse(Form, spec.form):
+            case Form.COLLAPSED:
+                self.collapsed = True
+            case Form.PER_PERIOD:
+                self.collapsed = False
+            case other:
+                raise ValueError(f"unknown form {other!r}")
         missing = [c for c in spec.used_columns() if c not in panel.values]
         if missing:
             raise EstimationError(f"columns missing from the panel: {', '.join(missing)}")
@@ -127,16 +150,13 @@ class Design:
         self.extra_terms = [Term(v, 0, term_label(v, 0)) for v in spec.extra_instruments]
         self.term_roles = []
         for reg in spec.regressors:
-            self.term_roles.extend([reg.role] * len(reg.lags))
+            self.term_roles.extend([parse(Role, reg.role)] * len(reg.lags))
         self.term_roles = ["outcome"] * len(spec.outcome_lags) + self.term_roles
         self._global_masks()
         self._x_columns()
         self._instrument_layout()
 
     # ------------------------------------------------------------------ rows
-    def _term_levels(self, var_block: dict, lo: int, hi: int, term: Term) -> np.ndarray:
-        return _shift(var_block[term.var][lo:hi], term.lag)
-
     def _complete(self, values: dict) -> np.ndarray:
         spec = self.spec
         ok = ~np.isnan(values[spec.outcome])
@@ -216,16 +236,26 @@ class Design:
 
     # ------------------------------------------------------------ instruments
     def _gmm_windows(self):
-        """(variable, first lag, last lag) of each lagged-level instrument set."""
+        """(variable, first lag, last lag) of each lagged-level instrument set.
+
+        The outcome and endogenous regressors use lags ``first_lag .. last_lag``;
+        predetermined ones one lag sooner, ``max(first_lag − 1, 1) .. max(last_lag
+        − 1, 1)`` (lag 0 would be correlated with the differenced shock); exogenous
+        ones instrument themselves (no window)."""
         spec = self.spec
         first = spec.first_lag
         last = spec.last_lag if spec.last_lag is not None else self.P
         out = [(spec.outcome, first, last)]
         for reg in spec.regressors:
-            if reg.role == "endogenous":
-                out.append((reg.name, first, last))
-            elif reg.role == "predetermined":
-                out.append((reg.name, max(first - 1, 1), max(last - 1, 1)))
+            match parse(Role, reg.role):
+                case Role.ENDOGENOUS:
+                    out.append((reg.name, first, last))
+                case Role.PREDETERMINED:
+                    out.append((reg.name, max(first - 1, 1), max(last - 1, 1)))
+                case Role.EXOGENOUS:
+                    pass
+                case other:
+                    raise ValueError(f"unknown role {other!r}")
         return out
 
     def _instrument_layout(self):
@@ -249,7 +279,7 @@ class Design:
         # rows per period with at least one unit, used to drop empty columns early
         complete = self._complete(values)
         rows_t, rows_l = self._rows_from_complete(complete)
-        collapsed = spec.form == "collapsed"
+        collapsed = self.collapsed
 
         for var, lo, hi in self._gmm_windows():
             vi = self.var_index[var]
@@ -293,7 +323,7 @@ class Design:
                     entry(LEVEL, t)["dif"].append((vi, src, c))
         # exogenous regressors and extra columns: "own" entries point at the
         # augmented transformed/level arrays (terms + extra terms)
-        own_terms = [j for j, role in enumerate(self.term_roles) if role == "exogenous"]
+        own_terms = [j for j, role in enumerate(self.term_roles) if role == Role.EXOGENOUS]
         own_terms += [len(self.terms) + j for j in range(len(self.extra_terms))]
         all_terms = self.terms + self.extra_terms
         n_terms = len(self.terms)
@@ -317,7 +347,7 @@ class Design:
             if kind not in ("const", "dummy"):
                 continue
             label = self.x_labels_all[k]
-            if kind == "dummy" and not self.system:
+            if kind == "dummy":
                 c = new_col("time effects", TRANSFORMED, f"{label} (transformed)", dep=k)
                 for t in np.flatnonzero(rows_t_any):
                     entry(TRANSFORMED, t)["own"].append((k, c))
@@ -415,6 +445,51 @@ class Design:
         )
 
     # ------------------------------------------------------------- summaries
+    def time_columns(self) -> np.ndarray:
+        """Instrument columns of the time effects (the constant and period dummies),
+        level-equation columns first: the order in which redundant ones are found."""
+        cols = [j for j, c in enumerate(self.z_columns) if c.group == "time effects"]
+        return np.asarray(sorted(cols, key=lambda j: (self.z_columns[j].equation != LEVEL, j)),
+                          dtype=np.int64)
+
+    def time_functionals(self, x_tr: np.ndarray, x_lv: np.ndarray | None, complete: np.ndarray,
+                         cols: np.ndarray) -> np.ndarray:
+        """Each time-effect moment of each unit as a linear function of the unit's
+        level residuals: ``A_i`` (n, P, len(cols)) with ``g_ij = Σ_p A_i[p, j] e_ip``.
+
+        The instrument of a time column is the dummy (or constant) column of its
+        equation (``x_tr``/``x_lv``, zero where a row is absent). A first-difference
+        row ``t`` is ``e_t − e_{t−1}``; a forward deviation stored at row ``s + 1`` is
+        ``c_s (e_s − Σ_{later complete q} e_q / n_s)`` (Arellano & Bover 1995); a
+        level row ``t`` is ``e_t``. Two moments repeat each other for every residual
+        exactly when these functionals are linearly dependent, i.e. when
+        ``Σ_i A_i'A_i`` is singular.
+        """
+        n, P = complete.shape
+        A = np.zeros((n, P, len(cols)))
+        for pos, j in enumerate(cols):
+            k = int(self.z_xdep[j])
+            if self.z_columns[j].equation == LEVEL:
+                A[:, :, pos] += x_lv[:, :, k]
+                continue
+            z = x_tr[:, :, k]
+            if not self.fod:
+                A[:, :, pos] += z
+                A[:, :-1, pos] -= z[:, 1:]
+                continue
+            later = _later_count(complete)
+            ok = complete & (later > 0)
+            cnt = np.where(ok, later, 1).astype(float)
+            c = np.where(ok, np.sqrt(cnt / (cnt + 1.0)), 0.0)
+            zs = np.zeros((n, P))
+            zs[:, :-1] = z[:, 1:]  # the deviation of period s, stored at row s + 1
+            A[:, :, pos] += c * zs
+            w = np.cumsum(c / cnt * zs, axis=1)
+            prior = np.zeros((n, P))
+            prior[:, 1:] = w[:, :-1]
+            A[:, :, pos] -= np.where(complete, prior, 0.0)
+        return A
+
     def instrument_groups(self) -> dict[str, np.ndarray]:
         """Positions (within the kept instruments) of each instrument group."""
         groups: dict[str, list[int]] = {}

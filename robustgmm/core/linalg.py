@@ -41,20 +41,27 @@ def _cholesky_inverse(m: np.ndarray, min_rcond: float) -> np.ndarray | None:
     return upper + np.triu(inv, 1).T if size else upper
 
 
-def sym_pinv(matrix: np.ndarray, rtol: float | None = None) -> tuple[np.ndarray, int]:
-    """Moore–Penrose inverse of a symmetric positive semi-definite matrix and its rank.
+def sym_pinv(matrix: np.ndarray, rtol: float | None = None,
+             scale: np.ndarray | None = None) -> tuple[np.ndarray, int]:
+    """A generalised inverse of a symmetric positive semi-definite matrix, and its rank.
 
-    With ``d = diag(M)^(-1/2)``, ``M⁺ = d · (d M d)⁺ · d``; the eigenvalues of the
-    rescaled matrix below ``rtol · max eigenvalue`` are treated as zero. For a
-    non-singular matrix this is the ordinary inverse (computed from a Cholesky
-    factor when the matrix is well conditioned, see the module docstring).
+    With ``d = diag(M)^(-1/2)`` (or the given ``scale`` vector ``d``),
+    ``M⁻ = d · (d M d)⁺ · d``; the eigenvalues of the rescaled matrix below
+    ``rtol · max eigenvalue`` are treated as zero. Rescaling first makes the result
+    and the rank independent of the units of the rows and columns. For a
+    non-singular matrix this is the ordinary inverse whatever ``d`` (computed from a
+    Cholesky factor when the matrix is well conditioned, see the module docstring).
+    A fixed ``scale`` (one that does not depend on the matrix) makes the map
+    ``M ↦ M⁻`` differentiable with the formula of Golub & Pereyra (1973) at
+    constant rank, which the Windmeijer correction needs (:mod:`.covariance`).
     """
     m = np.asarray(matrix, dtype=float)
     size = m.shape[0]
     if size == 0:
         return np.zeros((0, 0)), 0
     diag = np.diag(m).copy()
-    scale = np.where(diag > 0, 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0)), 0.0)
+    if scale is None:
+        scale = _unit_diagonal_scale(diag)
     scaled = m * scale[:, None] * scale[None, :]
     scaled = 0.5 * (scaled + scaled.T)
     if rtol is None:
@@ -72,55 +79,121 @@ def sym_pinv(matrix: np.ndarray, rtol: float | None = None) -> tuple[np.ndarray,
     return 0.5 * (inv + inv.T), int(keep.sum())
 
 
+def scaled_pinv_parts(matrix: np.ndarray, scale: np.ndarray, rtol: float | None = None):
+    """``(M̂⁺, P̂⊥)`` of the rescaled ``M̂ = d M d`` (``d`` = ``scale``): its
+    Moore–Penrose inverse (same eigenvalue cut as :func:`sym_pinv`) and the
+    projector on its null space, ``I − M̂ M̂⁺``."""
+    m = np.asarray(matrix, dtype=float)
+    size = m.shape[0]
+    scaled = m * scale[:, None] * scale[None, :]
+    scaled = 0.5 * (scaled + scaled.T)
+    if rtol is None:
+        rtol = size * np.finfo(float).eps * 10
+    vals, vecs = np.linalg.eigh(scaled)
+    top = vals.max() if vals.size else 0.0
+    keep = vals > rtol * top if top > 0 else np.zeros_like(vals, dtype=bool)
+    pinv = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T
+    null = vecs[:, ~keep] @ vecs[:, ~keep].T
+    return 0.5 * (pinv + pinv.T), 0.5 * (null + null.T)
+
+
+def _unit_diagonal_scale(diag: np.ndarray) -> np.ndarray:
+    """``diag^(-1/2)`` where positive, 0 elsewhere (a zero row stays zero)."""
+    positive = diag > 0
+    return np.where(positive, 1.0 / np.sqrt(np.where(positive, diag, 1.0)), 0.0)
+
+
 def independent_columns(gram: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
     """Indices of the columns kept when a Gram matrix ``X'X`` is scanned in order.
 
     Column ``j`` is kept when its residual sum of squares after projection on the
     columns already kept exceeds ``rtol · X_j'X_j``; an all-zero column is dropped.
     This keeps the earliest columns, so regressors listed first win over dummies.
+    The Gram matrix is rescaled to unit diagonal first, so that the decision does
+    not depend on the units of the columns (a regressor in units rather than
+    millions must not change which dummies are kept).
     """
+    gram = np.asarray(gram, dtype=float)
+    scale = _unit_diagonal_scale(np.diag(gram).copy())
+    unit = gram * scale[:, None] * scale[None, :]
     kept: list[int] = []
-    for j in range(gram.shape[0]):
-        own = gram[j, j]
-        if not own > 0:
+    for j in range(unit.shape[0]):
+        if not scale[j] > 0:
             continue
         if kept:
-            sub = gram[np.ix_(kept, kept)]
-            cross = gram[kept, j]
+            sub = unit[np.ix_(kept, kept)]
+            cross = unit[kept, j]
             coef = np.linalg.lstsq(sub, cross, rcond=None)[0]
-            resid = own - cross @ coef
+            resid = 1.0 - cross @ coef
         else:
-            resid = own
-        if resid > rtol * own:
+            resid = 1.0
+        if resid > rtol:
             kept.append(j)
     return np.asarray(kept, dtype=int)
 
 
+def identified_columns(cross: np.ndarray, row_scale: np.ndarray, col_scale: np.ndarray,
+                       rtol: float = 1e-8) -> np.ndarray:
+    """Boolean mask of the columns of ``Z'X`` that add to its rank, scanned in order.
+
+    The rank condition of GMM identification is ``rank(Z'X) = K`` (Hansen 1982;
+    Hayashi 2000, section 3.2). ``Z'X`` is first rescaled, ``D_z Z'X D_x`` with
+    ``row_scale``/``col_scale`` the reciprocal root sums of squares of the
+    instrument and regressor columns, so that the decision is free of units; column
+    ``j`` counts as identified when its component orthogonal to the earlier
+    identified columns has norm above ``rtol`` times its own norm (a Householder QR
+    without pivoting in the given order: ``|R_jj| / ||M_j||``).
+    """
+    m = np.asarray(cross, dtype=float) * row_scale[:, None] * col_scale[None, :]
+    K = m.shape[1]
+    if K == 0:
+        return np.zeros(0, dtype=bool)
+    norms = np.sqrt((m * m).sum(axis=0))
+    ok = np.zeros(K, dtype=bool)
+    if m.shape[0] >= K:
+        r = np.linalg.qr(m, mode="r")
+        ok = np.abs(np.diag(r)) > rtol * np.where(norms > 0, norms, np.inf)
+        if ok.all():
+            return ok
+    # some column adds nothing: scan again against the identified columns only, so
+    # that a dependent column's rounding residue does not enter the later projections
+    kept: list[int] = []
+    for j in range(K):
+        if not norms[j] > 0:
+            continue
+        col = m[:, j]
+        if kept:
+            basis = m[:, kept]
+            coef = np.linalg.lstsq(basis, col, rcond=None)[0]
+            resid = float(np.linalg.norm(col - basis @ coef))
+        else:
+            resid = float(norms[j])
+        if resid > rtol * norms[j]:
+            kept.append(j)
+    out = np.zeros(K, dtype=bool)
+    out[kept] = True
+    return out
+
+
 def inverse_or_pinv(matrix: np.ndarray) -> np.ndarray:
-    """Inverse of a small symmetric positive semi-definite matrix: from a Cholesky
-    factor of the diagonally rescaled matrix when that is well conditioned, else the ordinary inverse when
-    ``numpy.linalg.matrix_rank`` finds full rank, else :func:`sym_pinv`."""
+    """Inverse of a small symmetric positive semi-definite matrix, always through the
+    diagonally rescaled matrix (so that units do not decide anything): from its
+    Cholesky factor when that is well conditioned, else its ordinary inverse when
+    ``numpy.linalg.matrix_rank`` finds it of full rank, else :func:`sym_pinv`."""
     m = np.asarray(matrix, dtype=float)
     size = m.shape[0]
     if size == 0:
         return np.zeros((0, 0))
     rtol = size * np.finfo(float).eps * 10
-    diag = np.diag(m)
-    if np.all(diag > 0):
-        scale = 1.0 / np.sqrt(diag)
-        scaled = m * scale[:, None] * scale[None, :]
-        inv = _cholesky_inverse(0.5 * (scaled + scaled.T), CHOLESKY_MARGIN * size * rtol)
-        if inv is not None:
-            return inv * scale[:, None] * scale[None, :]
-    if np.linalg.matrix_rank(m) < size:
+    diag = np.diag(m).copy()
+    if not np.all(diag > 0):
         return sym_pinv(m)[0]
-    return np.linalg.inv(m)
-
-
-def solve_sym(matrix: np.ndarray, rhs: np.ndarray) -> np.ndarray:
-    """Solve ``M x = rhs`` for a symmetric positive definite ``M`` (falls back to the
-    pseudo-inverse when ``M`` is singular)."""
-    try:
-        return np.linalg.solve(matrix, rhs)
-    except np.linalg.LinAlgError:
-        return sym_pinv(matrix)[0] @ rhs
+    scale = 1.0 / np.sqrt(diag)
+    scaled = m * scale[:, None] * scale[None, :]
+    scaled = 0.5 * (scaled + scaled.T)
+    inv = _cholesky_inverse(scaled, CHOLESKY_MARGIN * size * rtol)
+    if inv is None:
+        if np.linalg.matrix_rank(scaled) < size:
+            return sym_pinv(m)[0]
+        inv = np.linalg.inv(scaled)
+    return inv * scale[:, None] * scale[None, :]

@@ -63,19 +63,29 @@ class TermEstimate:
 
 @dataclass(frozen=True)
 class TestResult:
+    """A test statistic with its p-value and degrees of freedom. A test that cannot
+    be computed validly has no statistic (NaN) and a one-line ``reason``."""
+
     statistic: float
     p_value: float
     df: int | None = None
+    reason: str | None = None
+
+    @property
+    def available(self) -> bool:
+        return self.reason is None
 
     def to_dict(self) -> dict:
         out = {"statistic": _clean(self.statistic), "p_value": _clean(self.p_value)}
         if self.df is not None:
             out["df"] = int(self.df)
+        if self.reason is not None:
+            out["reason"] = self.reason
         return out
 
     @classmethod
     def from_dict(cls, d: Mapping) -> "TestResult":
-        return cls(_float(d["statistic"]), _float(d["p_value"]), d.get("df"))
+        return cls(_float(d["statistic"]), _float(d["p_value"]), d.get("df"), d.get("reason"))
 
 
 @dataclass(frozen=True)
@@ -87,6 +97,8 @@ class Counts:
     transformed_rows: int
     level_rows: int
     parameters: int
+    #: time-effect moments left out because the others imply them (system GMM)
+    redundant_instruments: int = 0
 
     @property
     def instruments_per_unit(self) -> float:
@@ -150,10 +162,12 @@ class FitResult:
         rows = []
         for name, test in self.tests.items():
             if test is not None:
-                rows.append((name, test.statistic, test.df, test.p_value))
+                rows.append((name, test.statistic, test.df, test.p_value, test.reason or ""))
         for group, test in self.difference_hansen.items():
-            rows.append((f"difference-in-Hansen: {group}", test.statistic, test.df, test.p_value))
-        return pd.DataFrame(rows, columns=["test", "statistic", "df", "p_value"]).set_index("test")
+            rows.append((f"difference-in-Hansen: {group}", test.statistic, test.df, test.p_value,
+                         test.reason or ""))
+        return pd.DataFrame(rows, columns=["test", "statistic", "df", "p_value", "reason"]
+                            ).set_index("test")
 
     def to_dict(self) -> dict:
         """The one record of this fit, JSON-ready (the JSON of ``robustgmm fit --json``).
@@ -175,6 +189,7 @@ class FitResult:
             "counts": {"observations": c.observations, "units": c.units,
                        "instruments": c.instruments, "periods": c.periods,
                        "parameters": c.parameters,
+                       "redundant_instruments": c.redundant_instruments,
                        "instruments_per_unit": _clean(c.instruments_per_unit),
                        "transformed_rows": c.transformed_rows, "level_rows": c.level_rows},
             "settings": dict(self.settings),
@@ -197,7 +212,7 @@ class FitResult:
             std_error_kind=d["std_error_kind"],
             tests={k: (None if t is None else TestResult.from_dict(t)) for k, t in tests.items()},
             difference_hansen={g: TestResult.from_dict(t) for g, t in diff.items()},
-            counts=Counts(**{f: c[f] for f in Counts.__dataclass_fields__}),
+            counts=Counts(**{f: c[f] for f in Counts.__dataclass_fields__ if f in c}),
             warnings=tuple(d["warnings"]),
             vcov=_array(d["vcov"]) if d["vcov"] else np.zeros((0, 0)),
             settings=d["settings"],
