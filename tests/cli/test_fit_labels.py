@@ -35,7 +35,9 @@ last_lag = 3
     (1, "robust", options.CovarianceKind.CLUSTER_ROBUST),
     (2, "robust", options.CovarianceKind.WINDMEIJER),
     ('"iterated"', "robust", options.CovarianceKind.WINDMEIJER_ITERATED),
-    (1, "conventional", options.CovarianceKind.CONVENTIONAL),
+    # two-step: conventional one-step errors are invalid in system GMM (the default
+    # equations), an input error (robustgmm.core.invalid_reason)
+    (2, "conventional", options.CovarianceKind.CONVENTIONAL),
 ])
 def test_summary_labels_every_kind_the_core_emits(tmp_path, capsys, steps, errors, kind):
     simulate_panel(120, 6, seed=3).to_csv(tmp_path / "panel.csv", index=False)

@@ -235,6 +235,21 @@ def test_conventional_one_step_system_errors_are_an_input_error():
         assert not invalid_reason(sim_spec(errors="conventional", **kw))
 
 
+def test_fit_command_exits_2_with_one_line_for_invalid_settings(tmp_path, capsys):
+    from robustgmm.cli import main
+
+    simulate_panel(120, 6, seed=3).to_csv(tmp_path / "panel.csv", index=False)
+    for method, words in [('steps = 1\nerrors = "conventional"', "conventional"),
+                          ('steps = 2\n[instruments]\nfirst_lag = 1', "first_lag = 1")]:
+        (tmp_path / "model.toml").write_text(
+            '[data]\nfile = "panel.csv"\nunit = "unit"\nperiod = "period"\n'
+            '[model]\noutcome = "y"\n[[model.regressors]]\nname = "w"\n'
+            f'[method]\n{method}\n')
+        assert main(["fit", str(tmp_path / "model.toml")]) == 2
+        err = capsys.readouterr().err.strip().splitlines()
+        assert len(err) == 1 and words in err[0] and "Traceback" not in err[0]
+
+
 def test_grid_skips_the_invalid_combinations_with_their_reason():
     from robustgmm.audit import grid
 
