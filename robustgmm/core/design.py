@@ -467,6 +467,11 @@ class Design:
         """
         n, P = complete.shape
         A = np.zeros((n, P, len(cols)))
+        if self.fod:
+            later = _later_count(complete)
+            ok = complete & (later > 0)
+            cnt = np.where(ok, later, 1).astype(float)
+            c = np.where(ok, np.sqrt(cnt / (cnt + 1.0)), 0.0)
         for pos, j in enumerate(cols):
             k = int(self.z_xdep[j])
             if self.z_columns[j].equation == LEVEL:
@@ -477,10 +482,6 @@ class Design:
                 A[:, :, pos] += z
                 A[:, :-1, pos] -= z[:, 1:]
                 continue
-            later = _later_count(complete)
-            ok = complete & (later > 0)
-            cnt = np.where(ok, later, 1).astype(float)
-            c = np.where(ok, np.sqrt(cnt / (cnt + 1.0)), 0.0)
             zs = np.zeros((n, P))
             zs[:, :-1] = z[:, 1:]  # the deviation of period s, stored at row s + 1
             A[:, :, pos] += c * zs

@@ -57,7 +57,7 @@ def panel_and_spec():
 
 
 @pytest.mark.parametrize("changes", [
-    dict(steps=1), dict(steps=2), dict(steps="iterated"), dict(steps=1, errors="conventional"),
+    dict(steps=1), dict(steps=2), dict(steps="iterated"), dict(steps=1, errors="conventional", equations="difference"),
     dict(equations="difference", form="collapsed"), dict(last_lag=2, form="collapsed",
                                                         equations="difference"),
 ])
