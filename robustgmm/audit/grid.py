@@ -380,7 +380,7 @@ def _with_counts(v: Variant, panel) -> Variant:
         mask = core.estimation_sample(v.spec, panel)
     except EstimationError as exc:
         message = _one_line(exc)
-        if isinstance(exc, UnderidentifiedError):
+        if is_underidentified(type(exc).__name__):
             # the order condition: an impossible combination, skipped with its counts
             return dataclasses.replace(v, status=SKIPPED, reason=message)
         # a property of the data (no observations left, no variation): the variant
@@ -397,9 +397,11 @@ def _with_counts(v: Variant, panel) -> Variant:
 
 
 def is_underidentified(error_type: str) -> bool:
-    """Whether a recorded failure's exception type is :class:`UnderidentifiedError`
-    (the order or rank condition fails, or too few observations): the variant is an
-    impossible combination, shown as skipped. Decided by type, never by message."""
+    """Whether a failure's exception type is :class:`UnderidentifiedError` itself (the
+    order condition fails, or too few observations): the variant is an impossible
+    combination, shown as skipped. Its subclass ``RankConditionError`` (a term no
+    instrument moves, which only the data show) is a failed variant. Decided by type,
+    never by message."""
     return error_type == UnderidentifiedError.__name__
 
 

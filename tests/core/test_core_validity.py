@@ -73,6 +73,19 @@ def test_a_term_no_instrument_moves_raises_naming_it():
                                                  "instruments of this variant"):
         fit(spec, panel)
     assert issubclass(RankConditionError, UnderidentifiedError)
+    # in an audit the variant fails with that reason (only the data show it); the
+    # order condition, known from the counts, is a skipped combination: by type
+    from robustgmm.audit import grid, runner
+
+    with pytest.raises(RankConditionError) as info:
+        fit(spec, panel)
+    record = runner._failure(info.value)
+    assert record["error_type"] == "RankConditionError"
+    assert not grid.is_underidentified(record["error_type"])
+    assert grid.is_underidentified(runner._failure(UnderidentifiedError("fewer"))["error_type"])
+    variant = grid.Variant(id="x", order=1, spec=spec, settings=())
+    planned = grid._with_counts(variant, panel)
+    assert planned.status == grid.PLANNED and "x[t-1] is not identified" in planned.reason
 
 
 def test_unidentified_period_dummy_is_dropped_with_a_warning(monkeypatch):
