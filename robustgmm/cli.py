@@ -345,15 +345,29 @@ def _fragile_terms(verdict) -> list[str]:
 
 
 def _audit_summary(result, out: Path, fragile: list[str]) -> str:
+    """What the terminal prints after an audit, read from the verdict (nothing is
+    judged here): the base model's failure first, the counts by evidence class, then
+    each focus term's verdict with its reason."""
+    from .audit.verdicts import AuditVerdict
+    verdict = AuditVerdict.from_dict(result.verdict)
     lines = []
-    variants = getattr(result, "variants", None)
-    if variants is not None and "status" in getattr(variants, "columns", ()):
-        counts = variants["status"].value_counts()
-        lines.append("Variants: " + ", ".join(f"{n} {s}" for s, n in counts.items()))
-    terms = (result.verdict or {}).get("terms", {}) if isinstance(result.verdict, dict) else {}
-    for label, v in terms.items():
-        verdict = v.get("verdict") if isinstance(v, dict) else v
-        lines.append(f"  {label}: {verdict}")
+    if not verdict.base_acceptable and verdict.base_statement:
+        lines.append(verdict.base_statement + " Every verdict is therefore inconclusive.")
+        closest = verdict.closest_acceptable
+        if closest:
+            changed = ", ".join(f"{k} = {v}" for k, v in (closest.get("changed") or {}).items())
+            lines.append(f"Closest acceptable variant: {closest['variant']}"
+                         + (f" ({changed})" if changed else ""))
+    c = verdict.variants
+    text = (f"{c.get('ok', 0)} estimated: {c.get('acceptable', 0)} acceptable, "
+            f"{c.get('untestable', 0)} untestable, {c.get('rejected', 0)} rejected by their "
+            f"tests")
+    if c.get("duplicates"):
+        text += f"; {c['duplicates']} duplicate{'s' if c['duplicates'] != 1 else ''} merged"
+    extra = [f"{c[k]} {k}" for k in ("failed", "skipped") if c.get(k)]
+    lines.append(text + (f" ({', '.join(extra)})" if extra else ""))
+    for t in verdict.terms:
+        lines.append(f"  {t.term}: {t.verdict} — {t.reason}")
     if fragile:
         lines.append("Fragile: " + ", ".join(fragile))
     lines.append(f"Wrote the audit to {out}")

@@ -17,7 +17,8 @@ The folders:
   per-variant tick limit); ``five``: five settings varied, two values each (32
   variants, all estimated); ``slug``: two focus labels that share a file-name slug;
   ``roles``: a regressor's role varied (8 variants); ``skips``: ``last_lag`` a
-  settings column with one value; ``all_failed``: every variant fails.
+  settings column with one value; ``thresholds``: alpha and every verdict threshold
+  changed from its default; ``all_failed``: every variant fails.
 """
 from __future__ import annotations
 
@@ -55,7 +56,8 @@ def _data():
     return frame
 
 
-def _model(vary: dict, *, focus=(AR, FRAGILE, ROBUST), extra_regressors=(), sample=None) -> dict:
+def _model(vary: dict, *, focus=(AR, FRAGILE, ROBUST), extra_regressors=(), sample=None,
+           alpha=None, thresholds=None) -> dict:
     regressors = [{"name": FRAGILE_NAME, "role": "endogenous"},
                   {"name": ROBUST_NAME, "role": "exogenous"},
                   {"name": NOISE_NAME, "role": "exogenous"}]
@@ -67,6 +69,10 @@ def _model(vary: dict, *, focus=(AR, FRAGILE, ROBUST), extra_regressors=(), samp
          "audit": {"focus": list(focus), "vary": vary}}
     if not vary:
         del d["audit"]["vary"]
+    if alpha is not None:
+        d["audit"]["alpha"] = alpha
+    if thresholds:
+        d["audit"]["thresholds"] = dict(thresholds)
     if sample is not None:
         d["sample"] = sample
     return d
@@ -92,6 +98,15 @@ FOLDERS = {
     "roles": _model({"steps": [1, 2], "form": ["per-period", "collapsed"],
                      "roles": {ROBUST_NAME: ["exogenous", "endogenous"]}}),
     "skips": _model({"steps": [1, 2], "last_lag": [4]}),
+    # alpha and every threshold changed (the documents must follow verdict.json)
+    "thresholds": _model({"equations": ["difference", "system"], "steps": [1, 2],
+                          "form": ["per-period", "collapsed"], "last_lag": [2, 4]},
+                         alpha=0.10, thresholds=dict(
+                             hansen_reject=0.02, hansen_too_high=0.5, ar2_reject=0.2,
+                             difference_hansen_reject=0.01, instruments_per_unit=0.05,
+                             spread_in_se=1.5, significant_share=0.8,
+                             uninformative_se_ratio=2.0, instruments_per_unit_warn=0.02,
+                             count_untestable=True)),
     "all_failed": _model({"steps": [1, 2, "iterated"]},
                          sample={"name": "without the first 50",
                                  "exclude": {"column": "tier", "values": ["first"]}}),
@@ -116,3 +131,21 @@ def copy_folder(folder: Path, dest) -> Path:
     dest = Path(dest)
     shutil.copytree(folder, dest)
     return dest
+
+
+def rejudge(folder: Path) -> None:
+    """After a test edits variants.csv, write its verdict columns and verdict.json
+    again, as the audit would have for that table (the rules run in one place)."""
+    import pandas as pd
+    from robustgmm.audit import verdicts
+    folder = Path(folder)
+    manifest = json.loads((folder / "manifest.json").read_text())
+    spec = spec_from_dict(manifest["spec"], base_dir=folder.parent)
+    variants = pd.read_csv(folder / "variants.csv", dtype={"variant": str, "duplicate_of": str})
+    estimates = pd.read_csv(folder / "estimates.csv", dtype={"variant": str})
+    bounds = pd.read_csv(folder / "bounds.csv", dtype={"variant": str})
+    evaluation = verdicts.evaluate(spec, variants.assign(duplicate_of=""), estimates, bounds)
+    for col in ("evidence", "acceptable", "duplicate_of", "flags"):
+        variants[col] = evaluation.columns[col].to_numpy()
+    variants.to_csv(folder / "variants.csv", index=False)
+    (folder / "verdict.json").write_text(json.dumps(evaluation.verdict.to_dict(), indent=2))

@@ -12,16 +12,47 @@ import numpy as np
 
 from .. import __version__
 from .figures import FigureFile, caption
-from .inputs import AuditFolder, Rule
-from .referee import CAUTION, referee_paragraph
+from ..audit.verdicts import Firing
+from ..audit.verdicts import Rule as CatalogueRule
+from .inputs import AuditFolder
+from .referee import CAUTION, referee_paragraphs
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
                       rule_figures_text, summarize, threshold_text, variants_table)
 
 
-def _rule(rule: Rule) -> dict:
-    return {"id": rule.id, "description": rule.description, "effect": rule.effect,
+def _rule(rule: Firing) -> dict:
+    """A rule that fired, with its figures and the threshold it used."""
+    threshold = ({rule.threshold_name: rule.threshold} if rule.threshold_name
+                 and rule.threshold is not None else None)
+    return {"id": rule.id, "description": rule.description, "effect": str(rule.effect),
             "figures": rule_figures_text(rule), "source": rule.source,
-            "threshold": threshold_text(rule.threshold) if rule.threshold not in (None, "") else ""}
+            "threshold": threshold_text(threshold) if threshold else ""}
+
+
+def _catalogue_rule(rule: CatalogueRule, thresholds) -> dict:
+    value = thresholds.get(rule.threshold) if rule.threshold else None
+    return {"id": rule.id, "description": rule.description, "effect": str(rule.effect),
+            "figures": "", "source": rule.source,
+            "threshold": threshold_text({rule.threshold: value}) if rule.threshold else ""}
+
+
+def _drivers(t) -> list[dict]:
+    """The drivers table of a term: setting, value, variants, mean estimate, share
+    significant, shift (Young & Holsteen 2017), largest |shift| first."""
+    return [{"setting": d.setting, "value": d.value, "variants": d.variants,
+             "mean": fmt(d.mean_estimate), "share": fmt(d.share_significant, 2),
+             "shift": fmt(d.shift)} for d in t.drivers]
+
+
+def _closest(s: AuditSummary) -> dict | None:
+    c = s.closest
+    if not c or s.base_acceptable:
+        return None
+    changed = c.get("changed") or {}
+    return {"variant": c["variant"],
+            "changed": ", ".join(f"{k} = {v}" for k, v in changed.items()) or "nothing",
+            "estimates": ", ".join(f"{k} {fmt(v)}" for k, v in (c.get("estimates") or {}).items()),
+            "lines": list(c.get("model_file_lines") or [])}
 
 
 def _title(audit: AuditFolder) -> str:
@@ -42,13 +73,26 @@ def _subtitle(audit: AuditFolder, s: AuditSummary) -> str:
     return "; ".join(parts)
 
 
+def evidence_counts(s: AuditSummary) -> str:
+    """'48 estimated: 25 acceptable, 8 untestable, 15 rejected by their tests; 6
+    duplicates merged' (+ failed and skipped), as the terminal prints it."""
+    text = (f"{s.n_ok} estimated: {s.n_acceptable} acceptable, {s.n_untestable} untestable, "
+            f"{s.n_rejected} rejected by their tests")
+    if s.n_duplicates:
+        text += f"; {s.n_duplicates} duplicate{'s' if s.n_duplicates != 1 else ''} merged"
+    extra = []
+    if s.n_failed:
+        extra.append(f"{s.n_failed} failed")
+    if s.n_skipped:
+        extra.append(f"{s.n_skipped} skipped")
+    return text + (f" ({', '.join(extra)})" if extra else "")
+
+
 def _counts(s: AuditSummary) -> str:
-    text = (f"{s.n_variants} variants: {s.n_ok} estimated, {s.n_failed} failed, "
-            f"{s.n_skipped} skipped as impossible.")
-    if s.has_acceptable:
-        text += (f" {s.n_acceptable} of the estimated variants pass their specification "
-                 f"tests (column \"acceptable\"); the verdicts are judged on those.")
-    return text + " The base model is marked."
+    judged = "acceptable and untestable" if s.count_untestable else "acceptable"
+    return (f"{s.n_variants} variants. {evidence_counts(s)}. Column \"evidence\" gives each "
+            f"variant's class; the verdicts are judged on the {judged} variants that are "
+            f"not duplicates (column \"duplicate_of\"). The base model is marked.")
 
 
 def _truth_rows(s: AuditSummary) -> list[dict]:
@@ -133,8 +177,16 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
             "n_positive": t.n_positive, "n_negative": t.n_negative,
             "n_significant": t.n_significant,
             "n_ok": t.n_ok, "ok_low": fmt(t.ok_low), "ok_high": fmt(t.ok_high),
-            "judged": "acceptable" if s.has_acceptable else "estimated",
+            "judged": "acceptable or untestable" if s.count_untestable else "acceptable",
             "passed": ", ".join(t.passed),
+            "not_evaluated": ", ".join(t.not_evaluated),
+            "reason": t.reason,
+            "n_untestable": t.n_untestable, "n_duplicates": t.n_duplicates,
+            "drivers": _drivers(t),
+            "influence": None if t.influence is None else {
+                "modeling": fmt(t.influence.modeling_sd),
+                "sampling": fmt(t.influence.sampling_sd),
+                "ratio": fmt(t.influence.robustness_ratio, 2)},
             "truth": fmt(t.truth) if t.truth is not None else None,
             "rules": [_rule(r) for r in t.fired],
         })
@@ -158,7 +210,10 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "alpha": f"{audit.alpha:g}",
         "terms": terms,
         "flags": [_rule(r) for r in s.model_flags],
-        "referee": referee_paragraph(audit, s),
+        "referee": referee_paragraphs(audit, s),
+        "base_statement": "" if s.base_acceptable else s.base_statement,
+        "closest": _closest(s),
+        "evidence": evidence_counts(s),
         "truth": _truth_rows(s),
         "truth_note": truth_note,
         "figures": figs,
@@ -169,8 +224,11 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "bounds_rows": bounds_rows,
         "bounds_note": bounds_note,
         "numerical_warnings": numerical_warnings(audit),
-        "catalogue": [_rule(r) for r in rule_catalogue(audit)],
-        "combination": str(audit.verdict_raw.get("combination") or ""),
+        "catalogue": [_catalogue_rule(r, audit.verdict.thresholds)
+                      for r in rule_catalogue(audit)],
+        "combination": audit.verdict.combination,
+        "thresholds": "; ".join(f"{k} = {threshold_text(v)}"
+                                for k, v in audit.verdict.thresholds.items()),
         "provenance": provenance_items(dict(audit.manifest)),
         "version": __version__,
         "fmt_int": fmt_int,

@@ -24,34 +24,11 @@ import numpy as np
 import pandas as pd
 
 from .. import contract
+from ..audit.verdicts import AuditVerdict, Firing, TermVerdict
+from ..audit.verdicts import Rule as VerdictRule
 from ..errors import InputError
 
 VERDICTS = ("robust", "fragile", "inconclusive")
-
-
-@dataclass(frozen=True)
-class Rule:
-    """One rule of the verdict: what it checks, where it comes from, what it found."""
-
-    id: str
-    description: str = ""
-    source: str = ""
-    threshold: Any = None
-    figures: Mapping[str, Any] = field(default_factory=dict)
-    fired: bool = True
-    effect: str = ""  # e.g. "fragile" / "warning" when the audit states it
-
-
-@dataclass(frozen=True)
-class TermVerdict:
-    term: str
-    verdict: str
-    rules: tuple[Rule, ...] = ()
-    details: Mapping[str, Any] = field(default_factory=dict)
-
-    @property
-    def fired(self) -> tuple[Rule, ...]:
-        return tuple(r for r in self.rules if r.fired)
 
 
 @dataclass(frozen=True)
@@ -64,9 +41,8 @@ class AuditFolder:
     bounds: pd.DataFrame
     verdict_raw: Mapping[str, Any]
     manifest: Mapping[str, Any]
-    term_verdicts: tuple[TermVerdict, ...]
-    model_flags: tuple[Rule, ...]
-    rule_catalogue: tuple[Rule, ...]
+    #: verdict.json as the typed record the verdict module wrote
+    verdict: AuditVerdict
     setting_columns: tuple[str, ...]
     base_variant: str
     alpha: float
@@ -78,6 +54,18 @@ class AuditFolder:
     has_acceptable: bool = True
 
     # -- convenient views ---------------------------------------------------
+    @property
+    def term_verdicts(self) -> tuple[TermVerdict, ...]:
+        return self.verdict.terms
+
+    @property
+    def model_flags(self) -> tuple[Firing, ...]:
+        return self.verdict.model
+
+    @property
+    def rule_catalogue(self) -> tuple[VerdictRule, ...]:
+        return self.verdict.rules
+
     @property
     def focus(self) -> tuple[str, ...]:
         return tuple(v.term for v in self.term_verdicts)
@@ -185,59 +173,41 @@ def _as_bool(value) -> bool:
         return False
 
 
-def _rule_from(obj: Mapping, fired: bool) -> Rule:
-    """A rule of verdict.json: a fired rule or model flag states its threshold as a
-    value plus the setting that holds it (``"threshold": 0.05, "threshold_name":
-    "hansen_reject"``), the catalogue as the setting's name plus ``threshold_value``.
-    Either way the report shows ``name = value``."""
-    threshold = obj.get("threshold")
-    name = obj.get("threshold_name")
-    if "threshold_value" in obj:
-        name, threshold = (threshold if isinstance(threshold, str) else name), obj["threshold_value"]
-    if isinstance(name, str) and name and threshold is not None and not isinstance(threshold, Mapping):
-        threshold = {name: threshold}
-    figures = obj.get("figures") or {}
-    return Rule(id=str(obj["id"]), description=str(obj.get("description") or ""),
-                source=str(obj.get("source") or ""), threshold=threshold,
-                figures=dict(figures), fired=fired, effect=str(obj.get("effect") or ""))
-
-
-def _rules_from(items, where: str, problems: list[str], fired: bool) -> tuple[Rule, ...]:
-    if not isinstance(items, list):
-        problems.append(f"{where}: expected a list of rules")
-        return ()
-    out = []
-    for i, item in enumerate(items):
-        if not isinstance(item, Mapping) or "id" not in item:
-            problems.append(f"{where}[{i}]: expected a rule object with an 'id'")
-            continue
-        out.append(_rule_from(item, fired))
-    return tuple(out)
-
-
-def _parse_verdict(raw: Mapping, path: Path, problems: list[str]):
+def _parse_verdict(raw: Mapping, path: Path, problems: list[str]) -> AuditVerdict | None:
+    """verdict.json as the verdict module's typed record (:class:`AuditVerdict`);
+    every missing key or malformed entry is one line."""
     if not _missing_keys(raw, contract.VERDICT_KEYS, str(path), problems):
-        return (), (), ()
+        return None
     if not isinstance(raw["terms"], Mapping):
         problems.append(f"{path}: 'terms' must map each focus term to its verdict")
-        return (), (), ()
-    verdicts = []
+        return None
+    ok = True
     for term, obj in raw["terms"].items():
         where = f"{path}: terms['{term}']"
         if not isinstance(obj, Mapping):
             problems.append(f"{where} is not an object")
+            ok = False
             continue
         if not _missing_keys(obj, contract.TERM_KEYS, where, problems):
+            ok = False
             continue
-        verdict = obj["verdict"]
-        if verdict not in VERDICTS:
-            problems.append(f"{where}.verdict is {verdict!r}, expected one of {', '.join(VERDICTS)}")
-        rules = _rules_from(obj["rules"], f"{where}.rules", problems, fired=True)
-        details = {k: v for k, v in obj.items() if k not in ("verdict", "rules")}
-        verdicts.append(TermVerdict(str(term), str(verdict), rules, details))
-    flags = _rules_from(raw["model"], f"{path}: model", problems, fired=True)
-    catalogue = _rules_from(raw["rules"], f"{path}: rules", problems, fired=False)
-    return tuple(verdicts), flags, catalogue
+        if obj["verdict"] not in VERDICTS:
+            problems.append(f"{where}.verdict is {obj['verdict']!r}, expected one of "
+                            f"{', '.join(VERDICTS)}")
+            ok = False
+    for key in ("model", "rules"):
+        if not isinstance(raw[key], list) or not all(
+                isinstance(r, Mapping) and "id" in r and "effect" in r for r in raw[key]):
+            problems.append(f"{path}: '{key}' must be a list of rule objects with an 'id' "
+                            f"and an 'effect'")
+            ok = False
+    if not ok:
+        return None
+    try:
+        return AuditVerdict.from_dict(raw)
+    except (KeyError, TypeError, ValueError) as exc:
+        problems.append(f"{path}: malformed ({' '.join(str(exc).split())})")
+        return None
 
 
 def _thresholds(verdict: Mapping) -> dict:
@@ -279,9 +249,9 @@ def read_audit_folder(out_dir) -> AuditFolder:
     variants, estimates, bounds = (tables[t.file] for t in contract.TABLES)
     verdict = _read_json(path / "verdict.json", problems)
     truth = _read_json(path / contract.TRUTH_FILE, problems, required=False)
-    term_verdicts, flags, catalogue = ((), (), ())
+    typed = None
     if verdict is not None:
-        term_verdicts, flags, catalogue = _parse_verdict(verdict, path / "verdict.json", problems)
+        typed = _parse_verdict(verdict, path / "verdict.json", problems)
     if variants is not None:
         if variants.empty:
             problems.append(f"{path / 'variants.csv'}: no variants (empty table)")
@@ -307,9 +277,7 @@ def read_audit_folder(out_dir) -> AuditFolder:
         bounds=bounds,
         verdict_raw=verdict,
         manifest=manifest,
-        term_verdicts=term_verdicts,
-        model_flags=flags,
-        rule_catalogue=catalogue,
+        verdict=typed,
         setting_columns=tuple(settings),
         base_variant=base,
         alpha=float(verdict["alpha"]),

@@ -54,11 +54,22 @@ def _rule_lines(rule: dict) -> list[str]:
 
 def render_markdown(ctx: dict) -> str:
     """The report as Markdown from :func:`robustgmm.report.context.build_context`."""
-    md: list[str] = [f"# {esc(ctx['title'])}", "", esc(ctx["subtitle"]), "",
-                     f"> **Caution.** {esc(ctx['caution'])}", "",
-                     "## Verdict per focus term", ""]
+    md: list[str] = [f"# {esc(ctx['title'])}", "", esc(ctx["subtitle"]), ""]
+    if ctx["base_statement"]:
+        md += [f"> **{esc(ctx['base_statement'])}** Every verdict is therefore "
+               "inconclusive.", ""]
+    md += [f"> **Caution.** {esc(ctx['caution'])}", "",
+           "## Verdict per focus term", "", f"Variants: {esc(ctx['evidence'])}.", ""]
+    if ctx["closest"]:
+        c = ctx["closest"]
+        md += [f"**Closest acceptable variant:** {code(c['variant'])} (changes "
+               f"{esc(c['changed'])}); estimates {esc(c['estimates'])}. Model-file lines "
+               "that make it the base:", ""]
+        md += [f"    {line}" for line in c["lines"]] + [""]
     for t in ctx["terms"]:
         md.append(f"### {code(t['term'])}: **{(t['verdict'] or 'no verdict').upper()}**")
+        md.append("")
+        md.append(f"**Why:** {esc(t['reason'])}.")
         md.append("")
         md.append(f"- Base model: **{esc(t['base'])}** (s.e. {esc(t['base_se'])}, "
                   f"p {esc(t['base_p'])})")
@@ -69,9 +80,25 @@ def render_markdown(ctx: dict) -> str:
         if t["n"] != t["n_ok"]:
             md.append(f"- Over all {t['n_ok']} estimated variants: {esc(t['ok_low'])} to "
                       f"{esc(t['ok_high'])}")
+        if t["n_untestable"] or t["n_duplicates"]:
+            md.append(f"- Not counted: {t['n_untestable']} untestable, {t['n_duplicates']} "
+                      f"duplicate variants")
+        if t["influence"]:
+            i = t["influence"]
+            md.append(f"- Modeling SD {esc(i['modeling'])}, sampling SD {esc(i['sampling'])}, "
+                      f"robustness ratio {esc(i['ratio'])} (Young & Holsteen 2017)")
         if t["truth"] is not None:
             md.append(f"- True value in the simulated data: {esc(t['truth'])}")
         md.append("")
+        if t["drivers"]:
+            md += ["What drives the estimate (shift: change in the estimate against the "
+                   "base model's value, least squares on the setting indicators):", ""]
+            md += _table(["setting", "value", "variants", "mean estimate",
+                          "share significant", "shift"],
+                         [[esc(d["setting"]), esc(d["value"]), str(d["variants"]),
+                           esc(d["mean"]), esc(d["share"]), esc(d["shift"])]
+                          for d in t["drivers"]])
+            md.append("")
         if t["rules"]:
             md.append("Rules that fired:")
             md.append("")
@@ -81,14 +108,18 @@ def render_markdown(ctx: dict) -> str:
             md.append("No rule fired.")
         if t["passed"]:
             md += ["", f"Checked and not fired: {esc(t['passed'])}."]
+        if t["not_evaluated"]:
+            md += ["", f"Not evaluated: {esc(t['not_evaluated'])}."]
         md.append("")
     if ctx["flags"]:
         md += ["### Model-level flags", ""]
         for rule in ctx["flags"]:
             md.extend(_rule_lines(rule))
         md.append("")
-    md += ["## Paragraph for a referee response", "", f"> {esc(ctx['referee'])}", "",
-           "(Also in `referee.txt`.)", ""]
+    md += ["## Paragraphs for a referee response", ""]
+    for para in ctx["referee"]:
+        md += [f"> {esc(para)}", ">"]
+    md[-1:] = ["", "(Also in `referee.txt`.)", ""]
     if ctx["truth"]:
         md += ["## Known truth", "",
                "The data were simulated, so the true parameter values are known"
@@ -126,6 +157,7 @@ def render_markdown(ctx: dict) -> str:
                    esc(r["source"])] for r in ctx["catalogue"]])
     if ctx["combination"]:
         md += ["", f"**How the rules combine:** {esc(ctx['combination'])}"]
+    md += ["", f"**Thresholds in force:** {esc(ctx['thresholds'])}."]
     md += ["", "\"Common practice\" marks a rule of thumb with no single published source.",
            "", "## Provenance", ""]
     md += _table(["item", "value"], [[esc(k), esc(v)] for k, v in ctx["provenance"]])

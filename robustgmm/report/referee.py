@@ -1,14 +1,19 @@
-"""A plain-language paragraph for a referee response, with the audit's numbers.
+"""Plain-language paragraphs for a referee response, with the audit's numbers.
 
-Every number comes from :func:`robustgmm.report.summary.summarize`, i.e. straight
-from ``estimates.csv`` / ``variants.csv``; the wording is ours. The paragraph always
-ends with the caution that statistical robustness does not establish instrument
-validity.
+Every verdict, reason, count and threshold comes from ``verdict.json`` (through
+:func:`robustgmm.report.summary.summarize`): the rules are evaluated once, in
+:mod:`robustgmm.audit.verdicts`, and this module only words their results. The
+paragraphs are: the base model's failure first (when it fails its tests), the
+evidence (how many specifications pass, cannot be tested, are rejected), one short
+paragraph per focus term (verdict, reason, the setting it depends on, the cautions
+that fired), and the caution about instrument validity once at the end.
 """
 from __future__ import annotations
 
+from ..options import Equations, Errors, Form, Steps, Transform, label
 from .inputs import AuditFolder
-from .summary import AuditSummary, TermSummary, fmt, fmt_int, fmt_p, summarize, varied_text
+from .summary import (AuditSummary, TermSummary, fmt, fmt_int, fmt_p, setting_phrase,
+                      summarize, varied_text)
 
 CAUTION = ("These checks are statistical: they show how much the conclusions depend on "
            "choices the theory leaves open, but they do not establish that the "
@@ -31,102 +36,168 @@ def _count_phrase(k: int, noun: str) -> str:
     return f"{k} {noun}{'s' if k != 1 else ''}"
 
 
-# Short clauses for the rules robustgmm.audit.verdicts applies; other rules use their
-# own description.
-RULE_CLAUSES = {
-    "sign_change": "its sign changes across specifications",
-    "significance_flip": "whether it is significant depends on the specification",
-    "spread": "its size moves by more than {threshold} base-model standard errors",
-    "ar_outside_band": "the base estimate lies outside the within-OLS band",
-    "base_not_ok": "the base model could not be estimated",
-    "base_not_acceptable": "the base model fails its own specification tests",
-    "too_few_acceptable": "too few specifications pass their tests",
-}
-DECISIVE = ("fragile", "inconclusive")
+def _pct(x) -> str:
+    return f"{100 * float(x):g}%"
 
 
-def _clause(rule) -> str:
-    text = RULE_CLAUSES.get(rule.id)
-    if text is None:
-        return (rule.description.strip() or rule.id.replace("_", " ")).rstrip(".")
-    value = rule.threshold
-    if isinstance(value, dict) and len(value) == 1:
-        value = next(iter(value.values()))
-    return text.format(threshold=f"{value:g}" if isinstance(value, (int, float)) else value)
+def _cap(text: str) -> str:
+    return text[:1].upper() + text[1:] if text else text
 
 
 def _join(parts: list[str]) -> str:
     return parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
 
 
-def _verdict_clause(term: TermSummary) -> str:
-    """'we judge it fragile: its sign changes ... and ...' (+ cautions)."""
-    if not term.verdict:
+def value_phrase(setting: str, value: str) -> str:
+    """'per-period instruments', 'system GMM', 'last_lag = 3', 'x exogenous'."""
+    kinds = {"equations": Equations, "transform": Transform, "form": Form, "errors": Errors,
+             "steps": Steps}
+    if setting in kinds:
+        try:
+            return label(kinds[setting], int(value) if value.isdigit() else value)
+        except (ValueError, KeyError):
+            return f"{setting} = {value}"
+    if setting == "time_effects":
+        return "time effects" if value in ("true", "True") else "no time effects"
+    if setting.startswith("role:"):
+        return f"{setting[5:]} {value}"
+    if setting == "sample":
+        return f"the sample {value}"
+    return f"{setting} = {value}"
+
+
+# clauses for the cautions a term can get (the figures come from verdict.json)
+def _caution_clause(rule) -> str:
+    f = rule.figures
+    if rule.id == "spread":
+        return (f"variant {f.get('variant')} lies {fmt(f.get('max_distance'), 2)} standard "
+                f"errors of the difference from the base estimate (threshold "
+                f"{rule.threshold:g})")
+    if rule.id == "ar_outside_band":
+        return f"the base estimate lies {f.get('position')} the within-OLS band"
+    if rule.id == "ar_near_within":
+        return (f"the base estimate is within one standard error of the within estimate "
+                f"({fmt(f.get('fe'))}), a sign of weak instruments (Bond, Hoeffler and "
+                f"Temple, 2001)")
+    return (rule.description or rule.id.replace("_", " ")).rstrip(".")
+
+
+def _driver_sentence(term: TermSummary) -> str:
+    key = term.key_driver
+    if not key or len(key.get("values") or ()) < 2:
         return ""
-    decisive = [r for r in term.fired if r.effect in DECISIVE or
-                (not r.effect and r.id in ("sign_change", "significance_flip", "base_not_ok",
-                                           "base_not_acceptable", "too_few_acceptable"))]
-    caution = [r for r in term.fired if r not in decisive]
-    text = f"we judge it {term.verdict}"
-    if decisive:
-        text += ", as " + _join([_clause(r) for r in decisive])
-    if caution:
-        text += (", though " if not decisive else "; also, ") + _join([_clause(r) for r in caution])
-    return text
+    setting = str(key["setting"])
+    values = key["values"]
+    if key.get("basis") == "significance":
+        parts = [f"{v['significant']} of the {v['variants']} with "
+                 f"{value_phrase(setting, str(v['value']))}" for v in values]
+        return f"It is significant in {_join(parts)}."
+    parts = [f"{fmt(v['mean_estimate'])} with {value_phrase(setting, str(v['value']))}"
+             for v in values]
+    return (f"Its size depends most on {setting_phrase(setting)}: on average "
+            f"{_join(parts)}.")
 
 
-def term_sentence(term: TermSummary, alpha: float, lead: str, *, judged: str = "") -> str:
-    """One sentence per focus term; ``lead`` is the opening words up to 'the
-    coefficient on' (e.g. 'Across 24 estimated specifications varying ...,').
-    ``judged`` names the judged subset when it is smaller than every estimated
-    specification (then the full range is added)."""
-    pct = f"{100 * alpha:g}%"
-    subject = f"{lead} the coefficient on {term.term}" if lead else \
-        f"The coefficient on {term.term}"
+def _influence_sentence(term: TermSummary) -> str:
+    inf = term.influence
+    if inf is None:
+        return ""
+    return (f"Its modeling standard deviation across these specifications is "
+            f"{fmt(inf.modeling_sd)} against a sampling standard deviation of "
+            f"{fmt(inf.sampling_sd)} (robustness ratio {fmt(inf.robustness_ratio, 2)}; "
+            f"Young and Holsteen, 2017).")
+
+
+def term_paragraph(term: TermSummary, s: AuditSummary) -> str:
+    """One short paragraph: the verdict across the judged specifications, its reason,
+    the setting it depends on, the evidence left out, and every caution that fired."""
+    pct = _pct(s.alpha)
+    judged = "acceptable" if not s.count_untestable else "acceptable or untestable"
     if term.n == 0:
         if term.n_ok:
-            return (f"No specification that passes its tests estimates the coefficient on "
+            text = (f"No specification that passes its tests estimates the coefficient on "
                     f"{term.term}; over all {term.n_ok} estimated specifications it ranges "
-                    f"from {fmt(term.ok_low)} to {fmt(term.ok_high)}; we judge it "
-                    f"{term.verdict or 'not at all'}.")
-        return f"{subject} could not be estimated in any specification."
+                    f"from {fmt(term.ok_low)} to {fmt(term.ok_high)}. It is "
+                    f"{term.verdict}: {term.reason}.")
+        else:
+            text = (f"The coefficient on {term.term} could not be estimated in any "
+                    f"specification; it is {term.verdict}.")
+        return text
+    spec_word = "specification" if term.n == 1 else "specifications"
+    head = f"The coefficient on {term.term} is {term.verdict} across the {term.n} {judged} {spec_word}"
     if term.n == 1:
-        core = (f"{subject} is {fmt(term.low)} (standard error "
+        core = (f"{head}: it is {fmt(term.low)} (standard error "
                 f"{fmt(term.base_std_error)}, {_p_phrase(term.base_p_value)})")
     else:
-        core = (f"{subject} stays between {fmt(term.low)} and {fmt(term.high)} "
-                f"(base model {fmt(term.base_estimate)}, standard error "
-                f"{fmt(term.base_std_error)}); it is {_sign_phrase(term)}"
-                f" and significant at the {pct} level in {_of(term.n_significant, term.n)}")
-    if judged and term.n < term.n_ok and (fmt(term.ok_low), fmt(term.ok_high)) != (
-            fmt(term.low), fmt(term.high)):
+        sign = (f"negative in {_of(term.n_negative, term.n)}" if term.n_negative > term.n_positive
+                else f"positive in {_of(term.n_positive, term.n)}")
+        core = (f"{head}: it stays between {fmt(term.low)} and {fmt(term.high)} (base model "
+                f"{fmt(term.base_estimate)}, standard error {fmt(term.base_std_error)}); it is "
+                f"{sign} and significant at the {pct} level in {_of(term.n_significant, term.n)}")
+    if term.n < term.n_ok and (fmt(term.ok_low), fmt(term.ok_high)) != (fmt(term.low),
+                                                                         fmt(term.high)):
         core += (f" (over all {term.n_ok} estimated specifications, {fmt(term.ok_low)} to "
                  f"{fmt(term.ok_high)})")
-    verdict = _verdict_clause(term)
-    return core + ("; " + verdict if verdict else "") + "."
+    sentences = [core + ".", _cap(term.reason) + "."]
+    sentences.append(_driver_sentence(term))
+    sentences.append(_influence_sentence(term))
+    left_out = []
+    if term.n_insignificant_opposite:
+        left_out.append(f"{_count_phrase(term.n_insignificant_opposite, 'acceptable specification')}"
+                        f" with the opposite sign {'is' if term.n_insignificant_opposite == 1 else 'are'}"
+                        f" far from significant")
+    if term.uninformative:
+        k = len(term.uninformative)
+        left_out.append(f"{_count_phrase(k, 'specification')} with a standard error above "
+                        f"{s.thresholds.get('uninformative_se_ratio', 3):g} times the base "
+                        f"model's {'is' if k == 1 else 'are'} uninformative and left out of "
+                        f"the comparison")
+    if term.n_untestable and not s.count_untestable:
+        left_out.append(f"{_count_phrase(term.n_untestable, 'untestable specification')} "
+                        f"(exactly identified) {'is' if term.n_untestable == 1 else 'are'} "
+                        f"shown but not counted")
+    if left_out:
+        sentences.append(_cap("; ".join(left_out)) + ".")
+    cautions = term.cautions
+    if cautions:
+        sentences.append("Caution: " + "; ".join(_caution_clause(r) for r in cautions) + ".")
+    return " ".join(x for x in sentences if x)
 
 
-def _sign_phrase(term: TermSummary) -> str:
-    if term.n_negative > term.n_positive:
-        return f"negative in {_of(term.n_negative, term.n)}"
-    return f"positive in {_of(term.n_positive, term.n)}"
-
-
-def _tests_text(audit: AuditFolder) -> str:
+def _tests_text(s: AuditSummary) -> str:
     """Which specification tests make a variant acceptable, and at what level."""
-    t = audit.thresholds
+    t = s.thresholds
     levels = {t["hansen_reject"], t["ar2_reject"], t["difference_hansen_reject"]}
     if len(levels) == 1:
         return (f"Hansen, AR(2) and, in system GMM, difference-in-Hansen for the level "
-                f"equation, at the {100 * levels.pop():g}% level")
-    return (f"Hansen at {100 * t['hansen_reject']:g}%, AR(2) at {100 * t['ar2_reject']:g}% "
+                f"equation, at the {_pct(levels.pop())} level")
+    return (f"Hansen at {_pct(t['hansen_reject'])}, AR(2) at {_pct(t['ar2_reject'])} "
             f"and, in system GMM, difference-in-Hansen for the level equation at "
-            f"{100 * t['difference_hansen_reject']:g}%")
+            f"{_pct(t['difference_hansen_reject'])}")
 
 
-def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -> str:
-    """The paragraph, as one string without line breaks."""
-    s = summary or summarize(audit)
+def _base_paragraph(s: AuditSummary) -> str:
+    """Said first when the base model is no anchor: why, and the closest acceptable
+    specification with the model-file lines that would make it the base."""
+    if s.base_acceptable or not s.base_statement:
+        return ""
+    text = s.base_statement + " Every verdict is therefore inconclusive."
+    c = s.closest
+    if c:
+        changed = c.get("changed") or {}
+        how = _join([f"{value_phrase(k, str(v))}" for k, v in changed.items()]) \
+            if changed else "the same settings"
+        ests = _join([f"{t} at {fmt(v)}" for t, v in (c.get("estimates") or {}).items()])
+        text += (f" The closest specification that passes its tests is variant "
+                 f"{c['variant']} ({how}), which estimates {ests}")
+        lines = c.get("model_file_lines") or []
+        text += (f"; to make it the base model, set {'; '.join(lines)}." if lines else ".")
+    else:
+        text += " No specification passes its tests."
+    return text
+
+
+def _evidence_paragraph(s: AuditSummary) -> str:
     varied = varied_text(s)
     n_spec = s.n_ok
     if varied:
@@ -134,25 +205,27 @@ def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -
     elif n_spec == 1:
         opening = "In the single estimated specification"
     else:
-        opening = f"In the {n_spec} estimated specifications"
-    sentences = []
-    judged = ""
-    if s.has_acceptable and s.n_acceptable < s.n_ok:
-        judged = "acceptable"
-        count = "none" if s.n_acceptable == 0 else str(s.n_acceptable)
-        verb = "passes" if s.n_acceptable == 1 else "pass"
-        sentences.append(f"{opening}, {count} {verb} {'its' if s.n_acceptable == 1 else 'their'} "
-                         f"specification tests ({_tests_text(audit)}); the verdicts rest on "
-                         f"{'this one' if s.n_acceptable == 1 else 'these'}.")
-        lead_first = "Among them,"
-    elif s.has_acceptable and s.n_ok:
-        lead_first = (f"{opening}, {'which passes its' if s.n_ok == 1 else 'all of which pass their'}"
-                      f" specification tests ({_tests_text(audit)}),")
-    else:
-        lead_first = opening + ","
-    for i, term in enumerate(s.terms):
-        sentences.append(term_sentence(term, s.alpha, lead_first if i == 0 else "",
-                                       judged=judged))
+        opening = f"In the {n_spec} estimated specifications" if n_spec else \
+            f"Of the {s.n_variants} specifications planned,"
+    if not n_spec:
+        return " ".join([opening + " nothing could be estimated."] + _not_run(s))
+    count = "none" if s.n_acceptable == 0 else (
+        "all" if s.n_acceptable == n_spec and n_spec > 1 else str(s.n_acceptable))
+    verb = "passes" if s.n_acceptable == 1 else "pass"
+    parts = [f"{count} {verb} {'its' if s.n_acceptable == 1 else 'their'} specification tests "
+             f"({_tests_text(s)})"]
+    if s.n_untestable:
+        parts.append(f"{s.n_untestable} cannot be tested (exactly identified)")
+    if s.n_rejected:
+        parts.append(f"{s.n_rejected} {'is' if s.n_rejected == 1 else 'are'} rejected by "
+                     f"{'its' if s.n_rejected == 1 else 'their'} tests")
+    text = f"{opening}, {_join(parts)}"
+    if s.n_duplicates:
+        text += (f"; {_count_phrase(s.n_duplicates, 'duplicate estimate')} "
+                 f"{'was' if s.n_duplicates == 1 else 'were'} merged")
+    rest = "the acceptable ones" + (" and the untestable ones" if s.count_untestable else "")
+    text += f". The verdicts rest on {rest}."
+    sentences = [text]
     for band in s.bands:
         sentences.append(
             f"The autoregressive coefficient {band.term} lies between the within "
@@ -162,42 +235,74 @@ def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -
             f"estimate is expected between these two biased ones (Bond, Hoeffler and "
             f"Temple, 2001).")
     diag = []
-    if s.n_ok:
-        if s.hansen_low == s.hansen_low:  # not NaN
-            diag.append(f"the Hansen test p-value is {fmt_p(s.hansen_low)}"
-                        if fmt_p(s.hansen_low) == fmt_p(s.hansen_high) else
-                        f"the Hansen test p-value ranges from {fmt_p(s.hansen_low)} to "
-                        f"{fmt_p(s.hansen_high)}")
-        if s.n_ar2:
-            diag.append(f"the AR(2) test rejects at the {100 * s.alpha:g}% level in "
-                        f"{s.n_ar2_reject} of {s.n_ar2}")
-        if s.instruments_low == s.instruments_low:
-            units = fmt_int(s.units_low) if s.units_low == s.units_high else \
-                f"{fmt_int(s.units_low)} to {fmt_int(s.units_high)}"
-            inst = fmt_int(s.instruments_low) if s.instruments_low == s.instruments_high \
-                else f"from {fmt_int(s.instruments_low)} to {fmt_int(s.instruments_high)}"
-            diag.append(f"the number of instruments ranges {inst} against {units} units"
-                        if s.instruments_low != s.instruments_high else
-                        f"every specification uses {inst} instruments against {units} units")
+    t = s.thresholds
+    if s.hansen_low == s.hansen_low:  # not NaN
+        diag.append(f"the Hansen test p-value is {fmt_p(s.hansen_low)}"
+                    if fmt_p(s.hansen_low) == fmt_p(s.hansen_high) else
+                    f"the Hansen test p-value ranges from {fmt_p(s.hansen_low)} to "
+                    f"{fmt_p(s.hansen_high)}")
+    if s.n_ar2:
+        diag.append(f"the AR(2) test rejects at the {_pct(t['ar2_reject'])} level in "
+                    f"{s.n_ar2_reject} of {s.n_ar2}")
+    if s.instruments_low == s.instruments_low:
+        units = fmt_int(s.units_low) if s.units_low == s.units_high else \
+            f"{fmt_int(s.units_low)} to {fmt_int(s.units_high)}"
+        inst = fmt_int(s.instruments_low) if s.instruments_low == s.instruments_high \
+            else f"from {fmt_int(s.instruments_low)} to {fmt_int(s.instruments_high)}"
+        diag.append(f"the number of instruments ranges {inst} against {units} units"
+                    if s.instruments_low != s.instruments_high else
+                    f"every specification uses {inst} instruments against {units} units")
     if diag:
-        text = "; ".join(diag)
-        sentences.append(text[0].upper() + text[1:] + ".")
+        sentences.append(_cap("; ".join(diag)) + ".")
+    cautions = []
+    for rule in s.model_flags:
+        k, n = rule.figures.get("variants", 0), rule.figures.get("of_ok", s.n_ok)
+        if rule.id == "hansen_p_high":
+            cautions.append(f"the Hansen p-value is at or above {t['hansen_too_high']:g} with "
+                            f"at least {t['instruments_per_unit_warn']:g} instruments per unit "
+                            f"(or about 1) in {k} of {n}, where the test is weak (Roodman, 2009)")
+        elif rule.id == "hansen_p_near_one":
+            cautions.append(f"the Hansen p-value is about 1 in {k} of {n}, a sign of too many "
+                            f"instruments (Roodman, 2009)")
+        elif rule.id == "instruments_exceed_units":
+            cautions.append(f"{k} of {n} use more than {t['instruments_per_unit']:g} "
+                            f"instrument{'s' if t['instruments_per_unit'] != 1 else ''} per unit")
+    if cautions:
+        sentences.append("Caution: " + "; ".join(cautions) + ".")
+    return " ".join(sentences + _not_run(s))
+
+
+def _not_run(s: AuditSummary) -> list[str]:
     not_run = []
     if s.n_failed:
         not_run.append(f"{_count_phrase(s.n_failed, 'further specification')} could not be "
                        f"estimated")
     if s.n_skipped:
         not_run.append(f"{_count_phrase(s.n_skipped, 'combination')} of settings "
-                       f"{'was' if s.n_skipped == 1 else 'were'} skipped as impossible")
+                       f"{'was' if s.n_skipped == 1 else 'were'} skipped as impossible or "
+                       f"as the same estimation as another")
     if not_run:
-        text = " and ".join(not_run)
-        sentences.append(text[0].upper() + text[1:] + " (reasons in the variants table).")
-    sentences.append(CAUTION)
-    return " ".join(sentences)
+        return [_cap(" and ".join(not_run)) + " (reasons in the variants table)."]
+    return []
+
+
+def referee_paragraphs(audit: AuditFolder, summary: AuditSummary | None = None) -> list[str]:
+    """The paragraphs, each one string without line breaks."""
+    s = summary or summarize(audit)
+    out = [_base_paragraph(s), _evidence_paragraph(s)]
+    out += [term_paragraph(t, s) for t in s.terms]
+    out.append(CAUTION)
+    return [p for p in out if p]
+
+
+def referee_paragraph(audit: AuditFolder, summary: AuditSummary | None = None) -> str:
+    """All paragraphs as one string (the text of referee.txt without its line breaks)."""
+    return " ".join(referee_paragraphs(audit, summary))
 
 
 def referee_text(audit: AuditFolder, summary: AuditSummary | None = None, width: int = 88) -> str:
-    """The paragraph wrapped for a plain-text file (referee.txt)."""
+    """The paragraphs wrapped for a plain-text file (referee.txt), a blank line between."""
     import textwrap
-    return textwrap.fill(referee_paragraph(audit, summary), width=width,
-                         break_long_words=False, break_on_hyphens=False) + "\n"
+    return "\n\n".join(textwrap.fill(p, width=width, break_long_words=False,
+                                     break_on_hyphens=False)
+                       for p in referee_paragraphs(audit, summary)) + "\n"

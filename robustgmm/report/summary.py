@@ -7,15 +7,18 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import dataclass
-from typing import Any
+from dataclasses import dataclass, field
+from typing import Any, Mapping
 
 import numpy as np
 import pandas as pd
 
 from ..options import LABELS, Steps, Transform
 from .labels import band_arrays, setting_name, value_text
-from .inputs import AuditFolder, Rule
+from ..audit.verdicts import Driver, Firing, Influence, TermVerdict
+from ..audit.verdicts import Rule as CatalogueRule
+from ..options import Effect
+from .inputs import AuditFolder
 
 # (setting column, value as written in variants.csv) -> words; the option labels
 # come from the one label table (robustgmm.options.LABELS)
@@ -97,10 +100,10 @@ def setting_phrase(column: str) -> str:
 
 @dataclass(frozen=True)
 class TermSummary:
-    """One focus term. ``n``, ``low`` ... ``n_negative`` describe the *judged*
-    variants: the acceptable ones (estimated and passing their specification tests)
-    when the audit marks them, else every estimated variant. ``n_ok``, ``ok_low`` and
-    ``ok_high`` describe every estimated variant."""
+    """One focus term, as the verdict module judged it (verdict.json). ``n``, ``low``
+    ... ``n_negative`` describe the *judged* variants (acceptable, not duplicates;
+    plus the untestable ones with ``count_untestable``); ``n_ok``, ``ok_low`` and
+    ``ok_high`` every estimated variant. Nothing here is recomputed."""
 
     term: str
     verdict: str
@@ -114,12 +117,21 @@ class TermSummary:
     n_significant: int
     n_positive: int
     n_negative: int
-    fired: tuple[Rule, ...]
+    fired: tuple[Firing, ...]
     truth: float | None
     n_ok: int = 0
     ok_low: float = float("nan")
     ok_high: float = float("nan")
     passed: tuple[str, ...] = ()
+    reason: str = ""
+    n_untestable: int = 0
+    n_duplicates: int = 0
+    n_insignificant_opposite: int = 0
+    uninformative: tuple[str, ...] = ()
+    drivers: tuple[Driver, ...] = ()
+    key_driver: Mapping[str, Any] | None = None
+    influence: Influence | None = None
+    not_evaluated: tuple[str, ...] = ()
 
     @property
     def sign_stable(self) -> bool:
@@ -128,6 +140,14 @@ class TermSummary:
     @property
     def share_significant(self) -> float:
         return self.n_significant / self.n if self.n else float("nan")
+
+    @property
+    def decisive(self) -> tuple[Firing, ...]:
+        return tuple(r for r in self.fired if r.effect in (Effect.FRAGILE, Effect.INCONCLUSIVE))
+
+    @property
+    def cautions(self) -> tuple[Firing, ...]:
+        return tuple(r for r in self.fired if r.effect == Effect.CAUTION)
 
 
 @dataclass(frozen=True)
@@ -162,7 +182,17 @@ class AuditSummary:
     units_high: float
     n_too_many_instruments: int
     alpha: float
-    model_flags: tuple[Rule, ...]
+    model_flags: tuple[Firing, ...]
+    n_untestable: int = 0
+    n_rejected: int = 0
+    n_duplicates: int = 0
+    n_judged: int = 0
+    count_untestable: bool = False
+    base_acceptable: bool = True
+    base_statement: str = ""
+    closest: Mapping[str, Any] | None = None
+    thresholds: Mapping[str, Any] = field(default_factory=dict)
+    rule_counts: Mapping[str, int] = field(default_factory=dict)
 
     def term(self, label: str) -> TermSummary:
         for t in self.terms:
@@ -175,38 +205,45 @@ def _count(mask) -> int:
     return int(np.count_nonzero(np.asarray(mask, bool)))
 
 
+def _f(x) -> float:
+    return float("nan") if x is None else float(x)
+
+
+def _term_summary(tv: TermVerdict, audit: AuditFolder) -> TermSummary:
+    f = tv.figures
+    b = tv.base
+    return TermSummary(
+        term=tv.term, verdict=str(tv.verdict), n=int(f.get("judged", 0)),
+        low=_f(f.get("min")), high=_f(f.get("max")), median=_f(f.get("median")),
+        base_estimate=b.estimate if b else float("nan"),
+        base_std_error=b.std_error if b else float("nan"),
+        base_p_value=b.p_value if b else float("nan"),
+        n_significant=int(f.get("significant", 0)), n_positive=int(f.get("positive", 0)),
+        n_negative=int(f.get("negative", 0)), fired=tv.rules,
+        truth=audit.truth_value(tv.term), n_ok=int(f.get("variants_ok", 0)),
+        ok_low=_f(f.get("ok_min")), ok_high=_f(f.get("ok_max")), passed=tv.passed,
+        reason=tv.reason, n_untestable=int(f.get("untestable", 0)),
+        n_duplicates=int(f.get("duplicates", 0)),
+        n_insignificant_opposite=int(f.get("insignificant_opposite", 0)),
+        uninformative=tuple(f.get("uninformative_ids") or ()), drivers=tv.drivers,
+        key_driver=tv.key_driver, influence=tv.influence, not_evaluated=tv.not_evaluated)
+
+
 def summarize(audit: AuditFolder) -> AuditSummary:
+    """The shared numbers: every count that depends on a rule or threshold comes from
+    verdict.json (the verdict module evaluated it once); only plain facts (ranges,
+    which settings vary, the within-OLS band) are read from the CSV files."""
     v = audit.variants
     ok = audit.ok_variants
+    verdict = audit.verdict
+    counts = verdict.variants
+    diag = verdict.diagnostics
+    rule_counts = dict(diag.get("rule_counts") or {})
     # what the estimated variants vary (values used only by skipped or failed
     # variants are not part of the evidence)
     varied = tuple((col, tuple(pd.unique(ok[col]))) for col in audit.setting_columns
                    if ok[col].map(value_text).nunique() > 1)
-    terms = []
-    for tv in audit.term_verdicts:
-        every = audit.term_estimates(tv.term)
-        frame = every[every["acceptable"]]
-        est = frame["estimate"].to_numpy(float)
-        p = frame["p_value"].to_numpy(float)
-        all_est = every["estimate"].to_numpy(float)
-        base = every[every["variant"] == audit.base_variant]
-        b = base.iloc[0] if not base.empty else None
-        passed = tv.details.get("passed", ())
-        terms.append(TermSummary(
-            term=tv.term, verdict=tv.verdict, n=len(frame),
-            low=float(est.min()) if est.size else float("nan"),
-            high=float(est.max()) if est.size else float("nan"),
-            median=float(np.median(est)) if est.size else float("nan"),
-            base_estimate=float(b["estimate"]) if b is not None else float("nan"),
-            base_std_error=float(b["std_error"]) if b is not None else float("nan"),
-            base_p_value=float(b["p_value"]) if b is not None else float("nan"),
-            n_significant=_count(p < audit.alpha),
-            n_positive=_count(est > 0), n_negative=_count(est < 0),
-            fired=tv.fired, truth=audit.truth_value(tv.term),
-            n_ok=len(every),
-            ok_low=float(all_est.min()) if all_est.size else float("nan"),
-            ok_high=float(all_est.max()) if all_est.size else float("nan"),
-            passed=tuple(str(x) for x in passed) if isinstance(passed, (list, tuple)) else ()))
+    terms = tuple(_term_summary(tv, audit) for tv in audit.term_verdicts)
     bands = []
     for term in audit.ar_terms:
         band = audit.band(term)
@@ -219,31 +256,31 @@ def summarize(audit: AuditFolder) -> AuditSummary:
         est = frame["estimate"].to_numpy(float)
         n_inside = _count((est >= lo) & (est <= hi))
         bands.append(BandSummary(term, band[0], band[1], n_inside, len(frame)))
-    hansen = ok["hansen_p"].to_numpy(float)
-    hansen_f = hansen[np.isfinite(hansen)]
-    ar2 = ok["ar2_p"].to_numpy(float)
-    ar2_f = ar2[np.isfinite(ar2)]
-    inst = ok["instruments"].to_numpy(float)
-    units = ok["units"].to_numpy(float)
-    t = audit.thresholds
 
-    def lohi(a):
-        a = a[np.isfinite(a)]
-        return (float(a.min()), float(a.max())) if a.size else (float("nan"), float("nan"))
+    def rng(key):
+        d = diag.get(key) or {}
+        return _f(d.get("min")), _f(d.get("max")), int(d.get("available", 0))
 
+    hansen, ar2, inst, units = rng("hansen_p"), rng("ar2_p"), rng("instruments"), rng("units")
     return AuditSummary(
-        n_variants=len(v), n_ok=len(ok), n_acceptable=_count(v["acceptable"]),
-        has_acceptable=audit.has_acceptable, n_failed=_count(v["status"] == "failed"),
-        n_skipped=_count(v["status"] == "skipped"), varied=varied, terms=tuple(terms),
-        bands=tuple(bands),
-        hansen_low=lohi(hansen)[0], hansen_high=lohi(hansen)[1],
-        n_hansen_reject=_count(hansen_f < t["hansen_reject"]),
-        n_hansen_high=_count(hansen_f >= t["hansen_too_high"]),
-        n_ar2_reject=_count(ar2_f < t["ar2_reject"]), n_ar2=int(ar2_f.size),
-        instruments_low=lohi(inst)[0], instruments_high=lohi(inst)[1],
-        units_low=lohi(units)[0], units_high=lohi(units)[1],
-        n_too_many_instruments=_count(inst > units * t["instruments_per_unit"]),
-        alpha=audit.alpha, model_flags=audit.model_flags)
+        n_variants=int(counts.get("total", len(v))), n_ok=int(counts.get("ok", len(ok))),
+        n_acceptable=int(counts.get("acceptable", 0)), has_acceptable=True,
+        n_failed=int(counts.get("failed", 0)), n_skipped=int(counts.get("skipped", 0)),
+        varied=varied, terms=terms, bands=tuple(bands),
+        hansen_low=hansen[0], hansen_high=hansen[1],
+        n_hansen_reject=int(rule_counts.get("hansen_rejects", 0)),
+        n_hansen_high=int(rule_counts.get("hansen_p_high", 0)),
+        n_ar2_reject=int(rule_counts.get("ar2_rejects", 0)), n_ar2=ar2[2],
+        instruments_low=inst[0], instruments_high=inst[1],
+        units_low=units[0], units_high=units[1],
+        n_too_many_instruments=int(rule_counts.get("instruments_exceed_units", 0)),
+        alpha=verdict.alpha, model_flags=verdict.model,
+        n_untestable=int(counts.get("untestable", 0)), n_rejected=int(counts.get("rejected", 0)),
+        n_duplicates=int(counts.get("duplicates", 0)), n_judged=int(counts.get("judged", 0)),
+        count_untestable=bool(counts.get("count_untestable", False)),
+        base_acceptable=verdict.base_acceptable, base_statement=verdict.base_statement,
+        closest=verdict.closest_acceptable, thresholds=dict(verdict.thresholds),
+        rule_counts=rule_counts)
 
 
 def varied_text(summary: AuditSummary) -> str:
@@ -258,7 +295,7 @@ def varied_text(summary: AuditSummary) -> str:
     return ", ".join(parts[:-1]) + " and " + parts[-1]
 
 
-def rule_figures_text(rule: Rule) -> str:
+def rule_figures_text(rule: Firing) -> str:
     """The figures of a fired rule as 'key = value' pairs."""
     items = []
     for key, value in rule.figures.items():
@@ -311,8 +348,7 @@ def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str,
     estimate with its standard error."""
     v = audit.variants
     settings = list(audit.setting_columns)
-    extra = [c for c in ("acceptable", "flags") if c == "acceptable" and audit.has_acceptable
-             or c in v.columns and c != "acceptable"]
+    extra = [c for c in ("evidence", "duplicate_of", "flags") if c in v.columns]
     headers = (["variant"] + [setting_name(c) for c in settings]
                + ["status", "reason", "instruments", "units", "observations",
                   "Hansen p", "Sargan p", "AR(1) p", "AR(2) p"]
@@ -330,12 +366,8 @@ def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str,
         if "diff_hansen_level_p" in v.columns:
             cells.append(Cell(fmt_p(r["diff_hansen_level_p"]), _num(r["diff_hansen_level_p"])))
         for c in extra:
-            if c == "acceptable":
-                text = ("yes" if r[c] else "no") if r["status"] == "ok" else ""
-                cells.append(Cell(text, text))
-            else:
-                text = "" if pd.isna(r[c]) else str(r[c]).replace(";", ", ")
-                cells.append(Cell(text, text))
+            text = "" if pd.isna(r[c]) else str(r[c]).replace(";", ", ")
+            cells.append(Cell(text, text))
         for term in audit.focus:
             key = (r["variant"], term)
             if key in est.index:
@@ -358,20 +390,9 @@ def _num(x):
     return None if math.isnan(x) else x
 
 
-def rule_catalogue(audit: AuditFolder) -> list[Rule]:
-    """Every rule the audit applies: the catalogue in verdict.json when it has one,
-    else every rule mentioned in it (fired or not), once per id."""
-    seen: dict[str, Rule] = {}
-    for rule in audit.rule_catalogue:
-        seen.setdefault(rule.id, rule)
-    for tv in audit.term_verdicts:
-        for rule in tv.rules:
-            if rule.id not in seen or (not seen[rule.id].source and rule.source):
-                seen[rule.id] = rule
-    for rule in audit.model_flags:
-        if rule.id not in seen or (not seen[rule.id].source and rule.source):
-            seen[rule.id] = rule
-    return list(seen.values())
+def rule_catalogue(audit: AuditFolder) -> list[CatalogueRule]:
+    """Every rule the audit applies: the catalogue in verdict.json."""
+    return list(audit.rule_catalogue)
 
 
 def provenance_items(manifest, prefix: str = "") -> list[tuple[str, str]]:

@@ -225,7 +225,11 @@ def test_keyboard_interrupt_is_130(project, capsys, monkeypatch):
 class _FakeResult:
     def __init__(self, verdicts):
         self.variants = pd.DataFrame({"status": ["ok", "ok", "failed"]})
-        self.verdict = {"terms": {k: {"verdict": v} for k, v in verdicts.items()}}
+        # the smallest verdict document the verdict module could write
+        self.verdict = {"alpha": 0.05, "base_acceptable": True,
+                        "variants": {"ok": 2, "acceptable": 2, "failed": 1},
+                        "terms": {k: {"verdict": v, "reason": f"{v} for a reason"}
+                                  for k, v in verdicts.items()}}
 
 
 @pytest.fixture
@@ -258,7 +262,8 @@ def test_audit_wiring_and_fail_on_fragile(project, capsys, fake_audit):
     assert code == 0, err
     assert fake_audit["audit"] == {"jobs": 2, "cache_dir": out / ".cache", "progress": False}
     assert fake_audit["write"][0] == out and fake_audit["report"] == out
-    assert "y[t-1]: robust" in stdout
+    assert "y[t-1]: robust — robust for a reason" in stdout
+    assert "2 estimated: 2 acceptable, 0 untestable, 0 rejected by their tests (1 failed)" in stdout
     fake_audit["verdicts"] = {"y[t-1]": "fragile", "x[t]": "robust"}
     code, stdout, _ = run(["audit", project / "model.toml", "--out", out, "--no-cache"], capsys)
     assert code == 0 and fake_audit["audit"]["cache_dir"] is None   # rerun into our own folder

@@ -3,6 +3,7 @@
 table.tex, referee.txt, build_report's file handling and the strict reader."""
 from __future__ import annotations
 
+import json
 import re
 import shutil
 import subprocess
@@ -13,7 +14,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from report_fixture import AR, FRAGILE, NOISE_NAME, ROBUST, ROBUST_NAME, copy_folder
+from report_fixture import (AR, FRAGILE, NOISE_NAME, ROBUST, ROBUST_NAME, copy_folder,
+                            rejudge)
 from robustgmm.errors import InputError
 from robustgmm.report import build_report, read_audit_folder
 from robustgmm.report.latex import render_latex, tex
@@ -326,11 +328,17 @@ def test_referee_numbers_equal_the_estimates(built):
     assert f", {n_ok} pass their specification tests (" in flat
     for term in (AR, ROBUST, MARKUP_TERM):
         e = est[(est["term"] == term) & est["variant"].isin(acc_ids)]
-        m = re.search(re.escape(f"coefficient on {term} stays between ") +
-                      r"(-?\d+\.\d+) and (-?\d+\.\d+) \(base model (-?\d+\.\d+), standard error "
-                      r"(\d+\.\d+)\); it is (positive|negative) in (all \d+|\d+ of \d+) and "
-                      r"significant at the 5% level in (all \d+|\d+ of \d+)", flat)
-        assert m, term
+        found = re.search(re.escape(f"coefficient on {term} is ") +
+                          r"(robust|fragile|inconclusive) across the (\d+) acceptable "
+                          r"specifications: it stays between "
+                          r"(-?\d+\.\d+) and (-?\d+\.\d+) \(base model (-?\d+\.\d+), standard "
+                          r"error (\d+\.\d+)\); it is (positive|negative) in (all \d+|\d+ of \d+) "
+                          r"and significant at the 5% level in (all \d+|\d+ of \d+)", flat)
+        assert found, term
+        # the verdict and the number of judged variants are verdict.json's
+        assert found.group(1) == audit.verdict.term(term).verdict
+        assert int(found.group(2)) == n_ok
+        m = type("Shifted", (), {"group": lambda self, i, g=found.groups(): g[i + 1]})()
         lo, hi, base, se = (float(m.group(i)) for i in range(1, 5))
         assert lo == pytest.approx(e["estimate"].min(), abs=5e-4)
         assert hi == pytest.approx(e["estimate"].max(), abs=5e-4)
@@ -396,10 +404,12 @@ def test_values_of_skipped_variants_are_not_called_varied(writable_folder):
                 "ar2_p", "ar_coefficient", "in_bounds"):
         extra[col] = float("nan")
     pd.concat([variants, extra]).to_csv(out / "variants.csv", index=False)
+    rejudge(out)  # the counts are verdict.json's: judge the edited table again
     build_report(out)
     flat = " ".join((out / "referee.txt").read_text().split())
     assert "last instrument lag" not in flat and not re.search(r"(?<![\d.])99\b", flat)
-    assert "2 combinations of settings were skipped as impossible" in flat
+    assert "2 combinations of settings were skipped as impossible or as the same " \
+        "estimation as another" in flat
     md = (out / "report.md").read_text()
     assert "lag window reaches past the panel" in md  # the reason is in the table
 
@@ -435,5 +445,75 @@ def test_an_audit_where_every_variant_failed_still_gets_a_report(writable_folder
     paths = build_report(out)
     assert (out / "report.html") in paths
     flat = " ".join((out / "referee.txt").read_text().split())
-    assert f"the coefficient on {AR} could not be estimated in any specification" in flat
+    assert f"The coefficient on {AR} could not be estimated in any specification" in flat
     assert "3 further specifications could not be estimated" in flat
+
+
+# -- one evaluation: every document reads verdict.json -------------------------
+
+@pytest.mark.parametrize("name", ["main", "thresholds"])
+def test_every_document_agrees_with_the_verdict(writable_folder, name):
+    # The regression case of issue 11 (item 5): with alpha = 0.10 the referee text
+    # said "the AR(2) test rejects at the 10% level in 0 of 48": it counted with
+    # ar2_reject and named alpha. Folder "thresholds" changes alpha and every
+    # threshold; every document must give verdict.json's verdicts, reasons, counts and
+    # thresholds, and the counts must be those of the p-values in variants.csv.
+    from robustgmm.cli import _audit_summary
+    out = writable_folder(name)
+    build_report(out, formats=("png",))
+    v = json.loads((out / "verdict.json").read_text())
+    variants = pd.read_csv(out / "variants.csv", dtype={"variant": str})
+    estimates = pd.read_csv(out / "estimates.csv", dtype={"variant": str})
+    referee = " ".join((out / "referee.txt").read_text().split())
+    md = (out / "report.md").read_text()
+    md_plain = md.replace("\\", "")
+    html = " ".join("".join(_parse((out / "report.html").read_text()).text).split())
+    latex = (out / "table.tex").read_text()
+    th = v["thresholds"]
+    if name == "thresholds":
+        assert v["alpha"] == 0.10 and th["ar2_reject"] == 0.2 and th["count_untestable"]
+
+    ok = variants["status"] == "ok"
+    ar2 = variants.loc[ok, "ar2_p"].dropna()
+    k = int((ar2 < th["ar2_reject"]).sum())
+    assert k == v["diagnostics"]["rule_counts"]["ar2_rejects"]
+    sentence = (f"the AR(2) test rejects at the {100 * th['ar2_reject']:g}% level in {k} of "
+                f"{len(ar2)}")
+    assert sentence in referee, referee
+
+    counts = variants["evidence"].value_counts().to_dict()
+    for cls in ("acceptable", "untestable", "rejected", "failed", "skipped"):
+        assert v["variants"][cls] == counts.get(cls, 0)
+    assert (variants["acceptable"] == (variants["evidence"] == "acceptable")).all()
+    ev = (f"{v['variants']['ok']} estimated: {v['variants']['acceptable']} acceptable, "
+          f"{v['variants']['untestable']} untestable, {v['variants']['rejected']} rejected "
+          f"by their tests")
+    terminal = _audit_summary(type("R", (), {"verdict": v})(), out, [])
+    for doc in (md, html, terminal):
+        assert ev in doc
+
+    judged_classes = ["acceptable", "untestable"] if th["count_untestable"] else ["acceptable"]
+    judged = variants.loc[variants["evidence"].isin(judged_classes)
+                          & variants["duplicate_of"].isna(), "variant"]
+    for term, tv in v["terms"].items():
+        assert f"{term}: {tv['verdict']} — {tv['reason']}" in terminal
+        assert f"`: **{tv['verdict'].upper()}**" in md
+        assert f"**Why:** {tv['reason']}." in md_plain and f"Why: {tv['reason']}." in html
+        assert f"\\texttt{{{tex(term)}}} {tv['verdict']}" in latex
+        assert tv["reason"][1:] in referee
+        e = estimates[(estimates["term"] == term) & estimates["variant"].isin(judged)]
+        n = tv["figures"]["judged"]
+        assert n == len(e)
+        if n:
+            assert f"coefficient on {term} is {tv['verdict']} across the {n}" in referee
+            assert tv["figures"]["significant"] == int((e["p_value"] < v["alpha"]).sum())
+
+    fired = {f["id"]: f for f in v["model"]}
+    if "hansen_p_high" in fired:
+        f = fired["hansen_p_high"]["figures"]
+        assert (f"the Hansen p-value is at or above {th['hansen_too_high']:g} with at least "
+                f"{th['instruments_per_unit_warn']:g} instruments per unit (or about 1) in "
+                f"{f['variants']} of {f['of_ok']}") in referee
+    for key, value in th.items():  # the thresholds in force, in both reports
+        text = str(value).lower() if isinstance(value, bool) else f"{value:g}"
+        assert f"{key} = {text}" in md_plain and f"{key} = {text}" in html, key
