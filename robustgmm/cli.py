@@ -308,7 +308,11 @@ def cmd_audit(args) -> int:
             _out(frame.to_string(index=False))
         counts = frame["status"].value_counts() if "status" in frame else None
         if counts is not None:
-            _out("\n" + ", ".join(f"{n} {s}" for s, n in counts.items()))
+            dups = int((frame["duplicate_of"].fillna("") != "").sum()) \
+                if "duplicate_of" in frame else 0
+            _out("\n" + ", ".join(f"{n} {s}" for s, n in counts.items())
+                 + (f"; {dups} duplicate{'s' if dups != 1 else ''} of another variant "
+                    f"(column duplicate_of)" if dups else ""))
         return EXIT_OK
     out = check_output_folder(args.out, args.force)
     from .audit import audit as run_audit, write_audit

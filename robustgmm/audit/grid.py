@@ -28,8 +28,12 @@ stated, only when it cannot be estimated or would repeat another variant exactly
 * a ``last_lag`` that reaches past the deepest lag the panel has gives exactly the
   estimation of ``last_lag = "all"`` (a level lagged ``P`` or more periods does not
   exist on a ``P``-period calendar; see :func:`reaches_past_panel`): when such a
-  twin is in the grid the later one is skipped as a duplicate of the earlier, so
-  nothing is estimated twice.
+  twin is in the grid the later one is skipped as a duplicate of the earlier
+  (``duplicate_of`` names it), so nothing is estimated twice.
+
+With counts (``robustgmm audit --plan``), variants that differ only in ``last_lag``
+and have the same number of instruments have the same instrument set (the windows
+are nested): the later one gets ``duplicate_of`` (:func:`same_instrument_sets`).
 
 When the core cannot build a variant's design for a reason that is a property of the
 data (no observations left, a regressor without variation in the sample), the
@@ -110,6 +114,9 @@ class Variant:
     parameters: int | None = None
     units: int | None = None
     observations: int | None = None
+    #: id of an earlier variant with the same estimation (plan-time duplicates:
+    #: a deeper last_lag that adds no instrument), else ""
+    duplicate_of: str = ""
 
     def settings_dict(self) -> dict:
         return dict(self.settings)
@@ -363,13 +370,38 @@ def plan(spec: Spec, panels: Mapping[str, Any], variants: Sequence[Variant] | No
         twin = effective.get(key)
         if twin is not None and not v.is_base:
             out.append(dataclasses.replace(
-                v, status=SKIPPED,
+                v, status=SKIPPED, duplicate_of=twin,
                 reason=f"same estimation as variant {twin}: last_lag = {v.spec.last_lag} "
                        f"reaches past the deepest lag of the {v.spec.sample.name} "
                        f"({panel.n_periods} periods), which makes it last_lag = all"))
             continue
         effective.setdefault(key, v.id)
         out.append(_with_counts(v, panel) if counts else v)
+    return same_instrument_sets(out) if counts else out
+
+
+def same_instrument_sets(variants: Sequence[Variant]) -> list[Variant]:
+    """Mark variants whose instrument set equals an earlier variant's (``duplicate_of``).
+
+    Variants that differ only in ``last_lag`` have nested instrument sets (a deeper
+    window adds columns, never removes one; the estimation sample does not depend on
+    the window), so equal instrument counts mean identical sets and identical
+    estimates: the deeper window reaches past every lag the data have. They stay
+    planned (the audit estimates them in the same family at almost no cost and
+    merges them after); the plan shows the twin."""
+    first: dict[tuple, Variant] = {}
+    out = []
+    for v in variants:
+        if v.status != PLANNED or v.instruments is None or v.duplicate_of:
+            out.append(v)
+            continue
+        key = (settings_hash(dataclasses.replace(v.spec, last_lag=None)), v.instruments)
+        twin = first.get(key)
+        if twin is None:
+            first[key] = v
+            out.append(v)
+        else:
+            out.append(dataclasses.replace(v, duplicate_of=twin.id))
     return out
 
 
@@ -421,11 +453,11 @@ def plan_table(spec: Spec, variants: Sequence[Variant]) -> pd.DataFrame:
         ipu = (v.instruments / v.units) if (v.instruments is not None and v.units) else None
         row.update({"status": v.status, "reason": v.reason, "instruments": v.instruments,
                     "parameters": v.parameters, "units": v.units,
-                    "instruments_per_unit": ipu})
+                    "instruments_per_unit": ipu, "duplicate_of": v.duplicate_of})
         rows.append(row)
     frame = pd.DataFrame(rows, columns=["variant", "order", "is_base", *columns, "status",
                                         "reason", "instruments", "parameters", "units",
-                                        "instruments_per_unit"])
+                                        "instruments_per_unit", "duplicate_of"])
     for col in ("instruments", "parameters", "units"):
         frame[col] = frame[col].astype("Int64")
     frame["instruments_per_unit"] = frame["instruments_per_unit"].astype(float)

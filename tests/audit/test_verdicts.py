@@ -417,3 +417,29 @@ def test_typed_verdict_round_trips_through_json():
     assert again.to_dict() == d
     assert again.term("x[t]").verdict is verdicts.Verdict.FRAGILE
     assert isinstance(again.term("x[t]").rules[0], verdicts.Firing)
+
+
+def test_deep_last_lag_duplicates_are_found_at_plan_time_and_merged(tmp_path):
+    # 6 periods, but y and x are missing in the first one for every unit: levels
+    # lagged 5 periods never exist, so last_lag = 4 gives the instrument set of "all"
+    # although it does not reach past the calendar. The plan shows it (duplicate_of),
+    # the audit estimates it and merges it (the estimates agree to rounding).
+    from helpers_audit import write_panel
+    from robustgmm.audit.grid import load_panels, plan
+    path = write_panel(tmp_path, n_units=150, n_periods=6, seed=2)
+    frame = pd.read_csv(path)
+    frame.loc[frame["period"] == frame["period"].min(), ["y", "x"]] = np.nan
+    frame.to_csv(path, index=False)
+    spec = make_spec(tmp_path, {"last_lag": [3, 4, "all"]},
+                     instruments={"form": "collapsed"}, method={"equations": "difference"},
+                     audit={"focus": ["x[t]"]})
+    planned = plan(spec, load_panels(spec))
+    by_lag = {v.spec.last_lag: v for v in planned}
+    assert by_lag[3].duplicate_of == "" and by_lag[3].instruments < by_lag[None].instruments
+    assert by_lag[4].instruments == by_lag[None].instruments
+    assert by_lag[4].duplicate_of == by_lag[None].id  # the base ("all") comes first
+    result = audit(spec, jobs=1)
+    dup = result.variants.set_index("variant")["duplicate_of"]
+    assert dup[by_lag[4].id] == by_lag[None].id and dup[by_lag[3].id] == ""
+    assert result.verdict["variants"]["duplicates"] == 1
+    assert result.verdict["terms"]["x[t]"]["figures"]["duplicates"] == 1
