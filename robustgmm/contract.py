@@ -108,10 +108,15 @@ VARIANTS = Table("variants.csv", (
     Column("unavailable_tests", "text",
            "tests not reported because they would not have their stated distribution, "
            "each 'name: reason', separated by ' | ' (e.g. Sargan in system GMM)"),
-    Column("evidence", "text", "acceptable, untestable, rejected, failed or skipped"),
-    Column("acceptable", "bool", "evidence is acceptable: estimated and no rejection rule fired"),
+    Column("evidence", "text",
+           "acceptable (estimated, every required test computed and passed), untestable "
+           "(no test rejects but one cannot be computed, e.g. an exactly identified Hansen "
+           "test), rejected (a test rejects), failed or skipped"),
+    Column("acceptable", "bool", "`evidence` is acceptable (kept for compatibility)"),
     Column("duplicate_of", "text",
-           "the id of the earlier variant with the same estimates (empty when none)"),
+           "the id of the earlier variant with the same estimates to 1e-10 (empty when "
+           "none); a duplicate casts no vote. Also set on variants the plan skips as the "
+           "same estimation (a deeper `last_lag` that gives the same instrument set)"),
     Column("flags", "text", "variant rules that fired, separated by ';'"),
     Column("warnings", "text", "estimation warnings, separated by ' | '"),
 ), settings_after="is_base")
