@@ -30,9 +30,15 @@ def _load(name: str):
         from . import data as module
     elif name in ("fit", "FitResult"):
         from . import core as module
-    elif name in ("audit", "AuditResult", "write_audit"):
-        from .audit import AuditResult, audit, write_audit
-        return {"audit": audit, "AuditResult": AuditResult, "write_audit": write_audit}[name]
+    elif name == "audit":  # robustgmm.audit is a subpackage too: take its function
+        from .audit import audit
+        return audit
+    elif name == "AuditResult":
+        from .audit import AuditResult
+        return AuditResult
+    elif name == "write_audit":
+        from .audit import write_audit
+        return write_audit
     elif name == "build_report":
         from . import report as module
     elif name == "run_demo":

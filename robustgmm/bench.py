@@ -139,31 +139,6 @@ def _best(fn: Callable[[], object]) -> float:
     return time.perf_counter() - start
 
 
-def _dense_instruments(spec, panel) -> np.ndarray:
-    """The stacked instrument matrix (one row per transformed or level row of every
-    unit, one column per kept instrument) as a dense C-ordered array."""
-    from .core import GMMProblem
-    from .core.design import LEVEL, TRANSFORMED
-    prob = GMMProblem(spec, panel)
-    d = prob.design
-    ch = d.chunk(0, panel.n_units)
-    pos = {int(j): p for p, j in enumerate(d.keep_z)}
-    parts = []
-    for eq in (TRANSFORMED, LEVEL):
-        for t in range(d.P):
-            present = np.flatnonzero(ch.rows[eq][:, t])
-            if not present.size:
-                continue
-            z = np.zeros((present.size, len(d.keep_z)))
-            for block, vals in ch.blocks:
-                if block.equation == eq and block.t == t:
-                    for k, c in enumerate(block.cols):
-                        if int(c) in pos:
-                            z[:, pos[int(c)]] += vals[present, k]
-            parts.append(z)
-    return np.ascontiguousarray(np.vstack(parts))
-
-
 def _machine() -> dict:
     cpu = platform.processor() or platform.machine()
     try:
@@ -225,12 +200,13 @@ def _fmt_s(x: float) -> str:
 # ---------------------------------------------------------------------------
 def marginal_cost(sizes: Sizes, echo=print) -> Outcome:
     from .core import fit
+    from .core.dense import dense_rows
     out = Outcome("1. Marginal cost against one dense Z'Z")
     spec = _spec(equations="system", form="per-period", steps=2, time_effects=True)
     n1, n2 = sizes.marginal_units
     T = sizes.marginal_periods
     panels = {n: _panel(n, T, seed=11) for n in (n1, n2)}
-    dense = {n: _dense_instruments(spec, panels[n]) for n in (n1, n2)}
+    dense = {n: dense_rows(spec, panels[n])[2] for n in (n1, n2)}
     fit(spec, panels[n1])  # warm up imports and caches
     t_fit = {n: math.inf for n in (n1, n2)}
     t_zz = {n: math.inf for n in (n1, n2)}
@@ -388,11 +364,8 @@ def _scale_workload(sizes: Sizes) -> dict:
         n3 = sizes.scale_aim_units
         out.ratios.append((f"peak memory at N = {n3:,} / 8 GB (aim)",
                            results[n3]["peak_rss"] / (8 * GB), 1.0, None))
-    try:
-        from .core.engine import DEFAULT_MEMORY_MB, MEMORY_ENV
-        budget = os.environ.get(MEMORY_ENV) or DEFAULT_MEMORY_MB
-    except ImportError:  # an older core (the bench also measures earlier versions)
-        MEMORY_ENV, budget = "ROBUSTGMM_MEMORY_MB", "default"
+    from .core.engine import DEFAULT_MEMORY_MB, MEMORY_ENV
+    budget = os.environ.get(MEMORY_ENV) or DEFAULT_MEMORY_MB
     out.notes.append(f"data written as parquet; every run in a fresh interpreter, best of "
                      f"{max(1, sizes.repeats)} alternating runs per size (one run for the aim); "
                      f"memory budget of the core {budget} MB ({MEMORY_ENV})")
@@ -423,28 +396,18 @@ def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
     base = _spec()
     specs = audit_specs(base)
     core.fit(specs[0], panel)  # warm-up
+    from .audit import audit as run_audit
     t_single = math.inf
     t_family = math.inf
-    has_family = hasattr(core, "fit_family") and hasattr(core, "share_key")
     for _ in range(sizes.repeats):
         t_single = min(t_single, _best(lambda: [_try_fit(core.fit, s, panel) for s in specs]))
-        if has_family:
-            t_family = min(t_family, _best(lambda: _fit_grouped(core, specs, panel)))
+        t_family = min(t_family, _best(lambda: _fit_grouped(core, specs, panel)))
     out.rows.append(("variants", f"{len(specs)} on N = {N:,}, T = {T}"))
     out.rows.append(("sum of one-by-one fits", _fmt_s(t_single)))
-    if has_family:
-        groups = len({core.share_key(s) for s in specs})
-        out.rows.append((f"shared work (fit_family over {groups} share_key groups)",
-                         _fmt_s(t_family)))
-        out.ratios.append(("core shared work / one by one", t_family / t_single, 0.6, None))
-    else:
-        out.notes.append("core.fit_family is not available: shared work not measured")
-    try:
-        from .audit import audit as run_audit
-    except (ImportError, AttributeError):
-        out.notes.append("the audit pipeline (robustgmm.audit) is not available: "
-                         "audit timings not measured")
-        return out
+    groups = len({core.share_key(s) for s in specs})
+    out.rows.append((f"shared work (fit_family over {groups} share_key groups)",
+                     _fmt_s(t_family)))
+    out.ratios.append(("core shared work / one by one", t_family / t_single, 0.6, None))
     spec = _audit_base_spec(base)
     with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
         from .simulate import simulate_panel
@@ -494,6 +457,7 @@ def _fit_grouped(core, specs, panel):
 # ---------------------------------------------------------------------------
 def reference(sizes: Sizes, echo=print) -> Outcome:
     from .core import fit
+    from .core.dense import dense_rows
     out = Outcome("4. Against linearmodels IVGMM (clustered weight), identical FOD problem")
     try:
         from linearmodels.iv import IVGMM
@@ -505,7 +469,7 @@ def reference(sizes: Sizes, echo=print) -> Outcome:
     panel = _panel(N, T, seed=31)
     spec = _spec(equations="difference", transform="fod", steps=2, form="per-period",
                  time_effects=True)
-    y, X, Z, unit = _dense_stack(spec, panel)
+    y, X, Z, unit, _ = dense_rows(spec, panel, level=False)
 
     def theirs():
         return IVGMM(y, None, X, Z, weight_type="clustered", clusters=unit).fit(
@@ -529,32 +493,6 @@ def reference(sizes: Sizes, echo=print) -> Outcome:
     ]
     out.ratios.append(("robustgmm / linearmodels", t_ours / t_ref, 0.5, None))
     return out
-
-
-def _dense_stack(spec, panel):
-    """(y, X, Z, unit) of the stacked transformed rows with the kept columns."""
-    from .core import GMMProblem
-    from .core.design import TRANSFORMED
-    prob = GMMProblem(spec, panel)
-    d = prob.design
-    ch = d.chunk(0, panel.n_units)
-    ys, xs, zs, us = [], [], [], []
-    pos = {int(j): p for p, j in enumerate(d.keep_z)}
-    for t in range(d.P):
-        idx = np.flatnonzero(ch.rows[TRANSFORMED][:, t])
-        if not idx.size:
-            continue
-        z = np.zeros((idx.size, len(d.keep_z)))
-        for block, vals in ch.blocks:
-            if block.equation == TRANSFORMED and block.t == t:
-                for k, c in enumerate(block.cols):
-                    if int(c) in pos:
-                        z[:, pos[int(c)]] += vals[idx, k]
-        ys.append(ch.y[TRANSFORMED][idx, t])
-        xs.append(ch.x[TRANSFORMED][idx, t][:, d.keep_x])
-        zs.append(z)
-        us.append(idx)
-    return np.concatenate(ys), np.vstack(xs), np.vstack(zs), np.concatenate(us)
 
 
 # ---------------------------------------------------------------------------

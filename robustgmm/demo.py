@@ -56,6 +56,7 @@ import numpy as np
 import pandas as pd
 
 from .atomic import atomic_write_json, atomic_write_text
+from .simulate import PanelProcess, long_frame, simulate_arrays
 
 BURN_IN = 50
 TRUTH_NAME = "truth.json"
@@ -99,12 +100,12 @@ def _round(frame: pd.DataFrame, columns) -> pd.DataFrame:
     return frame
 
 
-def _long(unit_ids, years, **columns) -> pd.DataFrame:
-    """Long frame from (N, T) arrays, sorted by unit then year."""
-    n, t = next(iter(columns.values())).shape
-    frame = pd.DataFrame({"unit": np.repeat(unit_ids, t), "year": np.tile(years, n),
-                          **{k: v.reshape(-1) for k, v in columns.items()}})
-    return frame
+def _frame(arrays: dict, units, unit: str, years, names, round_: bool = True) -> pd.DataFrame:
+    """The long frame of a scenario: the simulated ``y``, ``x``, ``w`` under their
+    scenario names, sorted by unit then year."""
+    named = dict(zip(names, (arrays["y"], arrays["x"], arrays["w"])))
+    frame = long_frame(units, years, named, unit=unit, period="year")
+    return _round(frame, names) if round_ else frame
 
 
 # ---------------------------------------------------------------------------
@@ -119,31 +120,20 @@ DEMO_PROCESS = {"rho_staff_hours": 0.97, "staff_hours_on_effect": 0.30,
 
 def simulate_bakeries(seed: int, process: dict = DEMO_PROCESS,
                       truth: dict = DEMO_TRUTH) -> pd.DataFrame:
-    """Columns bakery, year, orders, staff_hours, flour_price. The loop runs over
-    years; each step is vectorised over bakeries."""
-    rng = np.random.default_rng(seed)
+    """Columns bakery, year, orders, staff_hours, flour_price: the process of
+    :mod:`robustgmm.simulate` with staff hours endogenous (they react to the current
+    shock) and an autoregressive flour price."""
     p = process
-    n, T = p["units"], p["years"]
-    rho, beta, gamma = truth["orders[t-1]"], truth["staff_hours[t]"], truth["flour_price[t]"]
-    eta = rng.normal(0.0, p["sd_effect"], n)
-    # stationary means given eta (the flour price has mean zero)
-    mean_s = p["staff_hours_on_effect"] * eta / (1.0 - p["rho_staff_hours"])
-    mean_o = (eta + beta * mean_s) / (1.0 - rho)
-    s = mean_s + rng.normal(0.0, 1.0, n)
-    f = rng.normal(0.0, 1.0, n)
-    o = mean_o + rng.normal(0.0, 1.0, n)
-    out = {k: np.empty((n, T)) for k in ("orders", "staff_hours", "flour_price")}
-    for t in range(BURN_IN + T):
-        eps = rng.normal(0.0, p["sd_shock"], n)
-        s = (p["rho_staff_hours"] * s + p["staff_hours_on_effect"] * eta
-             + p["staff_hours_on_shock"] * eps + rng.normal(0.0, p["sd_staff_hours_noise"], n))
-        f = p["rho_flour_price"] * f + rng.normal(0.0, p["sd_flour_price_noise"], n)
-        o = rho * o + beta * s + gamma * f + eta + eps
-        if t >= BURN_IN:
-            k = t - BURN_IN
-            out["orders"][:, k], out["staff_hours"][:, k], out["flour_price"][:, k] = o, s, f
-    frame = _long([f"B{i + 1:03d}" for i in range(n)], p["first_year"] + np.arange(T), **out)
-    return _round(frame.rename(columns={"unit": "bakery"}), out)
+    proc = PanelProcess(rho=truth["orders[t-1]"], beta=truth["staff_hours[t]"],
+                        gamma=truth["flour_price[t]"], rho_x=p["rho_staff_hours"],
+                        tau=p["staff_hours_on_effect"], theta=p["staff_hours_on_shock"],
+                        sigma_eta=p["sd_effect"], sigma_eps=p["sd_shock"],
+                        sigma_v=p["sd_staff_hours_noise"], rho_w=p["rho_flour_price"],
+                        sigma_w=p["sd_flour_price_noise"], burn_in=BURN_IN)
+    arrays = simulate_arrays(np.random.default_rng(seed), p["units"], p["years"], proc,
+                             heteroskedastic=False, draw_w_start=True)
+    return _frame(arrays, [f"B{i + 1:03d}" for i in range(p["units"])], "bakery",
+                  p["first_year"] + np.arange(p["years"]), ("orders", "staff_hours", "flour_price"))
 
 
 DEMO_MODEL = """\
@@ -223,29 +213,14 @@ def simulate_clinics(seed: int) -> pd.DataFrame:
     ``nurses_it = 0.7 nurses_i,t-1 + 0.3 mu_i + 0.5 eps_i,t-1 + v_it``: staffing
     reacts to last year's waiting-time shock, so nurses are predetermined (correlated
     with past shocks, not with the current one) rather than endogenous."""
-    rng = np.random.default_rng(seed)
     p, b = CLINICS_PROCESS, CLINICS_TRUTH
-    n, T = p["units"], p["years"]
-    mu = rng.normal(0.0, 1.0, n)
-    mean_n = p["nurses_on_effect"] * mu / (1.0 - p["rho_nurses"])
-    mean_w = (mu + b["nurses[t]"] * mean_n) / (1.0 - b["wait_days[t-1]"])
-    nurses = mean_n + rng.normal(0.0, 1.0, n)
-    wait = mean_w + rng.normal(0.0, 1.0, n)
-    eps_prev = np.zeros(n)
-    out = {k: np.empty((n, T)) for k in ("wait_days", "nurses", "outbreak")}
-    for t in range(BURN_IN + T):
-        eps = rng.normal(0.0, 1.0, n)
-        nurses = (p["rho_nurses"] * nurses + p["nurses_on_effect"] * mu
-                  + p["nurses_on_last_shock"] * eps_prev + rng.normal(0.0, 1.0, n))
-        outbreak = rng.normal(0.0, 1.0, n)
-        wait = (b["wait_days[t-1]"] * wait + b["nurses[t]"] * nurses
-                + b["outbreak[t]"] * outbreak + mu + eps)
-        eps_prev = eps
-        if t >= BURN_IN:
-            k = t - BURN_IN
-            out["wait_days"][:, k], out["nurses"][:, k], out["outbreak"][:, k] = wait, nurses, outbreak
-    frame = _long([f"C{i + 1:03d}" for i in range(n)], p["first_year"] + np.arange(T), **out)
-    return _round(frame.rename(columns={"unit": "clinic"}), out)
+    proc = PanelProcess(rho=b["wait_days[t-1]"], beta=b["nurses[t]"], gamma=b["outbreak[t]"],
+                        rho_x=p["rho_nurses"], tau=p["nurses_on_effect"], theta=0.0,
+                        lam=p["nurses_on_last_shock"], burn_in=BURN_IN)
+    arrays = simulate_arrays(np.random.default_rng(seed), p["units"], p["years"], proc,
+                             heteroskedastic=False)
+    return _frame(arrays, [f"C{i + 1:03d}" for i in range(p["units"])], "clinic",
+                  p["first_year"] + np.arange(p["years"]), ("wait_days", "nurses", "outbreak"))
 
 
 CLINICS_MODEL = """\
@@ -325,26 +300,17 @@ def simulate_orchards(seed: int) -> pd.DataFrame:
     n, T = p["units"], p["years"]
     region = np.array(p["regions"])[rng.integers(0, 3, n)]
     beta = np.where(region == "highland", p["irrigation_effect_highland"], b["irrigation[t]"])
-    alpha = rng.normal(0.0, 1.0, n)
-    mean_i = p["irrigation_on_effect"] * alpha / (1.0 - p["rho_irrigation"])
-    mean_h = (alpha + beta * mean_i) / (1.0 - b["harvest[t-1]"])
-    irr = mean_i + rng.normal(0.0, 1.0, n)
-    harvest = mean_h + rng.normal(0.0, 1.0, n)
-    out = {k: np.empty((n, T)) for k in ("harvest", "irrigation", "frost_days")}
-    for t in range(BURN_IN + T):
-        eps = rng.normal(0.0, 1.0, n)
-        irr = (p["rho_irrigation"] * irr + p["irrigation_on_effect"] * alpha
-               + p["irrigation_on_shock"] * eps + rng.normal(0.0, 1.0, n))
-        frost = rng.normal(0.0, 1.0, n)
-        harvest = b["harvest[t-1]"] * harvest + beta * irr + b["frost_days[t]"] * frost + alpha + eps
-        if t >= BURN_IN:
-            k = t - BURN_IN
-            out["harvest"][:, k], out["irrigation"][:, k], out["frost_days"][:, k] = harvest, irr, frost
-    frame = _long([f"K{i + 1:03d}" for i in range(n)], p["first_year"] + np.arange(T), **out)
+    proc = PanelProcess(rho=b["harvest[t-1]"], beta=b["irrigation[t]"], gamma=b["frost_days[t]"],
+                        rho_x=p["rho_irrigation"], tau=p["irrigation_on_effect"],
+                        theta=p["irrigation_on_shock"], burn_in=BURN_IN)
+    arrays = simulate_arrays(rng, n, T, proc, beta=beta, heteroskedastic=False)
+    frame = _frame(arrays, [f"K{i + 1:03d}" for i in range(n)], "coop",
+                   p["first_year"] + np.arange(T), ("harvest", "irrigation", "frost_days"),
+                   round_=False)
     frame.insert(2, "region", np.repeat(region, T))
     keep = rng.uniform(size=len(frame)) >= p["share_rows_missing"]
     frame = frame[keep].reset_index(drop=True)
-    return _round(frame.rename(columns={"unit": "coop"}), out)
+    return _round(frame, ("harvest", "irrigation", "frost_days"))
 
 
 ORCHARDS_MODEL = """\

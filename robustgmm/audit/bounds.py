@@ -32,7 +32,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 
 from ..errors import EstimationError
 from ..spec import Spec
@@ -88,19 +87,6 @@ class Bounds:
             "units": self.units,
             "persistence": self.persistence,
         }
-
-    @classmethod
-    def from_dict(cls, d: dict) -> "Bounds":
-        return cls(terms=tuple(BoundEstimate(**t) for t in d["terms"]),
-                   observations=int(d["observations"]), units=int(d["units"]),
-                   persistence=d["persistence"])
-
-    def to_frame(self) -> pd.DataFrame:
-        frame = pd.DataFrame([self.to_dict()["terms"][i] for i in range(len(self.terms))],
-                             columns=["term", "ols", "ols_std_error", "fe", "fe_std_error"])
-        frame["observations"] = self.observations
-        frame["units"] = self.units
-        return frame
 
 
 # ---------------------------------------------------------------------------

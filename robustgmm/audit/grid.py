@@ -291,20 +291,11 @@ def _core():
 def design_counts(spec: Spec, panel) -> tuple[int, int]:
     """(instruments, parameters) of a variant on its panel, before estimation.
 
-    Uses the core's moment-sum setup (``core.GMMProblem``: the instrument columns
-    left after dropping empty ones, and the coefficients left after dropping
-    collinear period dummies), which is also what ``core.count_instruments``
-    reports. Raises :class:`EstimationError` when the design cannot be built,
-    including the order condition (fewer instruments than parameters), whose
-    message states both counts.
+    :func:`robustgmm.core.design_counts`. Raises :class:`EstimationError` when the
+    design cannot be built, including the order condition (fewer instruments than
+    parameters), whose message states both counts.
     """
-    core = _core()
-    problem = getattr(core, "GMMProblem", None)
-    if problem is not None:
-        prob = problem(spec, panel)
-        return int(prob.L), int(prob.K)
-    n_instr = int(core.count_instruments(spec, panel))
-    return n_instr, int(core.count_parameters(spec, panel))
+    return _core().design_counts(spec, panel)
 
 
 def reaches_past_panel(spec: Spec, n_periods: int) -> bool:

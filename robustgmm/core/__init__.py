@@ -22,16 +22,28 @@ from .family import fit, fit_family, invalid_reason, share_key
 from .problem import GMMProblem
 from .results import Counts, FitResult, TermEstimate, TestResult
 
+# what the other layers use (the audit's grid, runner and bounds; the CLI); the
+# design and the moment problem are internals, imported from their modules
 __all__ = ["fit", "fit_family", "share_key", "invalid_reason", "count_instruments",
-           "estimation_sample", "FitResult", "TermEstimate", "TestResult", "Counts", "Design",
-           "GMMProblem"]
+           "design_counts", "estimation_sample", "FitResult", "TermEstimate", "TestResult",
+           "Counts"]
+
+
+def design_counts(spec: Spec, panel: Panel) -> tuple[int, int]:
+    """(instruments, parameters) the model uses on this panel, before estimating:
+    the instrument columns left after dropping empty ones, redundant time moments
+    and the instruments of dropped period dummies, and the coefficients left after
+    dropping those dummies. Raises :class:`~robustgmm.errors.EstimationError` when
+    the design cannot be built (including the order condition). Costs about one
+    first-moment pass."""
+    problem = GMMProblem(spec, panel)
+    return int(problem.L), int(problem.K)
 
 
 def count_instruments(spec: Spec, panel: Panel) -> int:
-    """Number of instrument columns the model uses on this panel (after dropping
-    empty columns, redundant time moments and the instruments of dropped period
-    dummies)."""
-    return GMMProblem(spec, panel).L
+    """Number of instrument columns the model uses on this panel (see
+    :func:`design_counts`)."""
+    return design_counts(spec, panel)[0]
 
 
 def estimation_sample(spec: Spec, panel: Panel) -> np.ndarray:

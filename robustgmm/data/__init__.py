@@ -66,11 +66,6 @@ class Panel:
                 out[:, :lag] = arr[:, -lag:]
         return out
 
-    def take_units(self, index) -> "Panel":
-        return Panel(self.units[index], self.periods,
-                     {k: v[index] for k, v in self.values.items()},
-                     self.source, self.data_hash, self.dropped_missing)
-
 
 def hash_frame(frame: pd.DataFrame, unit: str, period: str, columns) -> str:
     """sha256 of the used columns in canonical (unit, period) order, so the hash
@@ -140,14 +135,6 @@ def filter_columns(spec, samples=()) -> tuple[str, ...]:
     for s in (spec.sample, *samples):
         if s is not None and s.exclude_column is not None:
             cols[s.exclude_column] = None
-    return tuple(cols)
-
-
-def needed_columns(spec) -> tuple[str, ...]:
-    """Unit, period, the model's columns and every sample-filter column (base and
-    varied samples), without repeats, in that order."""
-    cols = dict.fromkeys([spec.unit, spec.period, *spec.used_columns(),
-                          *filter_columns(spec, spec.vary.samples)])
     return tuple(cols)
 
 

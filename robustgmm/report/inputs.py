@@ -75,15 +75,6 @@ class AuditFolder:
         return self.variants[self.variants["status"] == "ok"]
 
     @property
-    def varied_settings(self) -> tuple[str, ...]:
-        """Settings that take more than one value among the variants."""
-        out = []
-        for col in self.setting_columns:
-            if self.variants[col].astype(str).nunique(dropna=False) > 1:
-                out.append(col)
-        return tuple(out)
-
-    @property
     def outcome(self) -> str | None:
         """The outcome variable named in the manifest."""
         value = self.manifest["outcome"]
@@ -95,10 +86,6 @@ class AuditFolder:
         terms = list(dict.fromkeys(self.bounds["term"].astype(str)))
         known = set(self.estimates["term"])
         return tuple(t for t in terms if t in known)
-
-    @property
-    def acceptable_variants(self) -> pd.DataFrame:
-        return self.variants[self.variants["acceptable"]]
 
     def term_estimates(self, term: str, *, ok_only: bool = True,
                        acceptable_only: bool = False) -> pd.DataFrame:

@@ -19,6 +19,7 @@ import pytest
 
 from robustgmm import cli
 from robustgmm.cli import main
+from robustgmm.simulate import PanelProcess, simulate_panel
 
 MODEL = """\
 [data]
@@ -46,16 +47,11 @@ last_lag = 3
 
 
 def simulate(n=200, periods=8, rho=0.5, beta=1.0, seed=1):
-    """y_it = rho y_i,t-1 + beta x_it + a_i + e_it, started near its stationary mean."""
-    rng = np.random.default_rng(seed)
-    a = rng.normal(size=n)
-    x = rng.normal(size=(n, periods + 20))
-    y = np.zeros((n, periods + 20))
-    y[:, 0] = a / (1 - rho)
-    for t in range(1, periods + 20):
-        y[:, t] = rho * y[:, t - 1] + beta * x[:, t] + a + rng.normal(size=n)
-    rows = [(i, 2000 + t, y[i, t + 20], x[i, t + 20]) for i in range(n) for t in range(periods)]
-    return pd.DataFrame(rows, columns=["id", "year", "y", "x"])
+    """y_it = rho y_i,t-1 + beta x_it + a_i + e_it with x exogenous (robustgmm.simulate,
+    started at its stationary mean)."""
+    process = PanelProcess(rho=rho, beta=beta, gamma=0.0, tau=0.0, theta=0.0)
+    frame = simulate_panel(n, periods, process, seed=seed, first_period=2000)
+    return frame.drop(columns="w").rename(columns={"unit": "id", "period": "year"})
 
 
 @pytest.fixture

@@ -16,6 +16,7 @@ import pandas as pd
 import pytest
 
 from robustgmm.cli import main
+from robustgmm.simulate import PanelProcess, simulate_panel
 
 GOOD_MODEL = """\
 [data]
@@ -52,17 +53,14 @@ equations = ["difference", "system"]
 
 
 def good_frame(n=60, periods=7, seed=0) -> pd.DataFrame:
-    """An invented AR(1) panel: y = 0.5 y[t-1] + x + firm effect + noise."""
-    rng = np.random.default_rng(seed)
-    a = rng.normal(size=n)
-    rows = []
-    for i in range(n):
-        y = a[i] / 0.5
-        for t in range(periods):
-            x = 0.3 * a[i] + rng.normal()
-            y = 0.5 * y + x + a[i] + rng.normal()
-            rows.append((i + 1, 2001 + t, y, x, i % 3, x + rng.normal()))
-    return pd.DataFrame(rows, columns=["firm", "year", "y", "x", "sector", "z"])
+    """An invented AR(1) panel (robustgmm.simulate): y = 0.5 y[t-1] + x + firm effect
+    + noise, x exogenous, a sector per firm and an extra instrument z = x + noise."""
+    process = PanelProcess(rho=0.5, beta=1.0, gamma=0.0, rho_x=0.0, tau=0.3, theta=0.0)
+    frame = simulate_panel(n, periods, process, seed=seed).drop(columns="w")
+    frame = frame.rename(columns={"unit": "firm", "period": "year"})
+    frame["sector"] = (frame["firm"] - 1) % 3
+    frame["z"] = frame["x"] + np.random.default_rng(seed + 1).normal(size=len(frame))
+    return frame
 
 
 @dataclass
@@ -180,6 +178,10 @@ MODEL_CASES = [
                '[instruments] extra = ["y"]'),
     model_case("unsupported data type", sub('"panel.csv"', '"panel.sav"'),
                '[data] file = "panel.sav"', "unsupported file type .sav"),
+    model_case("sample period not a number", add('[sample]\nperiod_from = "2003"'),
+               '[sample] period_from = "2003"', "must be a whole number"),
+    model_case("sample exclude without values", add('[sample]\nexclude = {column = "sector"}'),
+               "[sample] exclude values: is missing"),
     model_case("unit equals period", sub('period = "year"', 'period = "firm"'),
                '[data] period = "firm"', "same column as [data] unit"),
 ]
@@ -247,9 +249,15 @@ CLI_CASES = [
 ALL_CASES = MODEL_CASES + DATA_CASES + CLI_CASES
 
 
-def test_catalogue_is_large_enough():
+def test_catalogue_covers_every_section_of_the_model_file():
+    # the catalogue follows the schema: a section added to the model file without a
+    # bad-input case here fails this test (and the case ids must be distinct)
+    from robustgmm.modelfile import SECTIONS
     names = [c.name for c in ALL_CASES]
-    assert len(set(names)) == len(names) >= 40
+    assert len(set(names)) == len(names)
+    culprits = [" ".join(c.culprit) for c in ALL_CASES]
+    missing = [s for s in SECTIONS if not any(f"[{s}] " in c for c in culprits)]
+    assert missing == []
 
 
 @pytest.mark.parametrize("case", ALL_CASES, ids=[c.name for c in ALL_CASES])
