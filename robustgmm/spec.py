@@ -290,7 +290,7 @@ def _role_pair(v):
 
 
 def term_label(name: str, lag: int) -> str:
-    """``NAME[t]`` for lag 0, ``NAME[t-l]`` for lag l (the contract's labels)."""
+    """``NAME[t]`` for lag 0, ``NAME[t-l]`` for lag l (the term labels of every output, docs/formats.md)."""
     return f"{name}[t]" if lag == 0 else f"{name}[t-{lag}]"
 
 

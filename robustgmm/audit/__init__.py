@@ -211,7 +211,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
     estimates = pd.DataFrame(erows, columns=contract.ESTIMATES.names())
     bounds = pd.DataFrame(brows, columns=contract.BOUNDS.names())
     if len(bounds):
-        # base rows first (the contract's one-row-per-term view), then plan order
+        # base rows first (one row per AR term of the base model), then plan order
         bounds = bounds.sort_values("is_base", ascending=False, kind="mergesort")
         bounds = bounds.reset_index(drop=True)
     bounds["in_bounds"] = bounds["in_bounds"].astype("boolean")

@@ -15,6 +15,7 @@ import re
 
 import pandas as pd
 
+from ..options import LABELS, Equations, Steps, Transform
 from .labels import value_text
 from .inputs import AuditFolder
 from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
@@ -44,10 +45,11 @@ def num(text: str) -> str:
 def departure_label(column: str, value) -> str:
     """A short column header for a one-setting departure from the base."""
     v = value_text(value)
-    words = {
-        ("equations", "difference"): "difference GMM", ("equations", "system"): "system GMM",
-        ("transform", "fd"): "first differences", ("transform", "fod"): "orth. deviations",
-        ("steps", "1"): "one-step", ("steps", "2"): "two-step", ("steps", "iterated"): "iterated",
+    words = {  # the option labels (robustgmm.options.LABELS), one shortened for a header
+        **{("equations", m.value): LABELS[m] for m in Equations},
+        **{("transform", m.value): LABELS[m] for m in Transform},
+        ("transform", "fod"): "orth. deviations",
+        **{("steps", str(m.value)): LABELS[m] for m in Steps},
         ("time_effects", "True"): "time effects", ("time_effects", "False"): "no time effects",
     }
     if (column, v) in words:

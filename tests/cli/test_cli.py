@@ -1,6 +1,6 @@
 """Command line: exit codes, one-line messages, the fit summary and JSON.
 
-Exit codes and the JSON layout are the design contract (design.md "Outputs").
+Exit codes (README "Outputs") and the JSON layout (docs/formats.md) are our own formats.
 The fitted data is an invented AR(1) panel with an exogenous regressor
 (known truth rho = 0.5, beta = 1.0); the summary checks only that the numbers shown
 are the numbers of the result, and the estimate is checked loosely against the truth.

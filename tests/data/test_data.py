@@ -1,7 +1,7 @@
 """Data layer: calendar layout, row-order independence, readers, validation messages.
 
-Expectations follow the design contract (design.md "data": lags on the calendar, a
-gap makes the lag missing and never borrows the previous row); the panels are
+Expectations follow the data layer's promise (DEVELOPERS.md, Panel: lags on the
+calendar, a gap makes the lag missing and never borrows the previous row); the panels are
 small invented ones whose right answer is known by construction.
 """
 from __future__ import annotations

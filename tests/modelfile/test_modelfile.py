@@ -1,6 +1,6 @@
 """Model file reader: schema, defaults, round trip and one-line validation messages.
 
-The expectations here come from the model-file contract in design.md and the
+The expectations here come from the model-file format in docs/formats.md and the
 field table in DEVELOPERS.md (our own design, no outside source).
 """
 from __future__ import annotations

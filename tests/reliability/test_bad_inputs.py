@@ -2,8 +2,8 @@
 
 Every case goes through ``robustgmm.cli.main([...])`` and must give exit code 2, no
 traceback, only ``robustgmm: error:`` lines on stderr, and a message that names the
-culprit (the key, column, value or path). The expectations are our own contract
-(design.md: exit codes, one line per problem); the data is a small invented panel.
+culprit (the key, column, value or path). The expectations are our own rules
+(README "Outputs": exit codes; one line per problem); the data is a small invented panel.
 """
 from __future__ import annotations
 
