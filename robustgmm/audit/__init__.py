@@ -64,6 +64,7 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     replacement estimator (tests).
     """
     t0 = time.perf_counter()
+    grid.check_base(spec)
     panels = grid.load_panels(spec, panel)
     t_load = time.perf_counter()
     # counts come with each estimation; planning here only does the cheap checks

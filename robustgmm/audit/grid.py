@@ -455,10 +455,20 @@ def plan_table(spec: Spec, variants: Sequence[Variant]) -> pd.DataFrame:
     return frame
 
 
+def check_base(spec: Spec) -> None:
+    """The base model must be valid by construction (the core's ``invalid_reason``):
+    otherwise the audit is bad input, one line naming the model file (a varied value
+    with the same problem is only a skipped variant)."""
+    reason = _core().invalid_reason(spec)
+    if reason:
+        raise InputError(f"{spec.source}: the base model: {reason}")
+
+
 def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
     """Plan the audit of ``spec`` without estimating (``robustgmm audit --plan``).
 
     Loads the data when ``panel`` (the base sample's panel) is not given.
     """
+    check_base(spec)
     panels = load_panels(spec, panel)
     return plan_table(spec, plan(spec, panels))

@@ -287,6 +287,19 @@ def test_fit_command_exits_2_with_one_line_for_invalid_settings(tmp_path, capsys
         assert len(err) == 1 and words in err[0] and "Traceback" not in err[0]
 
 
+def test_an_invalid_base_model_is_bad_input_for_the_audit(tmp_path):
+    from helpers_audit import make_spec
+    from robustgmm.audit import audit, grid
+
+    for section in ({"instruments": {"first_lag": 1}},
+                    {"method": {"steps": 1, "errors": "conventional", "equations": "system"}}):
+        spec = make_spec(tmp_path, None, **section)
+        for run in (grid.plan_frame, audit):
+            with pytest.raises(InputError) as info:
+                run(spec)
+            assert len(info.value.problems) == 1 and "the base model" in info.value.problems[0]
+
+
 def test_grid_skips_the_invalid_combinations_with_their_reason():
     from robustgmm.audit import grid
 
