@@ -118,6 +118,13 @@ VARY_KEYS = tuple(VARY)
 RESERVED_NAMES = ("period",)
 
 
+def _printable(value) -> str:
+    """``value`` as text with control characters written as escapes, so a generated
+    name never holds a character the name check refuses."""
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii")
+                   for c in str(value))
+
+
 def describe_sample(pf, pt, column, values) -> str:
     """The display name of an unnamed sample."""
     parts = []
@@ -128,7 +135,7 @@ def describe_sample(pf, pt, column, values) -> str:
     elif pt is not None:
         parts.append(f"periods to {pt}")
     if column is not None:
-        parts.append(f"excluding {column} in {{{', '.join(map(str, values))}}}")
+        parts.append(f"excluding {_printable(column)} in {{{', '.join(map(_printable, values))}}}")
     return ", ".join(parts) if parts else "full sample"
 
 

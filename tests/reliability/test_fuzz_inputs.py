@@ -239,3 +239,13 @@ def test_fit_with_as_many_observations_as_parameters(tmp_path, capsys):
     code = main(["fit", str(tmp_path / "model.toml")])
     _, err = capsys.readouterr()
     assert code == 2 and "Traceback" not in err, err
+
+
+def test_generated_sample_name_escapes_control_characters():
+    # found by the fuzz test above: an excluded value holding a control character made
+    # the generated sample name fail the name check with a message naming no file
+    d = {"data": {"file": "p.csv", "unit": "id", "period": "year"}, "model": {"outcome": "y"},
+         "audit": {"vary": {"sample": [{"exclude": {"column": "x", "values": ["\x1f"]}}]}}}
+    spec = spec_from_dict(d, source="fuzz.toml")
+    assert spec.vary.samples[0].name == "excluding x in {\\x1f}"
+    assert spec.vary.samples[0].exclude_values == ("\x1f",)
