@@ -499,3 +499,29 @@ def test_hansen_p_high_false_alarm_rate_on_a_correct_simulation(tmp_path):
         fired += result.verdict["diagnostics"]["rule_counts"]["hansen_p_high"]
         total += result.verdict["variants"]["ok"]
     assert total and fired / total <= 0.10, (fired, total)
+
+
+def test_exactly_identified_variants_through_the_estimator(tmp_path):
+    # issue 11, item 2, on simulated data: collapsed instruments with last_lag = 2 in
+    # difference GMM without time effects give one instrument per coefficient (y
+    # lagged twice, x and w instrumenting themselves): no Hansen test, and one- and
+    # two-step estimates coincide. The audit calls them untestable and merges the twins.
+    d = {"model": {"outcome": "y", "outcome_lags": [1], "time_effects": False,
+                   "regressors": [{"name": "x", "lags": [0], "role": "exogenous"},
+                                  {"name": "w", "lags": [0], "role": "exogenous"}]}}
+    spec = make_spec(tmp_path, {"steps": [1, 2], "last_lag": [2, "all"]},
+                     method={"equations": "difference"}, instruments={"form": "collapsed"},
+                     audit={"focus": ["x[t]"]},
+                     panel_kw={"n_units": 200, "n_periods": 6, "seed": 5,
+                               "process": PanelProcess(theta=0.0)}, **d)
+    result = audit(spec, jobs=1)
+    v = result.variants.set_index("variant")
+    exact = v[v["last_lag"].astype(str) == "2"]
+    assert len(exact) == 2 and (exact["instruments"] == exact["parameters"]).all()
+    assert exact["hansen_p"].isna().all()
+    assert (exact["evidence"] == "untestable").all() and not exact["acceptable"].any()
+    twin = exact[exact["duplicate_of"].fillna("") != ""]
+    assert len(twin) == 1 and twin["duplicate_of"].iloc[0] in exact.index
+    counts = result.verdict["variants"]
+    assert counts["untestable"] == 2 and counts["duplicates"] == 1
+    assert result.verdict["terms"]["x[t]"]["figures"]["judged"] == counts["acceptable"]
