@@ -17,11 +17,12 @@ import math
 import os
 import sys
 import traceback
+import warnings
 from pathlib import Path
 from typing import Sequence
 
 from . import __version__
-from .errors import EstimationError, InputError
+from .errors import DataWarning, EstimationError, InputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_FRAGILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 #: Written into an output folder as soon as robustgmm starts using it, so that a
@@ -436,9 +437,26 @@ def _error(line: str) -> None:
     print(f"robustgmm: error: {line}", file=sys.stderr, flush=True)
 
 
+def _show_warning(message, category, filename, lineno, file=None, line=None,
+                  _default=warnings.showwarning):
+    """Data warnings as one ``robustgmm: warning:`` line each; others as Python shows them."""
+    if issubclass(category, DataWarning):
+        text = " ".join(str(message).split())
+        print(f"robustgmm: warning: {text}", file=sys.stderr, flush=True)
+    else:
+        _default(message, category, filename, lineno, file, line)
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code (the console script exits with it)."""
     argv = list(sys.argv[1:] if argv is None else argv)
+    with warnings.catch_warnings():
+        warnings.simplefilter("always", DataWarning)
+        warnings.showwarning = _show_warning
+        return _main(argv)
+
+
+def _main(argv: list[str]) -> int:
     try:
         try:
             args = build_parser().parse_args(argv)

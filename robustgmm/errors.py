@@ -28,3 +28,9 @@ class UnderidentifiedError(EstimationError):
 class RankConditionError(UnderidentifiedError):
     """Enough instruments, but a term that no instrument moves (rank of Z'X below the
     number of parameters): only the data show it, so in an audit the variant fails."""
+
+
+class DataWarning(UserWarning):
+    """Something in the data that robustgmm handled in a stated way but the user
+    should know about (one line naming an example); the command line prints it as
+    ``robustgmm: warning: ...``."""

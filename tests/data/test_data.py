@@ -243,3 +243,140 @@ def test_several_problems_reported_together():
     df.loc[2, "y"] = -np.inf
     lines = problems(df)
     assert len(lines) == 2
+
+
+# ---------------------------------------------------------------------------
+# issue 12 (items 2-4): degenerate columns, repeated headers, white space in ids
+# ---------------------------------------------------------------------------
+def test_panel_arrays_are_read_only():
+    """Issue 9: a panel names its content by data_hash; mutating an array in place
+    must fail rather than change an estimate under an unchanged hash."""
+    panel = build_panel(frame(), make_spec())
+    for arr in (panel.values["y"], panel.units, panel.periods, panel.lagged("x", 0)):
+        with pytest.raises(ValueError, match="read-only"):
+            arr[0] = 99
+    with pytest.raises(TypeError):
+        panel.values["y"] = np.zeros_like(panel.values["y"])
+
+
+def test_read_only_panel_leaves_the_callers_arrays_writable():
+    from robustgmm.data import Panel
+    y = np.zeros((2, 3))
+    panel = Panel(units=np.array([1, 2]), periods=np.arange(3), values={"y": y})
+    y[0, 0] = 1.0  # the caller's own array
+    assert panel.values["y"][0, 0] == 1.0 and not panel.values["y"].flags.writeable
+
+
+def _ids_with_spaces():
+    df = frame(n_units=4)
+    df["id"] = df["id"].map(lambda u: f"F{u}")
+    return df
+
+
+def test_unit_ids_differing_only_by_white_space_are_one_unit(tmp_path):
+    """Decision (issue 12, item 4): white space around text ids is removed, so "F2"
+    and "F2 " are one unit (not split silently), with one warning naming an example;
+    the panel equals the one from clean ids."""
+    from robustgmm.errors import DataWarning
+    clean = _ids_with_spaces()
+    spaced = clean.copy()
+    spaced.loc[spaced.index[spaced["id"] == "F2"][:3], "id"] = "F2 "
+    spaced.loc[spaced.index[spaced["id"] == "F3"][:1], "id"] = "  F3"
+    spec = make_spec(tmp_path)
+    clean.to_csv(tmp_path / "panel.csv", index=False)
+    want = load_panel(spec)
+    spaced.to_csv(tmp_path / "panel.csv", index=False)
+    with pytest.warns(DataWarning) as record:
+        got = load_panel(spec)
+    assert len(record) == 1
+    text = str(record[0].message)
+    assert "unit column 'id': 2 id(s)" in text and "'F2' and 'F2 '" in text
+    assert list(got.units) == list(want.units) == ["F1", "F2", "F3", "F4"]
+    assert got.data_hash == want.data_hash
+    for name in want.values:
+        np.testing.assert_array_equal(got.values[name], want.values[name])
+
+
+def test_white_space_warning_is_one_line_on_the_command_line(tmp_path, capsys):
+    from robustgmm.cli import main
+    df = _ids_with_spaces()
+    df.loc[0, "id"] = " F1"
+    df.to_csv(tmp_path / "panel.csv", index=False)
+    (tmp_path / "m.toml").write_text(
+        '[data]\nfile = "panel.csv"\nunit = "id"\nperiod = "year"\n'
+        '[model]\noutcome = "y"\n[[model.regressors]]\nname = "x"\nlags = [0]\n'
+        '[method]\nequations = "difference"\n[instruments]\nform = "collapsed"\n')
+    main(["fit", str(tmp_path / "m.toml")])
+    err = capsys.readouterr().err
+    warning = [line for line in err.splitlines() if "white space" in line]
+    assert len(warning) == 1 and warning[0].startswith("robustgmm: warning: "), err
+    assert "' F1'" in warning[0]
+
+
+def test_ids_merged_by_white_space_in_one_period_are_duplicates():
+    df = _ids_with_spaces()
+    extra = df[(df["id"] == "F1") & (df["year"] == 2001)].assign(id="F1 ")
+    with pytest.warns(Warning):
+        lines = problems(pd.concat([df, extra], ignore_index=True))
+    assert any("duplicate id-year rows" in line and "id=F1, year=2001" in line for line in lines)
+
+
+def test_repeated_unused_column_name_is_harmless(tmp_path):
+    """Only repeated names the model uses are errors (which column would it be?)."""
+    df = frame()
+    text = "id,year,y,x,sector,sector\n" + df.assign(s2=1).to_csv(index=False, header=False)
+    (tmp_path / "panel.csv").write_text(text)
+    panel = load_panel(make_spec(tmp_path))
+    assert panel.n_units == 3
+
+
+def test_mangled_name_of_a_repeat_is_not_a_column(tmp_path):
+    """pandas would call the second 'x' 'x.1'; that name is not in the file."""
+    df = frame()
+    (tmp_path / "panel.csv").write_text("id,year,y,x,x\n" + df.drop(columns="sector").assign(
+        x2=1.0).to_csv(index=False, header=False))
+    spec = spec_from_dict({"data": {"unit": "id", "period": "year", "file": "panel.csv"},
+                           "model": {"outcome": "y", "regressors": [{"name": "x.1"}]}},
+                          base_dir=tmp_path, source="m.toml")
+    with pytest.raises(InputError, match=r"column 'x.1' not found"):
+        load_panel(spec)
+
+
+@pytest.mark.parametrize("value", [5.0, -0.25, 1e9])
+def test_constant_regressor_is_found_at_any_value(value):
+    lines = problems(frame().assign(x=value))
+    assert any("regressor 'x' has the same value" in line for line in lines), lines
+
+
+@pytest.mark.parametrize("scale", [1e-6, 1.0, 1e8])
+def test_affine_copy_of_the_outcome_is_found_in_any_units(scale):
+    df = frame()
+    lines = problems(df.assign(x=scale * (df["y"] + 7.0)))
+    assert any("exact linear function of the outcome 'y'" in line for line in lines), lines
+
+
+def test_a_regressor_correlated_but_not_a_copy_is_accepted():
+    df = frame()
+    df["x"] = df["y"] + 1e-6 * np.random.default_rng(1).normal(size=len(df))
+    assert build_panel(df, make_spec()).n_units == 3
+
+
+def test_a_varied_sample_where_a_regressor_is_constant_skips_only_its_variants(tmp_path):
+    """Degenerate only in one sample: that sample's variants are skipped with the
+    reason; the base sample's variants are estimated."""
+    from robustgmm.audit import grid
+    df = frame(n_units=30, years=range(2000, 2008))
+    df.loc[df["year"] >= 2003, "x"] = 2.5
+    df.to_csv(tmp_path / "panel.csv", index=False)
+    spec = spec_from_dict({"data": {"unit": "id", "period": "year", "file": "panel.csv"},
+                           "model": {"outcome": "y", "regressors": [{"name": "x", "lags": [0]}]},
+                           "instruments": {"form": "collapsed"},
+                           "audit": {"vary": {"sample": [{"name": "late", "period_from": 2003}]}}},
+                          base_dir=tmp_path, source="m.toml")
+    panels = grid.load_panels(spec)
+    variants = grid.plan(spec, panels, counts=False)
+    late = [v for v in variants if v.spec.sample.name == "late"]
+    assert late and all(v.status == grid.SKIPPED for v in late)
+    assert all("regressor 'x' has the same value (2.5) in every row in sample 'late'" in v.reason
+               for v in late)
+    assert all(v.status == grid.PLANNED for v in variants if v.spec.sample.name != "late")

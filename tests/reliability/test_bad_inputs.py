@@ -225,6 +225,49 @@ DATA_CASES = [
               model_edit=add('[[model.regressors]]\nname = "z"\nlags = [0, 1]\nrole = "endogenous"')),
 ]
 
+def _dup_header(ext):
+    """The good panel with a second column named ``x`` (written raw: pandas would
+    rename it ``x.1`` on reading)."""
+    def setup(tmp: Path):
+        frame = good_frame()
+        frame.insert(len(frame.columns), "x_again", frame["x"] + 1.0)
+        names = [*frame.columns[:-1], "x"]
+        path = tmp / f"panel{ext}"
+        if ext == ".csv":
+            path.write_text(",".join(names) + "\n" + frame.to_csv(index=False, header=False))
+        elif ext == ".xlsx":
+            frame.set_axis(names, axis=1).to_excel(path, index=False)
+        else:
+            import pyarrow as pa
+            import pyarrow.parquet as pq
+            pq.write_table(pa.table([pa.array(frame[c]) for c in frame.columns], names=names),
+                           path)
+        (tmp / "model.toml").write_text(GOOD_MODEL.replace('"panel.csv"', f'"panel{ext}"'))
+        return ["fit", tmp / "model.toml"]
+    return Case(f"repeated column name in {ext[1:]} header", setup,
+                (f"panel{ext}", "column 'x' appears 2 times in the header", "columns 4 and 7"))
+
+
+# Issue 12: degenerate data (each was a number and a verdict with exit 0 before),
+# repeated header names, biennial periods.
+DEGENERATE_CASES = [
+    data_case("regressor constant everywhere", lambda d: d.assign(x=5.0),
+              "regressor 'x' has the same value (5) in every row", "cannot be told apart"),
+    data_case("regressor identical to the outcome", lambda d: d.assign(x=d["y"]),
+              "regressor 'x' equals the outcome 'y' in every row"),
+    data_case("regressor an affine copy of the outcome", lambda d: d.assign(x=3.0 - 2e6 * d["y"]),
+              "regressor 'x' is an exact linear function of the outcome 'y'"),
+    data_case("outcome constant everywhere", lambda d: d.assign(y=1.0),
+              "outcome 'y' has the same value (1) in every row"),
+    data_case("regressor constant in the sample", lambda d: d.assign(x=np.where(d["year"] >= 2003, 2.5, d["x"])),
+              "regressor 'x' has the same value (2.5) in every row in sample 'late'",
+              model_edit=add('[sample]\nname = "late"\nperiod_from = 2003')),
+    data_case("biennial periods", lambda d: d.assign(year=1990 + 2 * (d["year"] - 2001)),
+              "period column 'year' holds periods spaced 2 apart (1990, 1992, 1994, ...)",
+              "running period number"),
+    _dup_header(".csv"), _dup_header(".xlsx"), _dup_header(".parquet"),
+]
+
 CLI_CASES = [
     cli_case("model file missing", lambda t: ["fit", t / "nope.toml"], "nope.toml: model file not found"),
     cli_case("model path is a folder", lambda t: ["fit", t], "is a folder"),
@@ -246,7 +289,7 @@ CLI_CASES = [
     cli_case("report on a missing folder", lambda t: ["report", t / "gone"], "gone: no such folder"),
 ]
 
-ALL_CASES = MODEL_CASES + DATA_CASES + CLI_CASES
+ALL_CASES = MODEL_CASES + DATA_CASES + DEGENERATE_CASES + CLI_CASES
 
 
 def test_catalogue_covers_every_section_of_the_model_file():

@@ -1,0 +1,231 @@
+"""The calendar panel: each used variable as an (N units × P periods) array.
+
+A :class:`Panel` holds each variable on the full calendar ``periods[0] ..
+periods[-1]``; a missing unit-period is NaN. Lags are shifts along the calendar
+axis, so a gap in a unit's years makes the lag missing and never borrows the
+previous row. :func:`build_panel` applies a sample filter to a validated frame and
+lays it out; :func:`load_panel` reads, validates and lays out in one call.
+"""
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+
+from ..errors import InputError
+from .validate import _show, degenerate_columns, validate_frame
+
+
+def _read_only(arr) -> np.ndarray:
+    arr = np.asarray(arr)
+    if arr.flags.writeable:
+        arr = arr.view()
+        arr.flags.writeable = False
+    return arr
+
+
+@dataclass(frozen=True)
+class Panel:
+    units: np.ndarray
+    periods: np.ndarray
+    values: Mapping[str, np.ndarray]
+    source: str = "<data>"
+    data_hash: str = ""
+    dropped_missing: int = 0
+
+    def __post_init__(self):
+        # Read-only arrays: a panel is shared by every variant of an audit and its
+        # data_hash names its content, so nothing may change it in place (a mutated
+        # array once doubled an estimate under an unchanged hash). Read-only views,
+        # not copies: the caller's own arrays stay writable.
+        object.__setattr__(self, "units", _read_only(self.units))
+        object.__setattr__(self, "periods", _read_only(self.periods))
+        object.__setattr__(self, "values", MappingProxyType(
+            {name: _read_only(arr) for name, arr in dict(self.values).items()}))
+
+    @property
+    def n_units(self) -> int:
+        return len(self.units)
+
+    @property
+    def n_periods(self) -> int:
+        return len(self.periods)
+
+    def lagged(self, name: str, lag: int) -> np.ndarray:
+        """``name`` lagged ``lag`` periods on the calendar (NaN where unavailable)."""
+        arr = self.values[name]
+        if lag == 0:
+            return arr
+        out = np.full_like(arr, np.nan)
+        if lag > 0:
+            if lag < arr.shape[1]:
+                out[:, lag:] = arr[:, :-lag]
+        else:
+            if -lag < arr.shape[1]:
+                out[:, :lag] = arr[:, -lag:]
+        return out
+
+
+def hash_frame(frame: pd.DataFrame, unit: str, period: str, columns) -> str:
+    """sha256 of the used columns in canonical (unit, period) order, so the hash
+    does not depend on the row order of the file."""
+    cols = [unit, period, *[c for c in columns if c not in (unit, period)]]
+    canon = frame[cols].sort_values([unit, period], kind="mergesort").reset_index(drop=True)
+    digest = hashlib.sha256()
+    digest.update(",".join(map(str, cols)).encode())
+    digest.update(pd.util.hash_pandas_object(canon, index=False).values.tobytes())
+    return digest.hexdigest()
+
+
+def panel_from_frame(frame: pd.DataFrame, unit: str, period: str, columns,
+                     source: str = "<data>") -> Panel:
+    """Lay a validated long frame (one row per unit-period) out on the calendar.
+
+    Assumes: no duplicate (unit, period) pairs, integer periods, numeric finite-or-NaN
+    values in ``columns``. Units are sorted by id so that the layout does not depend
+    on the row order of the file.
+    """
+    columns = list(dict.fromkeys(columns))
+    if frame.empty:
+        raise InputError(f"{source}: no rows left to estimate on")
+    unit_codes, unit_ids = pd.factorize(frame[unit], sort=True)
+    per = frame[period].to_numpy().astype(np.int64)
+    p0, p1 = int(per.min()), int(per.max())
+    periods = np.arange(p0, p1 + 1, dtype=np.int64)
+    col_idx = per - p0
+    values = {}
+    n_missing_rows = np.zeros(len(frame), dtype=bool)
+    for name in columns:
+        col = frame[name].to_numpy(dtype=np.float64)
+        n_missing_rows |= np.isnan(col)
+        arr = np.full((len(unit_ids), len(periods)), np.nan)
+        arr[unit_codes, col_idx] = col
+        values[name] = arr
+    return Panel(
+        units=np.asarray(unit_ids),
+        periods=periods,
+        values=values,
+        source=source,
+        data_hash=hash_frame(frame, unit, period, columns),
+        dropped_missing=int(n_missing_rows.sum()),
+    )
+
+
+def _exclude_mask(column: pd.Series, values) -> tuple[np.ndarray, list]:
+    """Rows whose value is one of ``values``; also the values that never occur.
+
+    Numbers compare numerically (a TOML 7 matches 7.0 and "7" in a text column);
+    text compares as text.
+    """
+    hit = np.zeros(len(column), dtype=bool)
+    absent = []
+    numeric = pd.api.types.is_numeric_dtype(column.dtype) and not pd.api.types.is_bool_dtype(column.dtype)
+    as_num = column.to_numpy(dtype=np.float64) if numeric else None
+    as_text = None if numeric else column.astype(str).str.strip().to_numpy()
+    for v in values:
+        if numeric:
+            try:
+                target = float(v)
+            except (TypeError, ValueError):
+                absent.append(v)
+                continue
+            m = as_num == target
+        else:
+            m = as_text == str(v).strip()
+            if not m.any() and isinstance(v, (int, float)):
+                # a float-looking text column ("7.0") against a TOML 7
+                nums = pd.to_numeric(column, errors="coerce").to_numpy(dtype=np.float64)
+                m = nums == float(v)
+        if not m.any():
+            absent.append(v)
+        hit |= m
+    return hit, absent
+
+
+def apply_sample(frame: pd.DataFrame, spec, sample, where: str) -> pd.DataFrame:
+    """Keep periods in ``[period_from, period_to]`` and drop every unit with any row
+    whose ``exclude_column`` value is in ``exclude_values``."""
+    if sample is None or sample.is_full:
+        return frame
+    label = f"sample {sample.name!r}"
+    if sample.exclude_column is not None and sample.exclude_column not in frame.columns:
+        raise InputError(f"{where}: {label}: exclude column {sample.exclude_column!r} not found")
+    keep = np.ones(len(frame), dtype=bool)
+    per = frame[spec.period].to_numpy()
+    if sample.period_from is not None:
+        keep &= per >= sample.period_from
+    if sample.period_to is not None:
+        keep &= per <= sample.period_to
+    if sample.exclude_column is not None:
+        hit, absent = _exclude_mask(frame[sample.exclude_column], sample.exclude_values)
+        if len(absent) == len(sample.exclude_values):
+            raise InputError(
+                f"{where}: {label}: none of the excluded values "
+                f"{', '.join(_show(v) for v in sample.exclude_values)} occurs in column "
+                f"{sample.exclude_column!r}; the filter would remove nothing")
+        bad_units = pd.unique(frame.loc[hit, spec.unit])
+        keep &= ~frame[spec.unit].isin(bad_units).to_numpy()
+    out = frame[keep]
+    if len(out) == 0:
+        lo, hi = int(per.min()), int(per.max())
+        raise InputError(f"{where}: {label} leaves no rows (the data runs from "
+                         f"{lo} to {hi})")
+    return out
+
+
+def periods_needed(spec) -> int:
+    """Fewest calendar periods on which one transformed equation can be formed.
+
+    The differenced equation at t uses the outcome and regressors back to
+    t - (max lag + 1) and instruments back to t - first_lag, so it needs
+    max(max lag + 1, first_lag) + 1 periods (Arellano & Bond 1991, section 2).
+    """
+    return max(spec.max_lag() + 1, spec.first_lag) + 1
+
+
+def build_panel(frame: pd.DataFrame, spec, sample=None) -> Panel:
+    """Validate ``frame``, apply ``sample`` (default ``spec.sample``), lay it out.
+
+    Raises :class:`InputError` for data problems (see :func:`validate_frame`), a
+    sample that leaves no rows, a single period, too few periods for the lags,
+    or a model column with no value left in the sample.
+    """
+    where = frame.attrs.get("robustgmm_source") or spec.source
+    sample = spec.sample if sample is None else sample
+    if not frame.attrs.get("robustgmm_validated"):
+        frame = validate_frame(frame, spec, source=where,
+                               samples=(sample,) if sample is not spec.sample else None)
+    sub = apply_sample(frame, spec, sample, where)
+    label = "" if sample.is_full else f" in sample {sample.name!r}"
+    problems = []
+    per = sub[spec.period].to_numpy()
+    lo, hi = int(per.min()), int(per.max())
+    need = periods_needed(spec)
+    if lo == hi:
+        problems.append(f"{where}: only one period ({lo}){label}; a dynamic panel model "
+                        f"needs at least {need} consecutive periods")
+    elif hi - lo + 1 < need:
+        problems.append(f"{where}: {hi - lo + 1} periods ({lo}-{hi}){label} are too few for "
+                        f"the requested lags (outcome and regressor lags up to "
+                        f"{spec.max_lag()}, first_lag = {spec.first_lag}): at least "
+                        f"{need} are needed")
+    for col in spec.used_columns():
+        if sub[col].isna().all():
+            problems.append(f"{where}: column {col!r} is missing in every row{label}")
+    if not problems:
+        problems += degenerate_columns(sub, spec, where, label)
+    if problems:
+        raise InputError(problems)
+    return panel_from_frame(sub, spec.unit, spec.period, spec.used_columns(), source=where)
+
+
+def load_panel(spec, sample=None) -> Panel:
+    """Read, validate and lay out the data of ``spec`` (``read_frame`` + ``build_panel``)."""
+    from .readers import read_frame
+
+    frame = read_frame(spec, samples=None if sample is None else (sample,))
+    return build_panel(frame, spec, sample=sample)

@@ -1,0 +1,326 @@
+"""Validation of a long panel frame: one line per problem, naming file, column, row.
+
+:func:`validate_frame` checks the unit and period columns and the model's columns;
+:func:`degenerate_columns` finds columns that cannot identify anything on a sample
+(no variation, a regressor that copies the outcome).
+"""
+from __future__ import annotations
+
+import difflib
+import math
+import warnings
+from functools import reduce
+from typing import Any, Callable
+
+import numpy as np
+import pandas as pd
+
+from ..errors import DataWarning, InputError
+
+#: How many examples a message lists (duplicate rows, bad values).
+MAX_EXAMPLES = 3
+#: Widest calendar accepted: the panel is laid out on every integer between the
+#: first and the last period, so a period column holding e.g. day numbers or
+#: YYYYMMDD dates would make enormous, almost empty arrays.
+MAX_CALENDAR = 2000
+
+
+def _closest(name: str, options) -> str | None:
+    options = [str(o) for o in options]
+    for o in options:
+        if o.lower() == str(name).lower():
+            return o
+    match = difflib.get_close_matches(str(name), options, n=1, cutoff=0.6)
+    return match[0] if match else None
+
+
+def _show(value: Any, limit: int = 40) -> str:
+    text = repr(value) if isinstance(value, str) else str(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def filter_columns(spec, samples=()) -> tuple[str, ...]:
+    """Columns that sample filters need (base sample, then ``samples``)."""
+    cols: dict[str, None] = {}
+    for s in (spec.sample, *samples):
+        if s is not None and s.exclude_column is not None:
+            cols[s.exclude_column] = None
+    return tuple(cols)
+
+
+def _row_namer(frame: pd.DataFrame) -> Callable[[Any], str]:
+    """How to name a row in messages: file line for csv, sheet row for xlsx."""
+    word = frame.attrs.get("robustgmm_row_word", "row")
+    offset = frame.attrs.get("robustgmm_row_offset", None)
+
+    def name(index) -> str:
+        if offset is not None and isinstance(index, (int, np.integer)):
+            return f"{word} {int(index) + offset}"
+        return f"{word} {index}"
+    return name
+
+
+def _numeric(series: pd.Series, col: str, where: str, row: Callable, problems: list,
+             role: str) -> pd.Series | None:
+    """float64 version of a column, or None (with problems) if it holds text."""
+    s = series
+    if isinstance(s.dtype, pd.CategoricalDtype):
+        s = s.astype(object)
+    if pd.api.types.is_bool_dtype(s.dtype):
+        return s.astype(np.float64)
+    if pd.api.types.is_datetime64_any_dtype(s.dtype) or pd.api.types.is_timedelta64_dtype(s.dtype):
+        problems.append(f"{where}: {role} {col!r} holds dates or times, not numbers")
+        return None
+    if pd.api.types.is_numeric_dtype(s.dtype):
+        return s.astype(np.float64)
+    try:
+        out = pd.to_numeric(s, errors="coerce")
+    except (TypeError, ValueError):
+        problems.append(f"{where}: {role} {col!r} must be numeric")
+        return None
+    bad = out.isna() & s.notna()
+    # blank cells and common missing markers are missing values, not text
+    if bad.any():
+        text = s[bad].astype(str).str.strip()
+        blank = text.isin(["", "NA", "N/A", "NaN", "nan", "null", "NULL", "."])
+        bad_idx = text.index[~blank.to_numpy()]
+        if len(bad_idx):
+            first = bad_idx[0]
+            more = f" and {len(bad_idx) - 1} more" if len(bad_idx) > 1 else ""
+            problems.append(f"{where}: {role} {col!r} must be numeric: text {_show(s[first])} "
+                            f"at {row(first)}{more}")
+            return None
+    try:
+        return out.astype(np.float64)
+    except (TypeError, ValueError):
+        problems.append(f"{where}: {role} {col!r} must be numeric")
+        return None
+
+
+def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
+                   samples=None) -> pd.DataFrame:
+    """Check and normalise a long panel frame for ``spec``.
+
+    Checks: required columns present, not empty, unit ids present, periods whole
+    numbers without gaps in the column itself, no duplicate unit-period rows, model
+    columns numeric and finite (NaN allowed), no model column entirely missing.
+    Returns a copy with int64 periods and float64 model columns.
+    """
+    where = source or frame.attrs.get("robustgmm_source") or spec.source
+    row = _row_namer(frame)
+    attrs = dict(frame.attrs)
+    samples = spec.vary.samples if samples is None else samples
+    needed = list(dict.fromkeys([spec.unit, spec.period, *spec.used_columns(),
+                                 *filter_columns(spec, samples)]))
+    names = [str(c) for c in frame.columns]
+    missing = [c for c in needed if c not in frame.columns]
+    if missing:
+        raise InputError([f"{where}: column {c!r} not found"
+                          + (f" (did you mean {_closest(c, names)!r}?)"
+                             if _closest(c, names) else "")
+                          for c in missing])
+    if frame.columns.duplicated().any():
+        dup = [c for c in needed if list(frame.columns).count(c) > 1]
+        if dup:
+            raise InputError([f"{where}: column {c!r} appears more than once" for c in dup])
+    if len(frame) == 0:
+        raise InputError(f"{where}: the data has no rows")
+
+    problems: list[str] = []
+    out = frame[needed].copy()
+
+    # unit ids: present; one type so that sorting works
+    units = out[spec.unit]
+    if units.isna().any():
+        first = units.index[units.isna().to_numpy()][0]
+        n = int(units.isna().sum())
+        problems.append(f"{where}: unit column {spec.unit!r} is empty at {row(first)}"
+                        + (f" and {n - 1} more rows" if n > 1 else ""))
+    elif (units.dtype == object or isinstance(units.dtype, pd.CategoricalDtype)
+          or pd.api.types.is_string_dtype(units.dtype)):
+        kinds = {type(v) for v in units}
+        if len(kinds) > 1 or isinstance(units.dtype, pd.CategoricalDtype):
+            units = units.astype(str)
+        out[spec.unit] = _strip_ids(units, spec.unit, where)
+
+    # periods: whole numbers
+    per = out[spec.period]
+    per_num = _numeric(per, spec.period, where, row, problems, "period column")
+    if per_num is not None:
+        if per_num.isna().any():
+            first = per_num.index[per_num.isna().to_numpy()][0]
+            n = int(per_num.isna().sum())
+            problems.append(f"{where}: period column {spec.period!r} is empty at {row(first)}"
+                            + (f" and {n - 1} more rows" if n > 1 else ""))
+        else:
+            vals = per_num.to_numpy()
+            frac = ~np.isfinite(vals) | (vals != np.round(vals))
+            if frac.any():
+                first = per_num.index[frac][0]
+                problems.append(f"{where}: period column {spec.period!r} must hold whole "
+                                f"numbers: {_show(per[first])} at {row(first)}")
+            elif np.abs(vals).max() > 1e15:
+                problems.append(f"{where}: period column {spec.period!r} holds values too "
+                                f"large to be periods ({_show(per.iloc[int(np.argmax(np.abs(vals)))])})")
+            else:
+                ints = vals.astype(np.int64)
+                out[spec.period] = ints
+                span = int(ints.max() - ints.min()) + 1
+                months = ints % 100
+                if (ints.min() >= 100001 and ints.max() <= 999912 and months.min() >= 1
+                        and months.max() <= 12 and ints.max() // 100 > ints.min() // 100):
+                    problems.append(
+                        f"{where}: period column {spec.period!r} looks like year-month codes "
+                        f"({ints.min()} to {ints.max()}); lags are taken between consecutive "
+                        "whole numbers, so use a running period number instead")
+                elif span > MAX_CALENDAR:
+                    problems.append(
+                        f"{where}: period column {spec.period!r} runs from {ints.min()} to "
+                        f"{ints.max()} ({span} periods on the calendar); lags are taken "
+                        "between consecutive whole numbers, so use years or a running "
+                        "period number")
+                elif _period_step(ints) > 1:
+                    step = _period_step(ints)
+                    shown = ", ".join(str(v) for v in np.unique(ints)[:3])
+                    problems.append(
+                        f"{where}: period column {spec.period!r} holds periods spaced "
+                        f"{step} apart ({shown}, ...); lags are taken between consecutive "
+                        "whole numbers, so a lag would never find its value: use a running "
+                        "period number (1, 2, 3, ...) instead")
+
+    # duplicate unit-period rows
+    if not problems:
+        dup = out.duplicated([spec.unit, spec.period], keep=False)
+        if dup.any():
+            groups = out[dup].groupby([spec.unit, spec.period], sort=False).groups
+            examples = []
+            for key, idx in list(groups.items())[:MAX_EXAMPLES]:
+                rows = " and ".join(row(i) for i in list(idx)[:2])
+                examples.append(f"({spec.unit}={key[0]}, {spec.period}={key[1]}) at {rows}")
+            more = len(groups) - len(examples)
+            problems.append(f"{where}: duplicate {spec.unit}-{spec.period} rows: "
+                            + "; ".join(examples) + (f"; and {more} more" if more > 0 else ""))
+
+    # model columns: numeric, finite
+    for col in spec.used_columns():
+        if col in (spec.unit, spec.period):
+            continue
+        num = _numeric(out[col], col, where, row, problems, "column")
+        if num is None:
+            continue
+        inf = np.isinf(num.to_numpy())
+        if inf.any():
+            first = num.index[inf][0]
+            problems.append(f"{where}: column {col!r} holds an infinite value "
+                            f"({num[first]}) at {row(first)}"
+                            + (f" and {int(inf.sum()) - 1} more" if inf.sum() > 1 else ""))
+            continue
+        if num.isna().all():
+            problems.append(f"{where}: column {col!r} is missing in every row")
+            continue
+        out[col] = num
+    if problems:
+        raise InputError(problems)
+    out.attrs.update(attrs)
+    out.attrs["robustgmm_validated"] = True
+    return out
+
+
+
+
+def _period_step(periods: np.ndarray) -> int:
+    """The common spacing of the distinct periods (1 for consecutive years; 2 for
+    biennial waves): the greatest common divisor of their differences."""
+    distinct = np.unique(periods)
+    if len(distinct) < 2:
+        return 1
+    return int(reduce(math.gcd, np.diff(distinct).tolist()))
+
+
+def _strip_ids(units: pd.Series, column: str, where: str) -> pd.Series:
+    """Text unit ids without surrounding white space.
+
+    ``"A1"`` and ``"A1 "`` are one unit written two ways (a common spreadsheet
+    slip), not two units: robustgmm removes the white space, so they are merged, and
+    warns (one line, one example) when that made two written ids one. Rows of the
+    merged unit in the same period are then duplicate unit-period rows (an error).
+    """
+    is_text = units.map(lambda v: isinstance(v, str)).to_numpy()
+    if not is_text.any():
+        return units
+    stripped = units.where(~is_text, units[is_text].str.strip())
+    changed = is_text & (stripped != units).to_numpy()
+    if changed.any():
+        written = pd.DataFrame({"raw": units[is_text], "id": stripped[is_text]})
+        kinds = written.drop_duplicates().groupby("id", sort=False)["raw"].agg(list)
+        merged = kinds[kinds.map(len) > 1]
+        if len(merged):
+            example = sorted(merged.iloc[0], key=len)
+            warnings.warn(DataWarning(
+                f"{where}: unit column {column!r}: {len(merged)} id(s) are written with and "
+                f"without surrounding white space (e.g. {' and '.join(map(repr, example[:2]))}); "
+                "white space around ids is removed, so each is one unit"), stacklevel=3)
+    return stripped
+
+
+def degenerate_columns(frame: pd.DataFrame, spec, where: str, label: str = "") -> list[str]:
+    """One line per model column that cannot identify anything on this sample.
+
+    * the outcome with one value in every row: there is nothing to explain (an AR
+      coefficient of 1 would "fit" it exactly);
+    * a regressor with one value in every row: in differences it is zero and in
+      levels a multiple of the constant, so its coefficient is not identified (a
+      fit would return the intercept divided by the value);
+    * a regressor that is an exact affine copy of the outcome (``x = a + b·y`` in every
+      row where both are present): it explains the outcome exactly, and the GMM
+      estimates degenerate (z in the 10^15).
+
+    ``label`` names the sample (``" in sample 'late'"``) for messages.
+    """
+    problems = []
+
+    def values(col):
+        v = frame[col].to_numpy(dtype=np.float64)
+        return v[~np.isnan(v)]
+
+    y_all = frame[spec.outcome].to_numpy(dtype=np.float64)
+    y = y_all[~np.isnan(y_all)]
+    if len(y) and np.all(y == y[0]):
+        problems.append(f"{where}: outcome {spec.outcome!r} has the same value "
+                        f"({_number(y[0])}) in every row{label}; there is no variation "
+                        "to explain")
+    for name in dict.fromkeys(r.name for r in spec.regressors):
+        v = values(name)
+        if len(v) and np.all(v == v[0]):
+            problems.append(f"{where}: regressor {name!r} has the same value "
+                            f"({_number(v[0])}) in every row{label}; it cannot be told "
+                            "apart from the constant: drop it from the model")
+            continue
+        x_all = frame[name].to_numpy(dtype=np.float64)
+        both = ~np.isnan(x_all) & ~np.isnan(y_all)
+        if both.sum() >= 3 and _affine_copy(x_all[both], y_all[both]):
+            how = ("equals" if np.array_equal(x_all[both], y_all[both])
+                   else "is an exact linear function of")
+            problems.append(f"{where}: regressor {name!r} {how} the outcome "
+                            f"{spec.outcome!r} in every row{label}; a regressor cannot be "
+                            "the outcome itself: drop it from the model")
+    return problems
+
+
+def _affine_copy(x: np.ndarray, y: np.ndarray) -> bool:
+    """Whether ``x = a + b·y`` holds in every row, to rounding (b ≠ 0).
+
+    Both are centred and scaled to unit spread first, so the check does not depend
+    on the units either is measured in; then ``x`` is a copy when its residual on
+    ``y`` is below 1e-10 of its own spread."""
+    xc, yc = x - x.mean(), y - y.mean()
+    sx, sy = np.sqrt(np.mean(xc * xc)), np.sqrt(np.mean(yc * yc))
+    if sx == 0 or sy == 0:
+        return False
+    xs, ys = xc / sx, yc / sy
+    slope = float(xs @ ys) / float(ys @ ys)
+    return bool(np.max(np.abs(xs - slope * ys)) <= 1e-10)
+
+
+def _number(value: float) -> str:
+    return str(int(value)) if float(value).is_integer() else repr(float(value))
