@@ -7,8 +7,36 @@ from __future__ import annotations
 
 import json
 import os
+import stat
 import tempfile
 from pathlib import Path
+
+
+class NotRegularFileError(OSError):
+    """The path holds something other than a regular file (a device, a pipe, a
+    symlink, a folder): an atomic write would replace it, so it is refused."""
+
+
+def not_regular(path) -> str | None:
+    """What ``path`` is when it exists and is not a regular file ("a symlink", "a
+    device", "a pipe", "a socket", "folder"); None for a regular file or no file."""
+    try:
+        mode = os.lstat(path).st_mode
+    except FileNotFoundError:
+        return None
+    except OSError:  # e.g. a name too long: the write will say so
+        return None
+    if stat.S_ISREG(mode):
+        return None
+    if stat.S_ISLNK(mode):
+        return "a symlink"
+    if stat.S_ISDIR(mode):
+        return "folder"
+    if stat.S_ISCHR(mode) or stat.S_ISBLK(mode):
+        return "a device"
+    if stat.S_ISFIFO(mode):
+        return "a pipe"
+    return "a special file"
 
 
 def _umask() -> int:
@@ -18,7 +46,17 @@ def _umask() -> int:
 
 
 def atomic_write_bytes(path, data: bytes) -> Path:
+    """Write ``data`` to a temporary sibling of ``path`` and rename it into place.
+
+    Only a regular file (or a new name) is replaced: renaming over a device, pipe or
+    symlink would replace that entry with a file (as root, ``/dev/null``), so such a
+    path raises :class:`NotRegularFileError`."""
     path = Path(path)
+    kind = not_regular(path)
+    if kind is not None:
+        raise NotRegularFileError(21 if kind == "folder" else 1,
+                                  f"{'a folder' if kind == 'folder' else kind} is in the way, "
+                                  "not a regular file", str(path))
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:

@@ -27,8 +27,10 @@ from .errors import DataWarning, EstimationError, InputError
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_FRAGILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 #: Written into an output folder as soon as robustgmm starts using it, so that a
 #: rerun of an interrupted audit (no manifest.json yet) is recognised as ours.
-OUTPUT_MARKER = ".robustgmm-output"
+OUTPUT_MARKER = ".robustgmm-output"  # robustgmm.output.MARKER
 DEBUG_ENV = "ROBUSTGMM_DEBUG"
+#: The estimation's memory budget in MB (read by the core; checked here first).
+MEMORY_ENV = "ROBUSTGMM_MEMORY_MB"
 
 
 # ---------------------------------------------------------------------------
@@ -65,7 +67,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("fit", help="estimate the model of a model file and print a summary")
     p.add_argument("model", metavar="MODEL.toml", help="model file")
-    p.add_argument("--json", metavar="OUT.json", help="also write the results as JSON")
+    p.add_argument("--json", metavar="OUT.json",
+                   help="also write the results as JSON ('-': only the JSON, on standard output)")
     p.add_argument("--all-terms", action="store_true",
                    help="also list the period dummies in the summary")
 
@@ -108,12 +111,28 @@ def check_model_path(path: str) -> Path:
     return p
 
 
+def check_name_length(path, what: str) -> None:
+    """A path whose folder or file names the file system cannot hold (255 bytes per
+    name on common file systems), as one line before anything is written."""
+    try:
+        limit = os.pathconf(".", "PC_NAME_MAX")
+    except (OSError, ValueError, AttributeError):
+        limit = 255
+    for part in Path(path).parts:
+        size = len(part.encode("utf-8", "surrogateescape"))
+        if size > limit:
+            shown = part if len(part) <= 40 else part[:37] + "..."
+            raise InputError(f"{shown}: {what} names a file or folder of {size} bytes; the "
+                             f"file system allows at most {limit}: choose a shorter name")
+
+
 def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
     """Create (or accept) an output folder and check that it can be written.
 
     Refuses a non-empty folder that holds neither an audit (``manifest.json``) nor
     the marker robustgmm leaves when it starts using a folder, unless ``force``.
     """
+    check_name_length(path, what)
     out = Path(path)
     if out.exists() and not out.is_dir():
         raise InputError(f"{path}: {what} must be a folder; this is a file")
@@ -135,9 +154,8 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
             raise InputError(f"{path}: cannot create the {what} folder "
                              f"({exc.strerror or type(exc).__name__})") from None
     try:  # os.access is not reliable (e.g. for root or on network drives): try a write
-        from .atomic import atomic_write_text
-        atomic_write_text(out / OUTPUT_MARKER,
-                          json.dumps({"created_by": "robustgmm", "version": __version__}) + "\n")
+        from .output import write_record
+        write_record(out)
     except OSError as exc:
         raise InputError(f"{path}: cannot write into the {what} folder "
                          f"({exc.strerror or type(exc).__name__})") from None
@@ -163,16 +181,89 @@ def _cannot_write(folder, exc: OSError) -> InputError:
                       "files already there were left as they were")
 
 
-def check_json_path(path: str) -> Path:
+#: ``--json -``: write the JSON to standard output instead of a file.
+STDOUT = "-"
+
+
+def check_json_path(path: str, protected=()) -> Path | None:
+    """The file ``fit --json`` may write (None for ``-``, standard output).
+
+    Only a regular file (or a new name) in an existing-or-creatable folder is
+    replaced: a device, a pipe, a symlink or a folder is refused (replacing
+    ``/dev/null`` or ``/dev/stdout`` by a file was a bug), and so is a path that is
+    one of ``protected`` (the model and data files) or inside an audit's cache."""
+    if path == STDOUT:
+        return None
+    check_name_length(path, "--json")
     out = Path(path)
-    if out.is_dir():
+    from .atomic import not_regular
+    kind = not_regular(out)
+    if kind == "folder":
         raise InputError(f"{path}: --json must name a file; this is a folder")
+    if kind is not None:
+        raise InputError(f"{path}: --json would replace {kind}, not a regular file; name a "
+                         f"new or regular file (or use --json {STDOUT} for standard output)")
     parent = out.parent
     while not parent.exists() and parent != parent.parent:
         parent = parent.parent
     if parent.exists() and not parent.is_dir():
         raise InputError(f"{path}: --json cannot be written: {parent} is a file, not a folder")
+    _refuse_inputs(out, protected, "--json")
+    if _inside_audit_cache(out):
+        raise InputError(f"{path}: --json points inside the cache of an audit; "
+                         "write it somewhere else")
     return out
+
+
+def _same_file(a: Path, b: Path) -> bool:
+    try:
+        return a.exists() and b.exists() and os.path.samefile(a, b)
+    except OSError:
+        return False
+
+
+def _refuse_inputs(target: Path, protected, what: str) -> None:
+    """An output path must never be one of the inputs (model file, data file)."""
+    for label, path in protected:
+        if path is not None and _same_file(target, Path(path)):
+            raise InputError(f"{target}: {what} would overwrite the {label} {path}; "
+                             "choose another output")
+
+
+def _inside_audit_cache(path: Path) -> bool:
+    """Whether ``path`` lies in the ``.cache`` folder of a robustgmm output folder."""
+    try:
+        resolved = path.resolve()
+    except (OSError, RuntimeError):
+        return False
+    for folder in [resolved, *resolved.parents]:
+        if folder.name == ".cache" and (
+                (folder.parent / OUTPUT_MARKER).exists()
+                or _is_our_manifest(folder.parent / "manifest.json")):
+            return True
+    return False
+
+
+def check_audit_inputs(out: Path, spec, model: Path) -> None:
+    """Refuse an ``--out`` folder where an audit would overwrite or delete an input:
+    the model or data file at the place of an output file (``bounds.csv``, a report
+    document, anything under ``figures/`` or ``.cache/``), or a folder inside the
+    cache of another audit."""
+    from .output import OUTPUT_NAMES
+    if _inside_audit_cache(out):
+        raise InputError(f"{out}: --out is inside the cache of another audit; "
+                         "choose another folder")
+    for label, path in (("model file", model), ("data file", spec.data_file)):
+        if path is None:
+            continue
+        try:
+            rel = Path(path).resolve().relative_to(out.resolve())
+        except (ValueError, OSError, RuntimeError):
+            continue
+        if rel.parts and (str(rel) in OUTPUT_NAMES or rel.parts[0] in ("figures", ".cache")):
+            raise InputError(f"{path}: the audit would overwrite the {label} ({rel} is one "
+                             f"of its output files in {out}); move the {label} or choose "
+                             "another --out folder")
 
 
 # ---------------------------------------------------------------------------
@@ -272,14 +363,23 @@ def cmd_fit(args) -> int:
     from .data import load_panel
     from .modelfile import read_model
 
-    json_path = check_json_path(args.json) if args.json else None
-    spec = read_model(check_model_path(args.model))
+    model = check_model_path(args.model)
+    if args.json:
+        check_json_path(args.json)  # the cheap checks before estimating
+    spec = read_model(model)
+    json_path = (check_json_path(args.json, (("model file", model), ("data file", spec.data_file)))
+                 if args.json else None)
     panel = load_panel(spec)
     from .core import fit
     try:
         result = fit(spec, panel)
     except EstimationError as exc:
         raise EstimationError(f"{spec.source}: cannot estimate the model: {exc}") from None
+    if args.json == STDOUT:  # the JSON alone on standard output, for a pipe
+        from .atomic import to_json_text
+        sys.stdout.write(to_json_text(result.to_dict()))
+        sys.stdout.flush()
+        return EXIT_OK
     _out(format_fit_summary(spec, panel, result, all_terms=args.all_terms))
     if json_path is not None:
         from .atomic import atomic_write_json
@@ -300,6 +400,8 @@ def _plan_frame(spec):
 def cmd_audit(args) -> int:
     from .modelfile import read_model
 
+    if not args.plan:
+        check_name_length(args.out, "--out")
     spec = read_model(check_model_path(args.model))
     if args.plan:
         import pandas as pd
@@ -315,17 +417,19 @@ def cmd_audit(args) -> int:
                  + (f"; {dups} duplicate{'s' if dups != 1 else ''} of another variant "
                     f"(column duplicate_of)" if dups else ""))
         return EXIT_OK
+    check_audit_inputs(Path(args.out), spec, Path(args.model))
     out = check_output_folder(args.out, args.force)
     from .audit import audit as run_audit, write_audit
+    from .output import FolderLock
 
-    result = run_audit(spec, jobs=args.jobs,
-                             cache_dir=None if args.no_cache else out / ".cache",
-                             progress=sys.stderr.isatty())
-    try:
-        write_audit(result, out, model_file=Path(args.model))
-        _build_report_if_available(out)
-    except OSError as exc:
-        raise _cannot_write(args.out, exc) from None
+    with FolderLock(out, "audit"):  # one audit per folder, for the whole run
+        result = run_audit(spec, jobs=args.jobs,
+                           cache_dir=None if args.no_cache else out / ".cache",
+                           progress=sys.stderr.isatty())
+        try:
+            write_audit(result, out, model_file=Path(args.model), report=_report_builder())
+        except OSError as exc:
+            raise _cannot_write(args.out, exc) from None
     run = (getattr(result, "manifest", None) or {}).get("run", {})
     if run.get("cache_write_errors"):
         print(f"robustgmm: note: {run['cache_write_errors']} cache entries could not be "
@@ -379,25 +483,36 @@ def _audit_summary(result, out: Path, fragile: list[str]) -> str:
     return "\n".join(lines)
 
 
-def _build_report_if_available(out: Path) -> None:
+def _report_builder():
+    """The report builder for :func:`write_audit` (None, with a note, when the report
+    module cannot be imported)."""
     try:
         from .report import build_report
     except ImportError:
         print("robustgmm: note: the report module is not available; wrote the data files only",
               file=sys.stderr)
-        return
-    build_report(out)
+        return None
+    return build_report
 
 
 def cmd_report(args) -> int:
+    check_name_length(args.dir, "DIR")
     folder = Path(args.dir)
     if not folder.is_dir():
         raise InputError(f"{args.dir}: no such folder")
     if not (folder / "manifest.json").is_file():
         raise InputError(f"{args.dir}: no audit here (manifest.json missing); "
                          "run 'robustgmm audit MODEL.toml --out DIR' first")
+    from .output import CONTRACT_FILES, FolderLock, recorded_files, remove_stale, write_record
     from .report import build_report
-    build_report(folder)
+    with FolderLock(folder, "report"):
+        try:
+            written = [str(Path(p).relative_to(folder)) for p in build_report(folder)]
+            old = recorded_files(folder)
+            remove_stale(folder, [f for f in old if f not in CONTRACT_FILES], written)
+            write_record(folder, [*(f for f in old if f in CONTRACT_FILES), *written])
+        except OSError as exc:  # a read-only folder, a full disk
+            raise _cannot_write(args.dir, exc) from None
     _out(f"Wrote the report in {folder}")
     return EXIT_OK
 
@@ -456,12 +571,27 @@ def main(argv: Sequence[str] | None = None) -> int:
         return _main(argv)
 
 
+def check_environment() -> None:
+    """Settings read from the environment, checked before any work (one line each)."""
+    value = os.environ.get(MEMORY_ENV)
+    if value in (None, ""):
+        return
+    try:
+        number = float(value)
+    except ValueError:
+        number = math.nan
+    if not (math.isfinite(number) and number > 0):
+        raise InputError(f"{MEMORY_ENV} = {value!r}: must be a positive number of megabytes "
+                         "(the memory budget of one estimation, e.g. 1024)")
+
+
 def _main(argv: list[str]) -> int:
     try:
         try:
             args = build_parser().parse_args(argv)
         except SystemExit as exc:  # --help / --version
             return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_INPUT
+        check_environment()
         return COMMANDS[args.command](args)
     except _UsageError as exc:
         _error(str(exc))

@@ -25,6 +25,7 @@ import pandas as pd
 from .. import __version__
 from . import grid, runner, verdicts
 from .. import contract
+from .. import output as folder
 from .grid import SKIPPED, plan_frame  # noqa: F401  (re-exported: robustgmm.audit.plan_frame)
 from ..atomic import atomic_write_csv, atomic_write_json
 from ..spec import Spec, settings_of
@@ -226,22 +227,35 @@ def _inside(est, ols, fe) -> bool | None:
     return bool(min(ols, fe) <= est <= max(ols, fe))
 
 
-def write_audit(result: AuditResult, out_dir, *, model_file=None) -> Path:
-    """Write variants.csv, estimates.csv, bounds.csv, verdict.json and manifest.json
-    into ``out_dir`` (created if needed), each atomically; the manifest last, so a
-    folder with a manifest holds a complete audit. A manifest left by an earlier audit
-    is removed first: if a write fails midway (full disk), the folder holds no
-    manifest rather than an old one beside a mix of old and new files."""
+def write_audit(result: AuditResult, out_dir, *, model_file=None, report=None) -> Path:
+    """Write the audit into ``out_dir`` (created if needed) as one complete unit.
+
+    Writes variants.csv, estimates.csv, bounds.csv, verdict.json and manifest.json —
+    and, when ``report`` is given (``report(folder) -> [paths written]``, e.g.
+    :func:`robustgmm.report.build_report`), the report built from them — into a
+    staging folder, then swaps them in by renames, the manifest last
+    (:func:`robustgmm.output.publish`): a folder with a manifest always holds
+    one complete audit, whatever fails or is killed midway. Files an earlier audit
+    wrote there and this one does not are removed; nothing else is touched. The
+    folder is locked against a second audit for the duration."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    (out / "manifest.json").unlink(missing_ok=True)
-    settings = result.manifest["vary"]
-    for table, frame in zip(contract.TABLES, (result.variants, result.estimates, result.bounds)):
-        atomic_write_csv(out / table.file, contract.frame_in_order(table, frame, settings))
-    atomic_write_json(out / "verdict.json", result.verdict)
-    manifest = dict(result.manifest)
-    if model_file is not None:
-        manifest["model_file"] = str(model_file)
-    manifest["files"] = list(contract.FILES)
-    atomic_write_json(out / "manifest.json", manifest)
+
+    def write(stage: Path) -> list[str]:
+        settings = result.manifest["vary"]
+        for table, frame in zip(contract.TABLES, (result.variants, result.estimates,
+                                                  result.bounds)):
+            atomic_write_csv(stage / table.file, contract.frame_in_order(table, frame, settings))
+        atomic_write_json(stage / "verdict.json", result.verdict)
+        manifest = dict(result.manifest)
+        if model_file is not None:
+            manifest["model_file"] = str(model_file)
+        manifest["files"] = list(contract.FILES)
+        atomic_write_json(stage / "manifest.json", manifest)
+        names = list(contract.FILES)
+        if report is not None:
+            names += [str(Path(p).relative_to(stage)) for p in report(stage)]
+        return names
+
+    folder.publish(out, write)
     return out

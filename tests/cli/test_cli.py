@@ -238,8 +238,10 @@ def fake_audit(monkeypatch):
         calls["audit"] = dict(jobs=jobs, cache_dir=cache_dir, progress=progress)
         return _FakeResult(calls.get("verdicts", {"y[t-1]": "robust"}))
 
-    def write_audit(result, out_dir, model_file=None):
+    def write_audit(result, out_dir, model_file=None, report=None):
         calls["write"] = (Path(out_dir), model_file)
+        if report is not None:
+            calls.setdefault("report", report(Path(out_dir)))
         (Path(out_dir) / "manifest.json").write_text("{}")
 
     mod.audit, mod.write_audit = audit, write_audit
@@ -248,7 +250,7 @@ def fake_audit(monkeypatch):
     # imported earlier in the session (e.g. by tests/test_audit.py)
     import robustgmm
     monkeypatch.setattr(robustgmm, "audit", mod, raising=False)
-    monkeypatch.setattr(cli, "_build_report_if_available", lambda out: calls.setdefault("report", out))
+    monkeypatch.setattr(cli, "_report_builder", lambda: lambda out: out)
     return calls
 
 

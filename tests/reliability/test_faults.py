@@ -320,24 +320,27 @@ def test_failing_rename_leaves_no_temporary(tmp_path, monkeypatch):
 @pytest.mark.parametrize("fail_on", [1, 2, 3, 4, 5])
 def test_write_audit_failing_midway(tmp_path, monkeypatch, fail_on):
     """A rerun into the folder of an earlier audit whose k-th file write hits a full
-    disk: no half-written or temporary file, and no manifest (written last, removed
-    first) claims the folder holds a complete audit."""
+    disk: no half-written or temporary file, and the folder still holds the earlier
+    audit, complete, with its manifest (issue 12, item 9: the new audit is written
+    into a staging folder and swapped in only when complete)."""
     spec = make_spec(tmp_path, {"steps": [1, 2]})
     result = audit(spec, jobs=1)
     out = write_audit(result, tmp_path / "out")
-    old = {name: (out / name).read_bytes() for name in CONTRACT}
+    old = {name: (out / name).read_bytes() for name in (*CONTRACT, "manifest.json")}
+    other = audit(make_spec(tmp_path, {"steps": [1, 2], "form": ["per-period", "collapsed"]}),
+                  jobs=1)
     writer = _FullDisk(os.fdopen, room=5, fail_on=fail_on)
     monkeypatch.setattr(io.os, "fdopen", writer)
     with pytest.raises(OSError):
-        write_audit(result, out)
+        write_audit(other, out)
     monkeypatch.undo()
     assert writer.calls == fail_on
     assert not _no_temporaries(out)
-    assert not (out / "manifest.json").exists()
-    for name in CONTRACT:  # each file is the old or the new one, complete (same audit)
-        assert (out / name).read_bytes() == old[name], name
-    write_audit(result, out)  # and room again: the folder is complete
-    assert (out / "manifest.json").is_file()
+    assert not list(out.glob(".robustgmm-staging-*")) and not (out / ".robustgmm-lock").exists()
+    for name, data in old.items():  # the earlier audit, untouched
+        assert (out / name).read_bytes() == data, name
+    write_audit(other, out)  # and room again: the folder holds the new audit
+    assert len(pd.read_csv(out / "variants.csv")) == len(other.variants)
 
 
 def test_command_line_full_disk_is_one_line_and_leaves_no_temporary(tmp_path, monkeypatch,
@@ -432,7 +435,7 @@ def test_cache_folder_that_cannot_exist_runs_without_cache(tmp_path, capsys, mon
     out.mkdir()
     (out / cli.OUTPUT_MARKER).write_text("{}")
     (out / ".cache").write_text("a file where the cache folder belongs")
-    monkeypatch.setattr(cli, "_build_report_if_available", lambda out: None)
+    monkeypatch.setattr(cli, "_report_builder", lambda: None)
     code = cli.main(["audit", str(model), "--out", str(out), "--jobs", "1"])
     err = capsys.readouterr().err
     assert code == 0, err

@@ -35,7 +35,7 @@ PACKAGE = Path(cli.__file__).parent
 @pytest.fixture
 def no_report(monkeypatch):
     """The report is irrelevant to some checks and costs seconds: leave it out."""
-    monkeypatch.setattr(cli, "_build_report_if_available", lambda out: None)
+    monkeypatch.setattr(cli, "_report_builder", lambda: None)
 
 
 def _main(args, capsys):
