@@ -150,8 +150,8 @@ def output_files(out: Path, *, skip=(".cache",)) -> dict[str, bytes]:
     files = {}
     for path in sorted(out.rglob("*")):
         rel = path.relative_to(out)
-        if not path.is_file() or rel.parts[0] in skip:
-            continue
+        if not path.is_file() or rel.parts[0] in skip or rel.parts[0].startswith(".robustgmm-"):
+            continue  # robustgmm's bookkeeping (ownership record, lock) is not output
         data = path.read_bytes()
         if rel.name == "manifest.json":
             manifest = json.loads(data)

@@ -157,6 +157,11 @@ def estimate_group(specs, panel, fit: Callable | None = None,
 
     sample = sample or core.estimation_sample
     start = time.perf_counter()
+    degenerate = getattr(panel, "degenerate", ())
+    if degenerate:  # a column with no information in this sample: not estimable
+        reason = "; ".join(degenerate)
+        return [{"status": FAILED, "reason": reason, "cacheable": True, "fit": None,
+                 "bounds": None, "seconds": 0.0} for _ in specs]
     if fit is None:
         results = core.fit_family(list(specs), panel)
     else:

@@ -8,6 +8,7 @@ lays it out; :func:`load_panel` reads, validates and lays out in one call.
 """
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 from dataclasses import dataclass
 from types import MappingProxyType
@@ -36,6 +37,11 @@ class Panel:
     source: str = "<data>"
     data_hash: str = ""
     dropped_missing: int = 0
+    #: One line per column that cannot identify anything on this sample (see
+    #: :func:`robustgmm.data.validate.degenerate_columns`). Empty for the base
+    #: sample (there it is an input error); a varied sample keeps its panel and
+    #: the runner fails its variants with these reasons.
+    degenerate: tuple[str, ...] = ()
 
     def __post_init__(self):
         # Read-only arrays: a panel is shared by every variant of an audit and its
@@ -216,11 +222,16 @@ def build_panel(frame: pd.DataFrame, spec, sample=None) -> Panel:
     for col in spec.used_columns():
         if sub[col].isna().all():
             problems.append(f"{where}: column {col!r} is missing in every row{label}")
-    if not problems:
-        problems += degenerate_columns(sub, spec, where, label)
+    degenerate = [] if problems else degenerate_columns(sub, spec, where, label)
+    if sample == spec.sample:  # the model's own sample: bad input
+        problems += degenerate
+        degenerate = []
     if problems:
         raise InputError(problems)
-    return panel_from_frame(sub, spec.unit, spec.period, spec.used_columns(), source=where)
+    panel = panel_from_frame(sub, spec.unit, spec.period, spec.used_columns(), source=where)
+    if degenerate:
+        panel = dataclasses.replace(panel, degenerate=tuple(degenerate))
+    return panel
 
 
 def load_panel(spec, sample=None) -> Panel:

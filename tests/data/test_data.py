@@ -361,10 +361,10 @@ def test_a_regressor_correlated_but_not_a_copy_is_accepted():
     assert build_panel(df, make_spec()).n_units == 3
 
 
-def test_a_varied_sample_where_a_regressor_is_constant_skips_only_its_variants(tmp_path):
-    """Degenerate only in one sample: that sample's variants are skipped with the
-    reason; the base sample's variants are estimated."""
-    from robustgmm.audit import grid
+def test_a_varied_sample_where_a_regressor_is_constant_fails_only_its_variants(tmp_path):
+    """Degenerate only in one sample: that sample's variants fail with the reason
+    naming the column; the base sample's variants are estimated."""
+    from robustgmm.audit import grid, runner
     df = frame(n_units=30, years=range(2000, 2008))
     df.loc[df["year"] >= 2003, "x"] = 2.5
     df.to_csv(tmp_path / "panel.csv", index=False)
@@ -375,8 +375,9 @@ def test_a_varied_sample_where_a_regressor_is_constant_skips_only_its_variants(t
                           base_dir=tmp_path, source="m.toml")
     panels = grid.load_panels(spec)
     variants = grid.plan(spec, panels, counts=False)
+    out, _ = runner.run_variants(variants, panels, jobs=1)
     late = [v for v in variants if v.spec.sample.name == "late"]
-    assert late and all(v.status == grid.SKIPPED for v in late)
-    assert all("regressor 'x' has the same value (2.5) in every row in sample 'late'" in v.reason
-               for v in late)
-    assert all(v.status == grid.PLANNED for v in variants if v.spec.sample.name != "late")
+    assert late and all(out[v.id].status == runner.FAILED for v in late)
+    assert all("regressor 'x' has the same value (2.5) in every row in sample 'late'"
+               in out[v.id].reason for v in late)
+    assert all(out[v.id].status == runner.OK for v in variants if v.spec.sample.name != "late")
