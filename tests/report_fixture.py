@@ -48,10 +48,12 @@ def _data():
     # bakery, so the data need no second random stream)
     codes = frame["bakery"].str[1:].astype(int)
     frame[NOISE_NAME] = ((codes * 7919 + frame["year"] * 104729) % 1000) / 1000.0 - 0.5
-    # ... that is zero outside the first 50 bakeries: a sample without them cannot
-    # estimate its coefficient (a failed variant, with the reason)
+    # ... that is twice the flour price outside the first 50 bakeries: a sample
+    # without them cannot tell the two apart (every variant fails, with the reason;
+    # a column constant in the model's own sample would be an input error instead)
     frame["tier"] = (codes <= 50).map({True: "first", False: "rest"})
-    frame.loc[frame["tier"] == "rest", NOISE_NAME] = 0.0
+    rest = frame["tier"] == "rest"
+    frame.loc[rest, NOISE_NAME] = 2.0 * frame.loc[rest, ROBUST_NAME]
     frame[f"{ROBUST_NAME}_"] = frame[NOISE_NAME].iloc[::-1].to_numpy()
     return frame
 
