@@ -12,6 +12,7 @@ subcommand, so that ``robustgmm --help`` and the input checks stay fast.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import math
 import os
@@ -25,6 +26,7 @@ from . import __version__
 from .errors import DataWarning, EstimationError, InputError
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_FRAGILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+EXIT_TERMINATED = 143  # 128 + SIGTERM, as shells report it
 #: Written into an output folder as soon as robustgmm starts using it, so that a
 #: rerun of an interrupted audit (no manifest.json yet) is recognised as ours.
 OUTPUT_MARKER = ".robustgmm-output"  # robustgmm.output.MARKER
@@ -437,6 +439,8 @@ def cmd_audit(args) -> int:
     if run.get("cache_unavailable"):
         print(f"robustgmm: note: ran without a cache ({run['cache_unavailable']}); "
               "an interrupted run of this audit cannot resume", file=sys.stderr)
+    if run.get("workers_capped"):
+        print(f"robustgmm: note: {run['workers_capped']}", file=sys.stderr)
     if run.get("lost"):
         print(f"robustgmm: note: {run['lost']} variant(s) lost their worker process twice "
               "and are recorded as failed; a rerun tries them again", file=sys.stderr)
@@ -565,10 +569,34 @@ def _show_warning(message, category, filename, lineno, file=None, line=None,
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the exit code (the console script exits with it)."""
     argv = list(sys.argv[1:] if argv is None else argv)
-    with warnings.catch_warnings():
+    with warnings.catch_warnings(), _terminate_like_interrupt():
         warnings.simplefilter("always", DataWarning)
         warnings.showwarning = _show_warning
         return _main(argv)
+
+
+class _Terminated(KeyboardInterrupt):
+    """SIGTERM, handled like Ctrl-C (finished variants are already in the cache)."""
+
+
+@contextlib.contextmanager
+def _terminate_like_interrupt():
+    """SIGTERM raises :class:`_Terminated` in the main thread, so a terminated audit
+    stops its workers, removes its temporary files and prints one line, as Ctrl-C
+    does. Only in the main thread (signal handlers cannot be set elsewhere)."""
+    import signal
+    import threading
+    if threading.current_thread() is not threading.main_thread():
+        yield
+        return
+
+    def handler(signum, frame):
+        raise _Terminated()
+    previous = signal.signal(signal.SIGTERM, handler)
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGTERM, previous)
 
 
 def check_environment() -> None:
@@ -604,6 +632,10 @@ def _main(argv: list[str]) -> int:
         for line in str(exc).splitlines() or ["the model cannot be estimated"]:
             _error(line)
         return EXIT_INPUT
+    except _Terminated:
+        print("robustgmm: terminated (SIGTERM); finished variants are kept in the cache "
+              "and a rerun resumes", file=sys.stderr, flush=True)
+        return EXIT_TERMINATED
     except KeyboardInterrupt:
         print("robustgmm: interrupted", file=sys.stderr, flush=True)
         return EXIT_INTERRUPTED

@@ -55,24 +55,29 @@ def default_cache_dir(out_dir) -> Path:
 
 
 def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool | None = False,
-          backend: str | None = None, panel=None, fit=None) -> AuditResult:
+          backend: str | None = None, on_error: str = "raise") -> AuditResult:
     """Estimate every variant of ``spec`` and judge the focus terms.
 
     ``jobs``: workers (None: every core). ``cache_dir``: folder of the variant cache
     (None: no cache). ``progress``: tqdm bar on stderr (None: when it is a terminal).
     ``backend``: a joblib backend name (default loky; "dask" with a distributed
-    client). ``panel``: the base sample's panel when already loaded. ``fit``: a
-    replacement estimator (tests).
+    client). ``on_error``: what an exception other than
+    :class:`~robustgmm.errors.EstimationError` does — "raise" (default: it is a bug
+    and stops the audit with its traceback) or "record" (the variant is recorded
+    failed and the audit goes on). A variant that cannot be estimated on its data
+    (EstimationError and its subclasses) is always a failed variant.
     """
+    runner.check_on_error(on_error)
     t0 = time.perf_counter()
     grid.check_base(spec)
-    panels = grid.load_panels(spec, panel)
+    panels = grid.load_panels(spec)
     t_load = time.perf_counter()
     # counts come with each estimation; planning here only does the cheap checks
     planned = grid.plan(spec, panels, counts=False)
     t_plan = time.perf_counter()
     outcomes, stats = runner.run_variants(planned, panels, jobs=jobs, cache_dir=cache_dir,
-                                          progress=progress, backend=backend, fit=fit)
+                                          progress=progress, backend=backend,
+                                          on_error=on_error)
     t_run = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
     evaluation = verdicts.evaluate(spec, variants, estimates, bounds)  # every rule, once

@@ -29,8 +29,10 @@
   member runs whole again) and an unchanged rerun estimates nothing. Variants that fail with :class:`EstimationError` (a property of
   the model and data) are cached as failed; unexpected errors are not cached, so a
   rerun tries them again.
-* **Failure isolation**: an exception in a variant marks it ``failed`` with a one-line
-  reason; the other variants go on.
+* **Failure policy**: a variant that cannot be estimated (:class:`EstimationError`)
+  is marked ``failed`` with a one-line reason and the other variants go on; any
+  other exception is a bug and stops the run with its traceback, unless
+  ``on_error="record"`` (then it too is a failed variant, not cached).
 * **Lost workers**: when a worker process dies (killed, crashed, out of memory), joblib
   stops the whole map (``TerminatedWorkerError``). The results received until then are
   kept (and cached). Each task marks its start in a private temporary folder, so the
@@ -47,14 +49,10 @@
 """
 from __future__ import annotations
 
-import contextlib
 import hashlib
-import json
 import math
 import os
-import shutil
 import sys
-import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -63,22 +61,14 @@ from typing import Any, Callable, Mapping, Sequence
 import joblib
 import numpy as np
 
-from .. import __version__
 from ..errors import EstimationError
-from .grid import PLANNED, Variant, canonical_json, canonical_settings, sample_key
-from ..atomic import atomic_write_text
+from . import parallel
+from .cache import CACHE_FORMAT, Cache  # noqa: F401  (re-exported)
+from .grid import PLANNED, Variant, sample_key
+from .parallel import (BLAS_THREADS, LOST_REASON, WORKER_DEATHS,  # noqa: F401  (re-exported)
+                       WORKER_STARTUP_SECONDS, _worker_died)
 
-CACHE_FORMAT = 1
 OK, FAILED = "ok", "failed"
-#: BLAS threads per variant estimation, everywhere (this process, loky workers, dask
-#: workers). OpenBLAS sums in a different order with a different thread count, which
-#: moves results in the 14th digit; one fixed count makes an audit bit-identical
-#: whatever ``jobs`` is. Parallelism comes from running variants side by side.
-BLAS_THREADS = 1
-#: Rough cost of starting loky workers (process start and imports of numpy, scipy and
-#: the package; 1–5 s measured on a loaded 2-core machine). With ``jobs=None`` an
-#: audit whose estimated sequential time is below this runs in-process.
-WORKER_STARTUP_SECONDS = 2.0
 
 
 # ---------------------------------------------------------------------------
@@ -140,11 +130,35 @@ def _failure(exc: BaseException) -> dict:
             "cacheable": False, "error_type": type(exc).__name__}
 
 
+#: Failure policies (``on_error``) for an exception that is not an
+#: :class:`EstimationError`: "raise" (default: a bug stops the audit with its
+#: traceback) or "record" (the variant is recorded failed with the exception's type
+#: and message, not cached, and the audit goes on).
+ON_ERROR = ("raise", "record")
+
+
+def check_on_error(on_error: str) -> str:
+    if on_error not in ON_ERROR:
+        raise ValueError(f"on_error must be one of {', '.join(ON_ERROR)}, not {on_error!r}")
+    return on_error
+
+
+def _unexpected(exc: BaseException, on_error: str) -> dict:
+    """An exception that is not an EstimationError: raised again (its traceback
+    kept) under ``on_error="raise"``, a non-cacheable failure record otherwise."""
+    if on_error == "raise" and not isinstance(exc, EstimationError):
+        raise exc
+    return _failure(exc)
+
+
 def estimate_group(specs, panel, fit: Callable | None = None,
-                   sample: Callable | None = None) -> list[dict]:
+                   sample: Callable | None = None, on_error: str = "raise") -> list[dict]:
     """Estimate a share group of variants and their OLS/within bounds.
 
-    Never raises for a bad variant: each member gets ``{"status", "reason", "fit",
+    A variant that cannot be estimated (:class:`EstimationError` and its subclasses,
+    e.g. :class:`~robustgmm.errors.UnderidentifiedError`) gets a failure record; any
+    other exception is a bug and is raised, unless ``on_error="record"`` (see
+    :data:`ON_ERROR`). Each member gets ``{"status", "reason", "fit",
     "bounds", "seconds", "cacheable"}``. By default the group goes to
     :func:`robustgmm.core.fit_family`, which sums the moments once for the group and
     reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
@@ -161,7 +175,8 @@ def estimate_group(specs, panel, fit: Callable | None = None,
     if degenerate:  # a column with no information in this sample: not estimable
         reason = "; ".join(degenerate)
         return [{"status": FAILED, "reason": reason, "cacheable": True, "fit": None,
-                 "bounds": None, "seconds": 0.0} for _ in specs]
+                 "bounds": None, "seconds": 0.0, "error_type": "EstimationError"}
+                for _ in specs]
     if fit is None:
         results = core.fit_family(list(specs), panel)
     else:
@@ -169,20 +184,20 @@ def estimate_group(specs, panel, fit: Callable | None = None,
         for spec in specs:
             try:
                 results.append(fit(spec, panel))
-            except Exception as exc:  # noqa: BLE001 - recorded as the member's failure
+            except Exception as exc:  # noqa: BLE001 - judged below by the policy
                 results.append(exc)
     memo: dict = {}
     masks: dict = {}
     out = []
     for spec, res in zip(specs, results):
         if isinstance(res, BaseException):
-            out.append({"fit": None, "bounds": None, **_failure(res)})
+            out.append({"fit": None, "bounds": None, **_unexpected(res, on_error)})
             continue
         entry = {"status": OK, "reason": "", "fit": None, "bounds": None, "cacheable": True}
         try:
             entry["fit"] = fit_record(res, spec)
         except Exception as exc:  # noqa: BLE001
-            out.append({"fit": None, "bounds": None, **_failure(exc)})
+            out.append({"fit": None, "bounds": None, **_unexpected(exc, on_error)})
             continue
         try:
             # members of a share group differ only in steps, errors and last_lag,
@@ -200,6 +215,8 @@ def estimate_group(specs, panel, fit: Callable | None = None,
         except EstimationError as exc:
             entry["bounds"] = {"error": one_line(exc)}
         except Exception as exc:  # noqa: BLE001
+            if on_error == "raise":
+                raise
             entry["bounds"] = {"error": f"{type(exc).__name__}: {one_line(exc)}"}
         out.append(entry)
     per_variant = (time.perf_counter() - start) / max(len(out), 1)
@@ -209,9 +226,9 @@ def estimate_group(specs, panel, fit: Callable | None = None,
 
 
 def estimate_variant(spec, panel, fit: Callable | None = None,
-                     sample: Callable | None = None) -> dict:
+                     sample: Callable | None = None, on_error: str = "raise") -> dict:
     """One variant on its own (a share group of one); see :func:`estimate_group`."""
-    return estimate_group([spec], panel, fit, sample)[0]
+    return estimate_group([spec], panel, fit, sample, on_error)[0]
 
 
 def one_line(exc: BaseException) -> str:
@@ -221,70 +238,6 @@ def one_line(exc: BaseException) -> str:
 
 # ---------------------------------------------------------------------------
 # cache
-# ---------------------------------------------------------------------------
-class Cache:
-    """One checksummed JSON file per variant (see the module docstring)."""
-
-    def __init__(self, directory):
-        self.directory = Path(directory)
-        self.directory.mkdir(parents=True, exist_ok=True)
-        self.corrupted = 0
-        self.write_errors = 0
-
-    @staticmethod
-    def key(data_hash: str, spec, group: Any = None) -> str:
-        """sha256 of the data hash, the canonical settings, the package version and
-        ``group``: what else the result depends on (the instrument windows of the
-        share group it was estimated with; see :func:`_group_signature`)."""
-        text = canonical_json({"format": CACHE_FORMAT, "version": __version__,
-                               "data": data_hash, "settings": canonical_settings(spec),
-                               "group": group})
-        return hashlib.sha256(text.encode()).hexdigest()
-
-    def path(self, key: str) -> Path:
-        return self.directory / f"{key}.json"
-
-    def load(self, key: str) -> dict | None:
-        path = self.path(key)
-        try:
-            raw = path.read_bytes()
-        except FileNotFoundError:
-            return None
-        except OSError:  # e.g. a folder in its place
-            self.corrupted += 1
-            return None
-        try:
-            entry = json.loads(raw.decode("utf-8"))  # garbage bytes: UnicodeDecodeError
-            payload = entry["payload"]
-            ok = (entry.get("key") == key and entry.get("format") == CACHE_FORMAT
-                  and entry.get("sha256") == _checksum(payload))
-        except (ValueError, KeyError, TypeError, AttributeError):
-            ok = False
-        if not ok:
-            self.corrupted += 1  # recomputed and overwritten by the caller
-            return None
-        return payload
-
-    def store_quietly(self, key: str, variant_id: str, payload: dict) -> bool:
-        """:meth:`store`, but a failed write (full disk, read-only folder) is only
-        counted: the cache serves resumption, the result itself is not lost."""
-        try:
-            self.store(key, variant_id, payload)
-        except OSError:
-            self.write_errors += 1
-            return False
-        return True
-
-    def store(self, key: str, variant_id: str, payload: dict) -> None:
-        entry = {"format": CACHE_FORMAT, "key": key, "version": __version__,
-                 "variant": variant_id, "sha256": _checksum(payload), "payload": payload}
-        atomic_write_text(self.path(key), json.dumps(entry, allow_nan=True) + "\n")
-
-
-def _checksum(payload: dict) -> str:
-    return hashlib.sha256(canonical_json(payload).encode()).hexdigest()
-
-
 # ---------------------------------------------------------------------------
 # the run
 # ---------------------------------------------------------------------------
@@ -343,83 +296,11 @@ def _group_signature(members: Sequence[Variant]) -> list:
     return sorted({"all" if v.spec.last_lag is None else str(v.spec.last_lag) for v in members})
 
 
-def _is_loky(backend_obj) -> bool:
-    return type(backend_obj).__name__ == "LokyBackend"
-
-
-@contextlib.contextmanager
-def _blas_limit():
-    """Limit BLAS threads in this process for the duration of a run (covers the
-    in-process and threading paths; threads share the process-wide setting)."""
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover - a declared dependency
-        yield
-        return
-    from .. import core  # noqa: F401  load numpy's and scipy's BLAS before limiting them
-    import scipy.linalg  # noqa: F401
-    with threadpool_limits(limits=BLAS_THREADS, user_api="blas"):
-        yield
-
-
-_LIMITED_PIDS: set[int] = set()
-
-
-def _limit_worker_blas(parent_pid: int) -> None:
-    """In a worker process (loky, dask), fix the BLAS threads once for its lifetime.
-
-    Not done in the parent process, where :func:`_blas_limit` already holds (and a
-    per-task set/restore would race between threads)."""
-    pid = os.getpid()
-    if pid == parent_pid or pid in _LIMITED_PIDS:
-        return
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:  # pragma: no cover
-        return
-    from .. import core  # noqa: F401
-    import scipy.linalg  # noqa: F401
-    threadpool_limits(limits=BLAS_THREADS, user_api="blas")
-    _LIMITED_PIDS.add(pid)
-
-
-def _default_is_loky() -> bool:
-    """True unless the caller activated another joblib backend (e.g. dask)."""
-    return _is_loky(joblib.parallel.get_active_backend()[0])
-
-
-@contextlib.contextmanager
-def _backend_context(backend: str | None, n_workers: int):
-    """The joblib configuration of a run.
-
-    ``backend=None`` keeps whatever backend the caller activated (e.g. dask through
-    ``joblib.parallel_config``) and otherwise uses loky. With loky, BLAS threads per
-    worker are capped at :data:`BLAS_THREADS` (joblib sets the usual thread-count
-    environment variables in the worker processes), so workers never oversubscribe
-    the cores.
-    """
-    if backend is None:
-        active, _ = joblib.parallel.get_active_backend()
-        backend = "loky" if _is_loky(active) else None
-    if backend is None:
-        yield _backend_name(joblib.parallel.get_active_backend()[0])
-    elif backend == "loky":
-        with joblib.parallel_config(backend="loky", inner_max_num_threads=BLAS_THREADS):
-            yield "loky"
-    else:
-        with joblib.parallel_config(backend=backend):
-            yield backend
-
-
-def _backend_name(obj) -> str:
-    name = type(obj).__name__
-    return name[:-len("Backend")].lower() if name.endswith("Backend") else name
-
-
 def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                  jobs: int | None = None, cache_dir=None, progress: bool | None = False,
                  backend: str | None = None, fit: Callable | None = None,
-                 sample: Callable | None = None) -> tuple[dict[str, Outcome], RunStats]:
+                 sample: Callable | None = None,
+                 on_error: str = "raise") -> tuple[dict[str, Outcome], RunStats]:
     """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
 
     ``panels`` maps :func:`robustgmm.grid.sample_key` to the sample's panel.
@@ -434,6 +315,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     the cache; it always runs whole, so that its results do not depend on what was
     cached (members already cached keep their cached result, which is identical).
     """
+    check_on_error(on_error)
     start = time.perf_counter()
     todo = [v for v in variants if v.status == PLANNED]
     cache, cache_problem = None, None
@@ -494,15 +376,17 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
             if bar is not None:
                 bar.update(1)
 
+    parent = os.getpid()
+
     def task(group, marker=None):
         return joblib.delayed(_task)([v.id for v in group], [v.spec for v in group],
                                      panels[sample_key(group[0].spec.sample)], fit, sample,
-                                     parent, marker)
-
-    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
+                                     parent, marker, on_error)
 
     def finished(group) -> bool:
         return all(v.id in outcomes for v in group)
+
+    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
 
     def record_lost(group) -> None:
         for v in group:
@@ -514,67 +398,37 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
             if bar is not None:
                 bar.update(1)
 
-    def run_surviving_worker_deaths(groups) -> None:
-        """Map ``groups`` over the workers; survive workers that die (module docstring,
-        "Lost workers")."""
-        markers = Path(tempfile.mkdtemp(prefix="robustgmm-tasks-"))
-        try:
-            queue = list(range(len(groups)))
-            while queue:
-                try:
-                    for results in _parallel(n_jobs)(task(groups[i], str(markers / f"{i}"))
-                                                     for i in queue):
-                        record(results)
-                    return
-                except Exception as exc:  # noqa: BLE001 - only a lost worker is handled
-                    if not _worker_died(exc):
-                        raise
-                    deaths["worker_deaths"] += 1
-                unfinished = [i for i in queue if not finished(groups[i])]
-                started = [i for i in unfinished if (markers / f"{i}").exists()]
-                # without start marks (a remote worker) every unfinished group is a suspect
-                suspects = started or unfinished
-                for i in suspects:
-                    deaths["retried_alone"] += 1
-                    try:
-                        for results in _parallel(n_jobs)([task(groups[i])]):
-                            record(results)
-                    except Exception as exc:  # noqa: BLE001
-                        if not _worker_died(exc):
-                            raise
-                        deaths["worker_deaths"] += 1
-                        record_lost(groups[i])
-                queue = [i for i in unfinished if i not in set(suspects)]
-        finally:
-            shutil.rmtree(markers, ignore_errors=True)
-
     backend_used = "in-process"
     n_workers = 1
-    parent = os.getpid()
+    capped = None
     try:
-        if pending and jobs is None and backend is None and _default_is_loky():
+        if pending and jobs is None and backend is None and parallel._default_is_loky():
             # jobs not set: time the first group here; when the whole audit would
             # take less than starting worker processes costs, stay in this process
             first = pending.pop(0)
             t0 = time.perf_counter()
-            with _blas_limit():
+            with parallel._blas_limit():
                 record(_task([v.id for v in first], [v.spec for v in first],
-                             panels[sample_key(first[0].spec.sample)], fit, sample, parent))
+                             panels[sample_key(first[0].spec.sample)], fit, sample, parent,
+                             None, on_error))
             per_variant = (time.perf_counter() - t0) / len(first)
             if sum(len(g) for g in pending) * per_variant < WORKER_STARTUP_SECONDS:
                 n_jobs = 1
         if pending:
-            n_workers = joblib.effective_n_jobs(n_jobs)
-            with _backend_context(backend, n_workers) as backend_used, _blas_limit():
-                n_workers = joblib.effective_n_jobs(n_jobs)  # as the active backend sees it
+            with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
+                # never more workers than tasks, cores or the free memory holds
+                n_workers, capped = parallel.worker_count(
+                    n_jobs, len(pending), panels[sample_key(pending[0][0].spec.sample)])
                 if n_workers == 1:  # in this process: nothing to lose but ourselves
-                    for results in _parallel(n_jobs)(task(g) for g in pending):
+                    for results in parallel._parallel(1)(task(g) for g in pending):
                         record(results)
                 else:
-                    run_surviving_worker_deaths(pending)
+                    parallel.run_surviving_worker_deaths(
+                        pending, task, record, finished, record_lost, n_workers, deaths)
             if n_workers == 1:
                 backend_used = "in-process"
     finally:
+        parallel.remove_memmaps()  # every exit path: done, interrupted, a bug
         if bar is not None:
             bar.close()
     ordered = {v.id: outcomes[v.id] for v in todo}
@@ -593,7 +447,8 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                **({k: v for k, v in deaths.items() if v}),
                **({"cache_write_errors": cache.write_errors}
                   if cache is not None and cache.write_errors else {}),
-               **({"cache_unavailable": cache_problem} if cache_problem else {})},
+               **({"cache_unavailable": cache_problem} if cache_problem else {}),
+               **({"workers_capped": capped} if capped else {})},
     )
     return ordered, stats
 
@@ -607,33 +462,15 @@ def _group_weight(group, panel) -> float:
     return len(group) * (2 if spec.equations == "system" else 1) * width
 
 
-def _parallel(n_jobs: int) -> joblib.Parallel:
-    # results stream back as they finish, so each is cached at once (resume)
-    try:
-        return joblib.Parallel(n_jobs=n_jobs, return_as="generator_unordered")
-    except ValueError:  # a backend without unordered generators
-        return joblib.Parallel(n_jobs=n_jobs, return_as="generator")
-
-
-def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = None):
+def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = None,
+          on_error: str = "raise"):
     if marker is not None:  # "this group has started" (see run_surviving_worker_deaths)
         try:
             Path(marker).touch()
         except OSError:  # e.g. a remote worker without the parent's folder
             pass
-    _limit_worker_blas(parent_pid)
-    return list(zip(ids, estimate_group(specs, panel, fit, sample)))
-
-
-#: Names of the exceptions joblib backends raise when a worker process dies: loky's
-#: ``TerminatedWorkerError`` (a ``BrokenProcessPool``) and dask's ``KilledWorker``.
-WORKER_DEATHS = ("TerminatedWorkerError", "BrokenProcessPool", "KilledWorker")
-LOST_REASON = ("the worker process estimating this variant died twice (killed, crashed or "
-               "out of memory); rerun the audit to try it again")
-
-
-def _worker_died(exc: BaseException) -> bool:
-    return any(t.__name__ in WORKER_DEATHS for t in type(exc).__mro__)
+    parallel.in_worker(parent_pid)
+    return list(zip(ids, estimate_group(specs, panel, fit, sample, on_error)))
 
 
 def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:

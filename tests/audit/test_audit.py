@@ -2,6 +2,8 @@
 cache reuse, failed and skipped variants, the command line on a 24-variant model."""
 from __future__ import annotations
 
+import functools
+
 import json
 import os
 import subprocess
@@ -14,6 +16,7 @@ import pytest
 
 from robustgmm import __version__, core
 from robustgmm.audit import grid
+from robustgmm.audit import runner
 from robustgmm.audit import audit, default_cache_dir, plan_frame, write_audit
 from robustgmm.audit.bounds import ar_bounds
 from helpers_toml import spec_to_toml
@@ -109,12 +112,13 @@ def test_identical_outputs_whatever_jobs_and_through_the_cache(spec, tmp_path, m
         assert (cached / name).read_bytes() == text, name
 
 
-def test_failed_variants_are_reported_and_the_audit_completes(spec):
+def test_failed_variants_are_reported_and_the_audit_completes(spec, monkeypatch):
     def fails(s):
         return s.equations == "difference" and s.steps == 1 and s.last_lag == 3
     from robustgmm.errors import EstimationError
     fit = CountingFit(fail=[(fails, EstimationError("the weight matrix is singular"))])
-    result = audit(spec, jobs=1, fit=fit)
+    monkeypatch.setattr(runner, "run_variants", functools.partial(runner.run_variants, fit=fit))
+    result = audit(spec, jobs=1)
     v = result.variants
     failed = v[v["status"] == "failed"]
     assert len(failed) == 1 and failed["reason"].iloc[0] == "the weight matrix is singular"
@@ -172,3 +176,60 @@ def test_order_condition_is_a_skip_in_the_audit_too(tmp_path):
     assert v.loc[2, "reason"].startswith("fewer instruments (2) than parameters (4)")
     assert v.loc["all", "status"] == "ok"
     assert plan_frame(spec).set_index("last_lag").loc[2, "reason"] == v.loc[2, "reason"]
+
+
+# ---------------------------------------------------------------------------
+# the failure policy (issue 9): a bug is not a failing variant
+# ---------------------------------------------------------------------------
+def _type_error_everywhere(monkeypatch):
+    from robustgmm import core
+
+    def broken(specs, panel, **kw):
+        return [TypeError("unsupported operand type(s) for +: 'int' and 'str'") for _ in specs]
+    monkeypatch.setattr(core, "fit_family", broken)
+
+
+def test_a_bug_in_every_variant_raises_with_its_traceback(spec, monkeypatch):
+    _type_error_everywhere(monkeypatch)
+    with pytest.raises(TypeError, match="unsupported operand") as info:
+        audit(spec, jobs=1)
+    assert info.traceback  # the original exception, not a summary
+
+
+def test_on_error_record_keeps_going_and_names_the_error_type(spec, monkeypatch):
+    _type_error_everywhere(monkeypatch)
+    result = audit(spec, jobs=1, on_error="record")
+    v = result.variants
+    ran = v[v["status"] != "skipped"]
+    assert len(ran) and (ran["status"] == "failed").all()
+    assert ran["reason"].str.startswith("TypeError: unsupported operand").all()
+
+
+def test_estimation_errors_are_recorded_under_either_policy(spec, monkeypatch):
+    from robustgmm import core
+    from robustgmm.errors import UnderidentifiedError
+
+    def underidentified(specs, panel, **kw):
+        return [UnderidentifiedError("fewer instruments (2) than parameters (3)") for _ in specs]
+    monkeypatch.setattr(core, "fit_family", underidentified)
+    for policy in ("raise", "record"):
+        v = audit(spec, jobs=1, on_error=policy).variants
+        assert (v["status"] != "ok").all()
+
+
+def test_unknown_policy_is_refused(spec):
+    with pytest.raises(ValueError, match="on_error must be one of raise, record"):
+        audit(spec, jobs=1, on_error="ignore")
+
+
+def test_command_line_bug_is_exit_1_with_an_internal_error_line(tmp_path, monkeypatch, capsys):
+    from helpers_reliability import write_model
+    from robustgmm import cli
+    model = write_model(tmp_path / "project", {"steps": [1, 2]})
+    _type_error_everywhere(monkeypatch)
+    code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), "--jobs", "1"])
+    err = capsys.readouterr().err
+    assert code == cli.EXIT_INTERNAL, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("robustgmm: internal error: TypeError: "), err
+    assert not (tmp_path / "out" / "manifest.json").exists()

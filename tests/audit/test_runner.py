@@ -151,7 +151,8 @@ def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
          ZeroDivisionError("float division by zero")),
     ])
     cache_dir = tmp_path / "cache"
-    out, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    out, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit,
+                                     on_error="record")
     failed = {vid: o for vid, o in out.items() if o.status == runner.FAILED}
     assert len(failed) == 2 and stats.failed == 2
     reasons = sorted(o.reason for o in failed.values())
@@ -163,6 +164,16 @@ def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
     again, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit2)
     assert fit2.calls == 1
     assert sum(o.status == runner.FAILED for o in again.values()) == 1
+
+
+def test_an_unexpected_error_stops_the_run_by_default(planned):
+    """Issue 9: only EstimationError is a failed variant; a ZeroDivisionError is a
+    bug and is raised (on_error="record" above records it instead)."""
+    spec, panels, variants = planned
+    fit = CountingFit(fail=[(lambda s: s.transform == "fod" and s.steps == 2,
+                             ZeroDivisionError("float division by zero"))])
+    with pytest.raises(ZeroDivisionError, match="float division by zero"):
+        runner.run_variants(variants, panels, jobs=1, fit=fit)
 
 
 def test_singular_sample_fails_without_stopping_the_audit(tmp_path):

@@ -98,12 +98,15 @@ def test_worker_killed_once_is_retried_and_the_audit_completes(planned, tmp_path
 
 
 @pytest.mark.slow  # restarts worker processes
-def test_killed_worker_through_the_audit_tables(tmp_path):
+def test_killed_worker_through_the_audit_tables(tmp_path, monkeypatch):
     """The same through audit(): the lost variant is a failed row of variants.csv, the
     verdict counts it, and the files are complete."""
+    import functools
     spec = make_spec(tmp_path, VARY)
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=99)
-    result = audit(spec, jobs=2, fit=killer)
+    # the killer travels to the worker processes as the runner's estimator
+    monkeypatch.setattr(runner, "run_variants", functools.partial(runner.run_variants, fit=killer))
+    result = audit(spec, jobs=2)
     out = write_audit(result, tmp_path / "out")
     v = pd.read_csv(out / "variants.csv")
     failed = v[v["status"] == "failed"]

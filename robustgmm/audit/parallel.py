@@ -1,0 +1,332 @@
+"""Where the variants run: joblib backends, BLAS threads, worker limits and lost
+workers.
+
+* **Backends**: loky (processes) by default; any joblib backend the caller activates
+  (e.g. ``joblib.parallel_config("dask")``) or names is used as it is.
+* **BLAS threads**: :data:`BLAS_THREADS` per estimation in this process and every
+  worker, so that results do not depend on the number of workers.
+* **Limits** (:func:`worker_count`): never more workers than tasks or cores, nor
+  more than the available memory holds at the estimated footprint of one worker.
+* **Parent death**: each worker watches the process that started it and exits when
+  it is gone (killed with SIGKILL, out of memory), instead of computing on.
+* **Temporary files**: arrays joblib memory-maps for the workers go into a folder
+  of this run (``robustgmm-memmap-<pid>-*`` in joblib's usual place), removed on every
+  exit path; folders left by runs that died are removed at the next start.
+* **Lost workers** (:func:`run_surviving_worker_deaths`): a worker that dies stops the
+  joblib map; the groups that were running are retried alone once, then recorded
+  lost; the groups not started are sent again.
+"""
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Callable, Sequence
+
+import joblib
+
+#: BLAS threads per variant estimation, everywhere (this process, loky workers, dask
+#: workers). OpenBLAS sums in a different order with a different thread count, which
+#: moves results in the 14th digit; one fixed count makes an audit bit-identical
+#: whatever ``jobs`` is. Parallelism comes from running variants side by side.
+BLAS_THREADS = 1
+#: Rough cost of starting loky workers (process start and imports of numpy, scipy and
+#: the package; 1–5 s measured on a loaded 2-core machine). With ``jobs=None`` an
+#: audit whose estimated sequential time is below this runs in-process.
+WORKER_STARTUP_SECONDS = 2.0
+#: Memory of an idle worker (Python, numpy, scipy, pandas and the package imported;
+#: about 150 MB measured with ps on this machine), before its estimation's arrays.
+WORKER_BASE_MB = 150
+#: How often a worker checks that the process that started it is alive.
+PARENT_POLL_SECONDS = 1.0
+MEMMAP_PREFIX = "robustgmm-memmap-"
+
+
+def _is_loky(backend_obj) -> bool:
+    return type(backend_obj).__name__ == "LokyBackend"
+
+
+@contextlib.contextmanager
+def _blas_limit():
+    """Limit BLAS threads in this process for the duration of a run (covers the
+    in-process and threading paths; threads share the process-wide setting)."""
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - a declared dependency
+        yield
+        return
+    from .. import core  # noqa: F401  load numpy's and scipy's BLAS before limiting them
+    import scipy.linalg  # noqa: F401
+    with threadpool_limits(limits=BLAS_THREADS, user_api="blas"):
+        yield
+
+
+_LIMITED_PIDS: set[int] = set()
+
+
+def _limit_worker_blas(parent_pid: int) -> None:
+    """In a worker process (loky, dask), fix the BLAS threads once for its lifetime.
+
+    Not done in the parent process, where :func:`_blas_limit` already holds (and a
+    per-task set/restore would race between threads)."""
+    pid = os.getpid()
+    if pid == parent_pid or pid in _LIMITED_PIDS:
+        return
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover
+        return
+    from .. import core  # noqa: F401
+    import scipy.linalg  # noqa: F401
+    threadpool_limits(limits=BLAS_THREADS, user_api="blas")
+    _LIMITED_PIDS.add(pid)
+
+
+def _default_is_loky() -> bool:
+    """True unless the caller activated another joblib backend (e.g. dask)."""
+    return _is_loky(joblib.parallel.get_active_backend()[0])
+
+
+@contextlib.contextmanager
+def _backend_context(backend: str | None):
+    """The joblib configuration of a run.
+
+    ``backend=None`` keeps whatever backend the caller activated (e.g. dask through
+    ``joblib.parallel_config``) and otherwise uses loky. With loky, BLAS threads per
+    worker are capped at :data:`BLAS_THREADS` (joblib sets the usual thread-count
+    environment variables in the worker processes), so workers never oversubscribe
+    the cores.
+    """
+    if backend is None:
+        active, _ = joblib.parallel.get_active_backend()
+        backend = "loky" if _is_loky(active) else None
+    if backend is None:
+        yield _backend_name(joblib.parallel.get_active_backend()[0])
+    elif backend == "loky":
+        with joblib.parallel_config(backend="loky", inner_max_num_threads=BLAS_THREADS):
+            yield "loky"
+    else:
+        with joblib.parallel_config(backend=backend):
+            yield backend
+
+
+def _backend_name(obj) -> str:
+    name = type(obj).__name__
+    return name[:-len("Backend")].lower() if name.endswith("Backend") else name
+
+
+def _parallel(n_jobs: int) -> joblib.Parallel:
+    # results stream back as they finish, so each is cached at once (resume);
+    # memory-mapped arrays go into this run's own folder (see memmap_folder)
+    kw = {"temp_folder": str(memmap_folder())} if _default_is_loky() and n_jobs != 1 else {}
+    try:
+        return joblib.Parallel(n_jobs=n_jobs, return_as="generator_unordered", **kw)
+    except ValueError:  # a backend without unordered generators
+        return joblib.Parallel(n_jobs=n_jobs, return_as="generator", **kw)
+
+
+#: Names of the exceptions joblib backends raise when a worker process dies: loky's
+#: ``TerminatedWorkerError`` (a ``BrokenProcessPool``) and dask's ``KilledWorker``.
+WORKER_DEATHS = ("TerminatedWorkerError", "BrokenProcessPool", "KilledWorker")
+LOST_REASON = ("the worker process estimating this variant died twice (killed, crashed or "
+               "out of memory); rerun the audit to try it again")
+
+
+def _worker_died(exc: BaseException) -> bool:
+    return any(t.__name__ in WORKER_DEATHS for t in type(exc).__mro__)
+
+
+# ---------------------------------------------------------------------------
+# limits
+# ---------------------------------------------------------------------------
+def available_memory_mb() -> float | None:
+    """Memory available to new processes: the cgroup limit minus its usage when one
+    is set (containers), else the kernel's MemAvailable; None when unknown."""
+    for limit_file, usage_file in (("/sys/fs/cgroup/memory.max", "/sys/fs/cgroup/memory.current"),
+                                   ("/sys/fs/cgroup/memory/memory.limit_in_bytes",
+                                    "/sys/fs/cgroup/memory/memory.usage_in_bytes")):
+        try:
+            limit = Path(limit_file).read_text().strip()
+            usage = int(Path(usage_file).read_text().strip())
+        except (OSError, ValueError):
+            continue
+        if limit.isdigit() and int(limit) < 2**60:
+            return (int(limit) - usage) / 2**20
+    try:
+        for line in Path("/proc/meminfo").read_text().splitlines():
+            if line.startswith("MemAvailable:"):
+                return int(line.split()[1]) / 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
+
+
+def worker_footprint_mb(panel) -> float:
+    """Estimated memory of one worker: :data:`WORKER_BASE_MB` plus its copy of the
+    panel and the core's memory budget for one estimation."""
+    from ..core.engine import memory_budget
+    panel_mb = sum(getattr(a, "nbytes", 0) for a in getattr(panel, "values", {}).values()) / 2**20
+    try:
+        budget = memory_budget() / 2**20
+    except ValueError:
+        budget = 1024.0
+    return WORKER_BASE_MB + panel_mb + budget
+
+
+def worker_count(n_jobs: int, n_tasks: int, panel=None) -> tuple[int, str | None]:
+    """The workers to start and, when fewer than asked, one line saying why.
+
+    Never more than the tasks or (for processes on this machine) the cores, and no
+    more than the available memory holds at :func:`worker_footprint_mb` each."""
+    wanted = joblib.effective_n_jobs(n_jobs)
+    n = min(wanted, max(n_tasks, 1))
+    reasons = []
+    if n < wanted:
+        reasons.append(f"{n_tasks} task{'s' if n_tasks != 1 else ''} to run")
+    if _default_is_loky():
+        cores = joblib.cpu_count()
+        if n > cores:
+            n = cores
+            reasons.append(f"{cores} cores")
+        free = available_memory_mb()
+        if free is not None and n > 1:
+            per = worker_footprint_mb(panel)
+            fits = max(int(free // per), 1)
+            if fits < n:
+                n = fits
+                reasons.append(f"{free:.0f} MB of free memory at about {per:.0f} MB per worker")
+    if n < wanted and n_jobs != -1:
+        return n, f"{n} worker{'s' if n != 1 else ''} instead of {wanted}: " + "; ".join(reasons)
+    return n, None
+
+
+# ---------------------------------------------------------------------------
+# inside a worker: BLAS threads, parent watchdog
+# ---------------------------------------------------------------------------
+_WATCHED: set[int] = set()
+
+
+def in_worker(parent_pid: int) -> None:
+    """Set up this process once when it runs a task for ``parent_pid``: BLAS threads
+    and a watchdog that ends the worker when the parent is gone."""
+    _limit_worker_blas(parent_pid)
+    pid = os.getpid()
+    if pid == parent_pid or pid in _WATCHED:
+        return
+    _WATCHED.add(pid)
+    threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True,
+                     name="robustgmm-parent-watchdog").start()
+
+
+def _watch_parent(parent_pid: int) -> None:
+    """Exit this worker as soon as ``parent_pid`` no longer runs (SIGKILL, out of
+    memory): its results would have nowhere to go. Polls, since a loky worker is not
+    always the parent's direct child (so a parent-death signal does not apply)."""
+    while True:
+        time.sleep(PARENT_POLL_SECONDS)
+        try:
+            os.kill(parent_pid, 0)
+        except ProcessLookupError:
+            os._exit(1)
+        except PermissionError:
+            pass
+        if os.getppid() == 1 and parent_pid != 1:  # re-parented to init: the tree is gone
+            os._exit(1)
+
+
+# ---------------------------------------------------------------------------
+# temporary memory-mapped files
+# ---------------------------------------------------------------------------
+_MEMMAP: dict[int, Path] = {}
+
+
+def _memmap_root() -> Path:
+    shm = Path("/dev/shm")
+    return shm if shm.is_dir() and os.access(shm, os.W_OK) else Path(tempfile.gettempdir())
+
+
+def memmap_folder() -> Path:
+    """This process's folder for joblib's memory-mapped arrays (created on first use;
+    stale folders of dead runs are removed then)."""
+    pid = os.getpid()
+    if pid not in _MEMMAP:
+        remove_stale_memmaps()
+        _MEMMAP[pid] = Path(tempfile.mkdtemp(prefix=f"{MEMMAP_PREFIX}{pid}-", dir=_memmap_root()))
+    return _MEMMAP[pid]
+
+
+def remove_memmaps() -> None:
+    """Remove this process's memory-map folder (every exit path calls it)."""
+    folder = _MEMMAP.pop(os.getpid(), None)
+    if folder is not None:
+        shutil.rmtree(folder, ignore_errors=True)
+
+
+def remove_stale_memmaps() -> list[Path]:
+    """Folders of robustgmm runs whose process no longer exists."""
+    removed = []
+    for root in {_memmap_root(), Path(tempfile.gettempdir())}:
+        for path in root.glob(MEMMAP_PREFIX + "*"):
+            try:
+                pid = int(path.name[len(MEMMAP_PREFIX):].split("-")[0])
+            except ValueError:
+                continue
+            try:
+                os.kill(pid, 0)
+                continue  # alive
+            except ProcessLookupError:
+                pass
+            except PermissionError:
+                continue
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(path)
+    return removed
+
+
+# ---------------------------------------------------------------------------
+# lost workers
+# ---------------------------------------------------------------------------
+def run_surviving_worker_deaths(groups: Sequence, task: Callable, record: Callable,
+                                finished: Callable, record_lost: Callable, n_jobs: int,
+                                deaths: dict) -> None:
+    """Map ``groups`` over the workers; survive workers that die (module docstring,
+    "Lost workers"). ``task(group, marker)`` makes the joblib task (it touches
+    ``marker`` when it starts); ``record(results)`` keeps results as they arrive;
+    ``finished(group)`` says whether every member has a result; ``record_lost(group)``
+    records the members of a group whose worker died twice; ``deaths`` counts
+    ``worker_deaths``, ``retried_alone`` and ``lost``."""
+    markers = Path(tempfile.mkdtemp(prefix="robustgmm-tasks-"))
+    try:
+        queue = list(range(len(groups)))
+        while queue:
+            try:
+                for results in _parallel(n_jobs)(task(groups[i], str(markers / f"{i}"))
+                                                 for i in queue):
+                    record(results)
+                return
+            except Exception as exc:  # noqa: BLE001 - only a lost worker is handled
+                if not _worker_died(exc):
+                    raise
+                deaths["worker_deaths"] += 1
+            unfinished = [i for i in queue if not finished(groups[i])]
+            started = [i for i in unfinished if (markers / f"{i}").exists()]
+            # without start marks (a remote worker) every unfinished group is a suspect
+            suspects = started or unfinished
+            for i in suspects:
+                deaths["retried_alone"] += 1
+                try:
+                    for results in _parallel(n_jobs)([task(groups[i])]):
+                        record(results)
+                except Exception as exc:  # noqa: BLE001
+                    if not _worker_died(exc):
+                        raise
+                    deaths["worker_deaths"] += 1
+                    record_lost(groups[i])
+            queue = [i for i in unfinished if i not in set(suspects)]
+    finally:
+        shutil.rmtree(markers, ignore_errors=True)
+        remove_memmaps()

@@ -1,0 +1,206 @@
+"""Issue 12, items 10, 11 and 15: no process, memory map or temporary folder left
+after a kill; never more workers than tasks, cores or memory; a cache that
+recomputes after an upgrade.
+
+Kill tests run the command in a subprocess with the shared harness (a paced
+estimation, so that the signal arrives mid-run) and are marked slow. After each,
+the test looks for leftovers: processes whose parent was the killed run, memory-map
+folders of the run and task-marker folders.
+"""
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import tempfile
+import time
+from pathlib import Path
+
+import pytest
+
+from robustgmm.audit import cache as cache_mod, grid, parallel, runner
+
+from helpers_audit import CountingFit, make_spec
+from helpers_reliability import (harness_env, install_harness, robustgmm_command,
+                                 started_pids, write_model)
+
+
+# ---------------------------------------------------------------------------
+# item 15: the cache key covers everything a result depends on
+# ---------------------------------------------------------------------------
+@pytest.fixture
+def planned(tmp_path):
+    spec = make_spec(tmp_path, {"steps": [1, 2]})
+    panels = grid.load_panels(spec)
+    return spec, panels, grid.plan(spec, panels)
+
+
+@pytest.mark.parametrize("library", ["robustgmm", "numpy", "scipy"])
+def test_an_upgrade_of_the_package_or_a_library_recomputes(planned, tmp_path, monkeypatch,
+                                                           library):
+    spec, panels, variants = planned
+    cache_dir = tmp_path / "cache"
+    runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=CountingFit())
+    fit = CountingFit()
+    _, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert fit.calls == 0 and stats.cached  # the warm rerun is served by the cache
+    real = cache_mod.environment()
+    monkeypatch.setattr(cache_mod, "environment", lambda: {**real, library: real[library] + ".1"})
+    fit = CountingFit()
+    _, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    assert stats.cached == 0 and fit.calls == len([v for v in variants if v.status == "planned"])
+
+
+def test_each_entry_carries_what_it_was_computed_from(planned, tmp_path):
+    import json
+    spec, panels, variants = planned
+    runner.run_variants(variants, panels, jobs=1, cache_dir=tmp_path / "cache")
+    entries = [json.loads(p.read_text()) for p in (tmp_path / "cache").glob("*.json")]
+    assert entries and all(e["environment"] == cache_mod.environment() for e in entries)
+    assert all(e["format"] == cache_mod.CACHE_FORMAT for e in entries)
+
+
+def test_cache_key_includes_data_settings_and_versions(planned):
+    spec, panels, variants = planned
+    a = variants[0].spec
+    base = cache_mod.Cache.key("h1", a)
+    assert base != cache_mod.Cache.key("h2", a)
+    assert base != cache_mod.Cache.key("h1", variants[1].spec)
+
+
+# ---------------------------------------------------------------------------
+# item 11: never more workers than tasks or cores; memory
+# ---------------------------------------------------------------------------
+def test_workers_never_outnumber_tasks_or_cores(monkeypatch):
+    import joblib
+    monkeypatch.setattr(parallel, "available_memory_mb", lambda: None)
+    cores = joblib.cpu_count()
+    n, note = parallel.worker_count(64, 1)
+    assert n == 1 and "1 task to run" in note and "instead of 64" in note
+    n, note = parallel.worker_count(999, 500)
+    assert n == cores and f"{cores} cores" in note
+    n, note = parallel.worker_count(-1, 500)
+    assert n == cores and note is None  # "every core" asked: nothing to say
+
+
+def test_workers_are_capped_by_free_memory(monkeypatch):
+    monkeypatch.setattr(parallel, "available_memory_mb", lambda: 1000.0)
+    monkeypatch.setattr(parallel, "worker_footprint_mb", lambda panel: 400.0)
+    monkeypatch.setattr(parallel.joblib, "cpu_count", lambda: 16)
+    n, note = parallel.worker_count(8, 100)
+    assert n == 2 and "1000 MB of free memory at about 400 MB per worker" in note
+
+
+def test_jobs_64_for_one_task_runs_in_process_and_says_so(tmp_path, capsys, monkeypatch):
+    from robustgmm import cli
+    monkeypatch.setattr(cli, "_report_builder", lambda: None)
+    model = write_model(tmp_path / "project", {"steps": [1, 2]})
+    code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), "--jobs", "64",
+                     "--no-cache"])
+    err = capsys.readouterr().err
+    assert code == 0, err
+    assert "robustgmm: note: 1 worker instead of 64: 1 task to run" in err, err
+    import json
+    run = json.loads((tmp_path / "out" / "manifest.json").read_text())["run"]
+    assert run["jobs"] == 1 and run["backend"] == "in-process"
+
+
+# ---------------------------------------------------------------------------
+# item 10: memory maps and worker processes after the end of a run
+# ---------------------------------------------------------------------------
+def test_stale_memory_maps_of_dead_runs_are_removed():
+    dead = subprocess.Popen(["true"])
+    dead.wait()
+    root = parallel._memmap_root()
+    stale = Path(tempfile.mkdtemp(prefix=f"{parallel.MEMMAP_PREFIX}{dead.pid}-", dir=root))
+    (stale / "panel.pkl").write_bytes(b"x" * 100)
+    live = Path(tempfile.mkdtemp(prefix=f"{parallel.MEMMAP_PREFIX}{os.getpid()}-", dir=root))
+    try:
+        removed = parallel.remove_stale_memmaps()
+        assert stale in removed and not stale.exists() and live.exists()
+    finally:
+        import shutil
+        shutil.rmtree(live, ignore_errors=True)
+
+
+def _children_of(pid: int) -> list[int]:
+    out = []
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            text = stat.read_text()
+        except OSError:
+            continue
+        fields = text[text.rindex(")") + 2:].split()
+        if int(fields[1]) == pid:
+            out.append(int(stat.parent.name))
+    return out
+
+
+def _alive(pid: int) -> bool:
+    try:
+        text = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return False
+    return text[text.rindex(")") + 2:].split()[0] != "Z"
+
+
+def _leftovers(pid: int) -> list[Path]:
+    roots = {parallel._memmap_root(), Path(tempfile.gettempdir())}
+    return [p for r in roots for p in r.glob(f"{parallel.MEMMAP_PREFIX}{pid}-*")]
+
+
+def _wait(condition, timeout=120.0, proc=None) -> bool:
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if condition():
+            return True
+        if proc is not None and proc.poll() is not None:
+            return condition()
+        time.sleep(0.1)
+    return False
+
+
+@pytest.mark.slow  # worker processes, about 15 s
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGTERM])
+def test_killing_the_main_process_leaves_no_worker_and_no_temporary(tmp_path, sig):
+    """``audit --jobs 2`` killed mid-run: the workers exit within a few seconds (their
+    watchdog sees the parent gone, or the interrupt stops them), no memory-map
+    folder of the run is left, and after SIGTERM one line is printed and the
+    finished variants are kept (a rerun resumes)."""
+    model = write_model(tmp_path / "project",
+                        {"transform": ["fd", "fod"], "form": ["per-period", "collapsed"],
+                         "steps": [1, 2]}, panel_kw={"n_units": 400, "n_periods": 7})
+    harness = install_harness(tmp_path / "harness")
+    counter = tmp_path / "count"
+    env = harness_env(harness, ROBUSTGMM_TEST_COUNT=counter, ROBUSTGMM_TEST_PACE=3)
+    out = tmp_path / "out"
+    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
+                            start_new_session=True)
+    workers = []
+    try:
+        assert _wait(lambda: len(set(started_pids(counter)) - {proc.pid}) >= 2, proc=proc), \
+            proc.communicate()
+        workers = sorted(set(started_pids(counter)) - {proc.pid})
+        os.kill(proc.pid, sig)
+        _, err = proc.communicate(timeout=120)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait()
+    # every worker gone within a few watchdog periods
+    assert _wait(lambda: not any(_alive(w) for w in workers), timeout=30), \
+        [w for w in workers if _alive(w)]
+    assert _wait(lambda: not _leftovers(proc.pid), timeout=10) or sig == signal.SIGKILL
+    if sig == signal.SIGTERM:
+        assert proc.returncode == 143, err
+        lines = err.strip().splitlines()
+        assert lines == ["robustgmm: terminated (SIGTERM); finished variants are kept in the "
+                         "cache and a rerun resumes"], err
+        assert not _leftovers(proc.pid)
+    else:
+        # SIGKILL runs no cleanup: the next run removes what the dead one left
+        subprocess.run(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+                       env=harness_env(harness), check=True, capture_output=True, timeout=600)
+        assert not _leftovers(proc.pid)
+    assert not (out / ".robustgmm-lock").exists() or sig == signal.SIGKILL
