@@ -299,7 +299,9 @@ def run_surviving_worker_deaths(groups: Sequence, task: Callable, record: Callab
     ``finished(group)`` says whether every member has a result; ``record_lost(group)``
     records the members of a group whose worker died twice; ``deaths`` counts
     ``worker_deaths``, ``retried_alone`` and ``lost``."""
-    markers = Path(tempfile.mkdtemp(prefix="robustgmm-tasks-"))
+    # inside this run's folder, so that a run killed with SIGKILL leaves nothing that
+    # the next run's stale-folder cleanup does not remove
+    markers = Path(tempfile.mkdtemp(prefix="tasks-", dir=memmap_folder()))
     try:
         queue = list(range(len(groups)))
         while queue:
