@@ -82,6 +82,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--plan", action="store_true",
                    help="list the variants and their instrument counts without estimating")
     p.add_argument("--no-cache", action="store_true", help="do not reuse or keep cached variants")
+    p.add_argument("--yes", action="store_true",
+                   help=f"run (or plan) a grid of more than {LARGE_GRID:,} variants")
     p.add_argument("--fail-on-fragile", action="store_true",
                    help="exit with code 3 when a focus term is fragile")
     p.add_argument("--force", action="store_true",
@@ -399,12 +401,50 @@ def _plan_frame(spec):
     return plan_frame(spec)
 
 
+#: Above this many variants an audit (or its plan) asks for ``--yes``: a grid that
+#: size takes hours and is usually a mistake in [audit.vary] (common practice: a
+#: referee's list of variants is tens to a few hundred).
+LARGE_GRID = 5000
+
+
+def check_grid_size(spec, args) -> None:
+    """Refuse a very large grid without ``--yes``: one line with the count and, for an
+    audit, the time it would take (one base-model fit timed, times the variants,
+    over the workers). Counting the grid estimates nothing."""
+    from .audit.grid import expand
+    n = len(expand(spec))
+    if n <= LARGE_GRID or args.yes:
+        return
+    what = "planning it counts instruments for each" if args.plan else "running it"
+    estimate = "" if args.plan else _time_estimate(spec, n, args.jobs)
+    raise InputError(f"{spec.source}: [audit.vary] makes {n:,} variants (more than "
+                     f"{LARGE_GRID:,}){estimate}; {what} is a long job: add --yes to go "
+                     "ahead, or vary fewer settings")
+
+
+def _time_estimate(spec, n: int, jobs) -> str:
+    import time as _time
+    import joblib
+    from .core import fit
+    from .data import load_panel
+    try:
+        panel = load_panel(spec)
+        t0 = _time.perf_counter()
+        fit(spec, panel)
+        seconds = (_time.perf_counter() - t0) * n / max(joblib.effective_n_jobs(jobs or -1), 1)
+    except (InputError, EstimationError):
+        return ""
+    hours = seconds / 3600
+    return (f", about {hours:.1f} hours" if hours >= 1 else f", about {seconds / 60:.0f} minutes")
+
+
 def cmd_audit(args) -> int:
     from .modelfile import read_model
 
     if not args.plan:
         check_name_length(args.out, "--out")
     spec = read_model(check_model_path(args.model))
+    check_grid_size(spec, args)
     if args.plan:
         import pandas as pd
         frame = _plan_frame(spec)

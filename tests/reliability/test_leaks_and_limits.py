@@ -204,3 +204,25 @@ def test_killing_the_main_process_leaves_no_worker_and_no_temporary(tmp_path, si
                        env=harness_env(harness), check=True, capture_output=True, timeout=600)
         assert not _leftovers(proc.pid)
     assert not (out / ".robustgmm-lock").exists() or sig == signal.SIGKILL
+
+
+# ---------------------------------------------------------------------------
+# item 12: a very large grid needs --yes
+# ---------------------------------------------------------------------------
+def test_a_very_large_grid_needs_yes(tmp_path, capsys, monkeypatch):
+    from robustgmm import cli
+    model = write_model(tmp_path / "project", {"steps": [1, 2], "form": ["per-period",
+                                                                       "collapsed"]})
+    monkeypatch.setattr(cli, "LARGE_GRID", 3)  # 4 variants: "large" for this test
+    for extra in ([], ["--plan"]):
+        code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), *extra])
+        err = capsys.readouterr().err
+        assert code == cli.EXIT_INPUT, err
+        lines = err.strip().splitlines()
+        assert len(lines) == 1 and "makes 4 variants (more than 3)" in lines[0], err
+        assert "add --yes" in lines[0]
+        if not extra:
+            assert "about " in lines[0]  # the estimated time
+    assert not (tmp_path / "out").exists()
+    code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), "--plan", "--yes"])
+    assert code == 0
