@@ -16,6 +16,7 @@ from ..audit.verdicts import Firing
 from ..audit.verdicts import Rule as CatalogueRule
 from .inputs import AuditFolder
 from .referee import CAUTION, referee_paragraphs
+from .sections import base_model_table, short_provenance, split_variants_table
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
                       rule_figures_text, summarize, threshold_text, variants_table)
 
@@ -220,6 +221,9 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "counts": _counts(s),
         "headers": headers,
         "rows": rows,
+        "variant_tables": split_variants_table(headers, rows, len(audit.setting_columns),
+                                               len(audit.focus)),
+        "base_table": base_model_table(audit),
         "bounds_headers": bounds_headers,
         "bounds_rows": bounds_rows,
         "bounds_note": bounds_note,
@@ -230,6 +234,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "thresholds": "; ".join(f"{k} = {threshold_text(v)}"
                                 for k, v in audit.verdict.thresholds.items()),
         "provenance": provenance_items(dict(audit.manifest)),
+        "provenance_short": short_provenance(provenance_items(dict(audit.manifest))),
         "version": __version__,
         "fmt_int": fmt_int,
     }

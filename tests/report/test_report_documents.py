@@ -193,7 +193,10 @@ def test_html_parses_and_is_self_contained(built):
     for tag, attrs in parsed.tags:
         if "src" in attrs:
             assert attrs["src"].startswith("data:"), (tag, attrs["src"][:40])
-        assert "href" not in attrs, (tag, attrs)
+        # links only within the page (the variants table's row anchors), never out
+        assert attrs.get("href", "#").startswith("#"), (tag, attrs)
+        if "href" in attrs:
+            assert f'id="{attrs["href"][1:]}"' in html, (tag, attrs)
         assert tag not in ("link", "iframe", "object", "embed")
     imgs = [a for t, a in parsed.tags if t == "img"]
     assert len(imgs) == len(read_audit_folder(out).focus) + 3

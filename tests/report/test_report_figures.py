@@ -19,6 +19,7 @@ from matplotlib.image import AxesImage
 
 from report_fixture import AR, FRAGILE, ROBUST, TRUTH
 from robustgmm.report import figures
+import robustgmm.report.figures.common  # noqa: F401  (figures.common in the tests)
 from robustgmm.report.inputs import read_audit_folder
 
 matplotlib.use("Agg")
@@ -35,6 +36,13 @@ def _n_ok(audit, term):
 
 def _scatter_points(ax):
     return [c for c in ax.collections if isinstance(c, PathCollection)]
+
+
+def _marks(ax):
+    """The one scatter of variant marks (it carries the SVG tooltips)."""
+    found = [c for c in _scatter_points(ax) if (c.get_gid() or "").startswith("robustgmm-marks")]
+    assert len(found) == 1
+    return found[0]
 
 
 def test_no_pyplot_imported_by_report():
@@ -55,11 +63,15 @@ def test_specification_curve(audit):
     # confidence intervals: one vertical segment per estimated variant
     segs = [c for c in ax.collections if isinstance(c, LineCollection)]
     assert len(segs) == 1 and len(segs[0].get_segments()) == n
-    points, base = _scatter_points(ax)[:2]
+    points = _marks(ax)
+    base = _scatter_points(ax)[_scatter_points(ax).index(points) + 1]
     assert len(points.get_offsets()) == n
-    # the estimates are drawn sorted
+    # the estimates are drawn in lanes (acceptable first), sorted within each lane
     y = np.asarray(points.get_offsets())[:, 1]
-    assert np.all(np.diff(y) >= 0)
+    lanes = figures.common.lane_positions(audit.term_estimates(FRAGILE))[2]
+    assert np.all(np.diff(lanes) >= 0)
+    for lane in set(lanes.tolist()):
+        assert np.all(np.diff(y[lanes == lane]) >= 0)
     # the base model is ringed at its own estimate
     frame = audit.term_estimates(FRAGILE)
     base_est = frame.loc[frame["variant"] == audit.base_variant, "estimate"].iloc[0]
@@ -91,7 +103,15 @@ def test_hansen_drift(audit):
     ys = {line.get_ydata()[0] for line in ax.get_lines() if line.get_ydata()[0] == line.get_ydata()[1]}
     assert {0.05, 0.25} <= ys
     xs = {line.get_xdata()[0] for line in ax.get_lines() if line.get_xdata()[0] == line.get_xdata()[1]}
-    assert float(ok["units"].max()) in xs  # instruments = units
+    # instruments = units: a line when it is inside the x range, else a note
+    units = float(ok["units"].max())
+    left, right = ax.get_xlim()
+    if left <= units <= right:
+        assert units in xs
+    else:
+        assert units not in xs
+        assert any(f"instruments = units at {units:g}" in t.get_text() for t in ax.texts)
+        assert ok["instruments"].max() <= right and ok["instruments"].min() >= left
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     if "equations" in audit.setting_columns:
         assert any("difference" in t for t in legend) and any("system" in t for t in legend)
@@ -170,11 +190,13 @@ def test_slug_is_file_safe_and_unique_names(tmp_path, audit_folder):
 
 def test_variants_failing_a_test_are_drawn_hollow(audit_folder):
     audit = read_audit_folder(audit_folder("main"))
-    frame = audit.term_estimates(FRAGILE).sort_values(["estimate", "variant"])
+    frame = figures.common.lane_positions(audit.term_estimates(FRAGILE))[0]
     assert not frame["acceptable"].all() and frame["acceptable"].any()
     fig = figures.plot_specification_curve(Figure(), audit, FRAGILE)
-    points = _scatter_points(fig.axes[0])[0]
+    points = _marks(fig.axes[0])
     alpha = points.get_facecolors()[:, 3]
     np.testing.assert_array_equal(alpha > 0, frame["acceptable"].to_numpy())
     legend = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
-    assert "fails a specification test" in legend
+    n_bad = int((~frame["acceptable"]).sum())
+    assert f"fails a specification test ({n_bad})" in legend
+    assert f"acceptable ({len(frame) - n_bad})" in legend

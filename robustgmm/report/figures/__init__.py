@@ -34,17 +34,18 @@ One module per figure (:mod:`.spec_curve`, :mod:`.hansen_drift`, :mod:`.ar_band`
 from __future__ import annotations
 
 from ..labels import SETTING_NAMES, band_arrays, mathtext_safe, setting_name, slug, value_text
-from .ar_band import plot_ar_band
+from .ar_band import persistence_frame, plot_ar_band, plot_ar_sum
 from .captions import CAPTIONS, caption
 from .common import MAX_TICK_LABELS
 from .diagnostics import (FAIL, NOT_ESTIMATED, PASS, STATE_NAMES, WARN, diagnostics_table,
                           plot_diagnostics_matrix)
 from .hansen_drift import plot_hansen_drift
-from .render import FigureFile, render_figures
+from .render import FigureFile, add_svg_tooltips, draw_figures, render_figures
 from .spec_curve import plot_specification_curve
 
-__all__ = ["plot_specification_curve", "plot_hansen_drift", "plot_ar_band",
-           "plot_diagnostics_matrix", "diagnostics_table", "render_figures", "FigureFile",
+__all__ = ["plot_specification_curve", "plot_hansen_drift", "plot_ar_band", "plot_ar_sum", "persistence_frame",
+           "plot_diagnostics_matrix", "diagnostics_table", "render_figures", "draw_figures",
+           "add_svg_tooltips", "FigureFile",
            "caption", "CAPTIONS", "MAX_TICK_LABELS", "PASS", "WARN", "FAIL", "NOT_ESTIMATED",
            "STATE_NAMES", "SETTING_NAMES", "band_arrays", "mathtext_safe", "setting_name",
            "slug", "value_text"]
