@@ -153,9 +153,11 @@ def draw_lanes(ax, x: np.ndarray, codes: np.ndarray) -> list[tuple[int, int]]:
         if k:
             ax.axvspan(lo, hi, color=LIGHT, alpha=0.5, linewidth=0, zorder=0)
         if len(set(codes.tolist())) > 1:
-            ax.text((lo + hi) / 2, 1.0, f"{name}: {where.size}", transform=ax.get_xaxis_transform(),
-                    ha="center", va="bottom", fontsize=7, color=BLACK if k == 0 else GREY,
-                    clip_on=False)
+            # one heading per lane, each a step higher, so narrow lanes never overlap
+            ax.annotate(f"{name}: {where.size}", xy=((lo + hi) / 2, 1.0),
+                        xycoords=ax.get_xaxis_transform(), xytext=(0, 2 + 9 * len(out)),
+                        textcoords="offset points", ha="center", va="bottom", fontsize=7,
+                        color=BLACK if k == 0 else GREY, annotation_clip=False)
         out.append((k, int(where.size)))
     return out
 

@@ -66,6 +66,9 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
                        linewidths=np.where(judged, 0.4, 0.7), zorder=3)
     attach_tooltips(ax, marks, variant_tooltips(audit, frame))
     lanes = draw_lanes(ax, x, codes)
+    if len(lanes) > 1:  # room above the axes for the stacked lane headings
+        ax.set_title(mathtext_safe(f"Specification curve: {term}"),
+                     fontsize=10, loc="left", pad=6 + 9 * len(lanes))
     if limits[0] <= 0.0 <= limits[1]:
         ax.axhline(0.0, color=BLACK, linewidth=0.7)
     handles = [
