@@ -222,11 +222,17 @@ class Spec:
     alpha: float = 0.05
     vary: Vary = field(default_factory=Vary)
     thresholds: Thresholds = field(default_factory=Thresholds)
+    #: Display labels of terms for every document (``[labels] "x[t]" = "Leverage"``)
+    #: and significance stars in table.tex (``[report] stars``); display only, so not
+    #: part of :func:`canonical_settings`.
+    labels: tuple[tuple[str, str], ...] = ()
+    stars: bool = False
     source: str = "<dict>"
 
     def __post_init__(self):
         from .modelfile import checks as c
         _validate(self, {
+            "labels": c.v_labels, "stars": c.v_bool,
             "unit": c.v_name, "period": c.v_name, "outcome": c.v_name,
             "data_file": _optional(lambda v: Path(v) if isinstance(v, str) else
                                    _instance(Path, "a path or None")(v)),

@@ -359,8 +359,12 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     bar = None
     if progress:
         from tqdm import tqdm
+        # A terminal that reports a size of 0 x 0 (a pseudo-terminal without a size)
+        # makes tqdm hide its bar (no row left on the screen): fall back to 80 x 24.
+        size = shutil.get_terminal_size((80, 24))
         bar = tqdm(total=len(todo), initial=len(outcomes), file=sys.stderr,
-                   desc="variants", unit="variant", leave=False)
+                   desc="variants", unit="variant", leave=False,
+                   ncols=min(size.columns or 80, 100), nrows=size.lines or 24)
     estimated = 0
 
     def record(results):

@@ -350,7 +350,13 @@ def fit(spec: Spec, panel: Panel, *, chunk_units: int | None = None,
     Raises :class:`InputError` for settings invalid by construction
     (:func:`invalid_reason`), :class:`EstimationError` (and its subclass
     :class:`UnderidentifiedError`) when the model cannot be estimated on the data.
+    ``panel`` may also be a long DataFrame already in memory (one row per unit and
+    period): it is checked and laid out as a data file would be
+    (:func:`robustgmm.data.build_panel`).
     """
+    if not isinstance(panel, Panel) and hasattr(panel, "columns") and hasattr(panel, "attrs"):
+        from ..data import build_panel  # a frame in memory, validated like a data file
+        panel = build_panel(panel, spec)
     res = _fit_specs([spec], panel, chunk_units, memory_mb)[0]
     if isinstance(res, BaseException):
         raise res

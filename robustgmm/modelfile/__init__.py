@@ -140,4 +140,8 @@ def spec_to_dict(spec: Spec) -> dict:
         vary["sample"] = [_sample_to_dict(s) for s in v.samples]
     if vary:
         d["audit"]["vary"] = vary
+    if spec.labels:
+        d["labels"] = dict(spec.labels)
+    if spec.stars:
+        d["report"] = {"stars": True}
     return d

@@ -101,6 +101,25 @@ def v_name(v):
     return v
 
 
+def v_labels(v):
+    """``[labels]``: term label -> display text (both non-empty one-line texts);
+    returned as a tuple of pairs in file order. A dict or such pairs are accepted."""
+    items = list(v.items()) if isinstance(v, dict) else v
+    if not isinstance(items, (list, tuple)) or not all(
+            isinstance(p, (list, tuple)) and len(p) == 2 for p in items):
+        raise Bad('must be a table of term = "label" pairs, e.g. "x[t]" = "Leverage"')
+    out = []
+    for term, text in items:
+        if not isinstance(term, str) or not term.strip():
+            raise Bad("has an empty term name")
+        if not isinstance(text, str) or not text.strip():
+            raise Bad(f"{term!r} must be a non-empty text in quotes")
+        if not all(ch.isprintable() for ch in text):
+            raise Bad(f"{term!r} holds a control character (e.g. a line break)")
+        out.append((term, text))
+    return tuple(out)
+
+
 def v_bool(v):
     if not isinstance(v, bool):
         raise Bad("must be true or false")

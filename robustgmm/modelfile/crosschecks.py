@@ -25,6 +25,21 @@ def cross_checks(spec: Spec, r: Reader) -> None:
     _lag_window(spec, r)
     _focus(spec, r)
     _vary(spec, r)
+    _labels(spec, r)
+
+
+def _labels(spec: Spec, r: Reader) -> None:
+    """Every ``[labels]`` key must be a term of the model (a period dummy counts)."""
+    if not spec.labels or not r.ok(("model",), ("labels",)):
+        return
+    terms = [label for _, _, label in spec.regressor_terms()] + ["const"]
+    for term, _ in spec.labels:
+        if term in terms or term.startswith("period["):
+            continue
+        hint = closest(term, terms)
+        r.add(f"[labels] {key_text(term)}", "is not a term of the model"
+              + (f"; did you mean {key_text(hint)}?" if hint else
+                 f" (terms: {', '.join(terms)})"), path=("labels", term))
 
 
 def _columns(spec: Spec, r: Reader) -> None:

@@ -24,7 +24,8 @@ from ..options import DATA_EXTENSIONS
 from ..spec import Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
                      v_equations, v_errors, v_first_lag, v_form, v_lags, v_last_lag, v_name,
-                     v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps, v_transform)
+                     v_labels, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
+                     v_transform)
 
 Path_ = tuple  # a key path: ("method", "steps"), ("model", "regressors", 2, "role"), ...
 
@@ -76,6 +77,9 @@ SCHEMA: dict[Path_, Key | object] = {
     ("audit", "alpha"): Key("alpha", v_prob),
     ("audit", "vary"): TABLE,
     ("audit", "thresholds"): TABLE,
+    # [labels]: free keys, one per term of the model ("x[t]" = "Leverage")
+    ("labels", "*"): TABLE,
+    ("report", "stars"): Key("stars", v_bool),
 }
 
 #: ``[[model.regressors]]`` keys → :class:`~robustgmm.spec.Regressor` fields.
@@ -223,6 +227,14 @@ class Reader:
                 if "sample" in d:
                     table = self.table(d, "sample", "[sample]", ("sample",))
                     fields["sample"] = self.sample(table, "[sample]", "sample", ("sample",))
+                continue
+            if section == "labels":
+                if "labels" in d:
+                    table = self.table(d, "labels", "[labels]", ("labels",))
+                    try:
+                        fields["labels"] = v_labels(table)
+                    except Bad as bad:
+                        self.add("[labels]", str(bad), path=("labels",))
                 continue
             table = self.table(d, section, f"[{section}]", (section,))
             self.unknown_keys(table, SECTIONS[section], section, f"[{section}]")

@@ -25,6 +25,7 @@ from .latex import render_latex
 from .markdown import render_markdown
 from .referee import referee_paragraph, referee_text
 from .summary import summarize
+from .wordtable import render_word_table
 
 __all__ = ["build_report", "read_audit_folder", "AuditFolder", "InputError",
            "referee_paragraph", "summarize"]
@@ -34,7 +35,8 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     """Write every report document into ``out_dir`` from the audit files there.
 
     Returns the paths written: figures (``figures/*.png|svg|pdf``), ``report.html``,
-    ``report.md``, ``table.tex``, ``referee.txt``. Raises
+    ``report.md``, ``table.tex``, ``table.html`` (the same table for Word and
+    LibreOffice), ``referee.txt``. Raises
     :class:`~robustgmm.errors.InputError` naming each missing file or column when
     ``out_dir`` is not an audit output folder. Every file is written atomically."""
     out = Path(out_dir)
@@ -46,5 +48,6 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     written.append(atomic_write_text(out / "report.html", render_html(context)))
     written.append(atomic_write_text(out / "report.md", render_markdown(context)))
     written.append(atomic_write_text(out / "table.tex", render_latex(audit, summary)))
+    written.append(atomic_write_text(out / "table.html", render_word_table(audit, summary)))
     written.append(atomic_write_text(out / "referee.txt", referee_text(audit, summary)))
     return written

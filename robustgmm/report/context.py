@@ -16,6 +16,7 @@ from ..audit.verdicts import Firing
 from ..audit.verdicts import Rule as CatalogueRule
 from .inputs import AuditFolder
 from .referee import CAUTION, referee_paragraphs
+from .labels import term_labels
 from .sections import base_model_table, short_provenance, split_variants_table
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
                       rule_figures_text, summarize, threshold_text, variants_table)
@@ -224,6 +225,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "variant_tables": split_variants_table(headers, rows, len(audit.setting_columns),
                                                len(audit.focus)),
         "base_table": base_model_table(audit),
+        "term_names": term_labels(audit),
         "bounds_headers": bounds_headers,
         "bounds_rows": bounds_rows,
         "bounds_note": bounds_note,

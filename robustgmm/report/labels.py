@@ -86,3 +86,23 @@ def band_arrays(audit: AuditFolder, term: str, frame: pd.DataFrame):
     fe, ols = audit.band(term)
     return np.full(len(frame), fe), np.full(len(frame), ols)
 
+
+
+def term_labels(audit: AuditFolder) -> dict[str, str]:
+    """Display labels of terms from the model file's ``[labels]`` table (kept in
+    manifest.json under ``spec``); a term without one is shown as its own label."""
+    spec = audit.manifest.get("spec") if isinstance(audit.manifest, dict) else None
+    labels = spec.get("labels") if isinstance(spec, dict) else None
+    return {str(k): str(v) for k, v in labels.items()} if isinstance(labels, dict) else {}
+
+
+def term_text(audit: AuditFolder, term: str) -> str:
+    """How every document names ``term``: its ``[labels]`` text, else the term."""
+    return term_labels(audit).get(term, term)
+
+
+def report_option(audit: AuditFolder, key: str, default=None):
+    """A ``[report]`` option of the model file (kept in manifest.json under ``spec``)."""
+    spec = audit.manifest.get("spec") if isinstance(audit.manifest, dict) else None
+    report = spec.get("report") if isinstance(spec, dict) else None
+    return report.get(key, default) if isinstance(report, dict) else default

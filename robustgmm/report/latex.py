@@ -7,7 +7,9 @@ focus term's estimate with its standard error underneath, then diagnostics
 (instruments, units, observations, Hansen, AR(1) and AR(2) p-values).
 
 The file is a ``table`` environment to ``\\input`` into a document that loads
-``booktabs``; all user text is escaped for LaTeX.
+``booktabs`` and ``tabularx``; all user text is escaped for LaTeX. Terms are named by
+the model file's ``[labels]`` when it has them; ``[report] stars = true`` adds
+significance stars.
 """
 from __future__ import annotations
 
@@ -15,8 +17,9 @@ import re
 
 import pandas as pd
 
-from ..options import LABELS, Equations, Steps, Transform
-from .labels import value_text
+from ..options import LABELS, CovarianceKind, Equations, Steps, Transform
+from ..options import label as option_label
+from .labels import report_option, term_labels, value_text
 from .inputs import AuditFolder
 from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
 
@@ -31,6 +34,31 @@ _LATEX_RE = re.compile("|".join(re.escape(k) for k in _LATEX_SPECIAL))
 def tex(text) -> str:
     """Escape LaTeX's special characters in user text."""
     return _LATEX_RE.sub(lambda m: _LATEX_SPECIAL[m.group()], str(text))
+
+
+def tex_breakable(text, long: int = 16) -> str:
+    """``tex(text)`` that may break inside a long word.
+
+    A term such as ``staff_hours_per_worker[t-1]`` cannot hyphenate, so a token
+    longer than ``long`` characters (about what the column holds) that is not a plain
+    word (those hyphenate by themselves) may break
+    after ``_``, ``.`` or ``-`` and before ``[`` or ``(``; a piece still longer than
+    that may break between any two characters. Short tokens are left as they are, so
+    an ordinary table stays clean to edit."""
+    def piece(chunk: str) -> str:
+        if len(chunk) <= long:
+            return tex(chunk)
+        return "\\allowbreak{}".join(tex(ch) for ch in chunk)
+
+    out = []
+    for token in re.split(r"(\s+)", str(text)):
+        # plain words hyphenate by themselves; only identifiers need break points
+        if len(token) <= long or token.isspace() or token.rstrip(".,;:").isalpha():
+            out.append(tex(token))
+            continue
+        parts = [p for p in re.split(r"(?<=[_.\-])|(?=[\[(])", token) if p]
+        out.append("\\allowbreak{}".join(piece(p) for p in parts))
+    return "".join(out)
 
 
 def num(text: str) -> str:
@@ -97,22 +125,87 @@ def one_at_a_time(audit: AuditFolder) -> list[tuple[str, tuple[str, ...], tuple]
     return out
 
 
-def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
-                 per_panel: int = 6) -> str:
-    s = summary or summarize(audit)
+#: Significance stars, when ``[report] stars = true``: the usual economics
+#: convention (common practice): * p < 0.10, ** p < 0.05, *** p < 0.01.
+STARS = ((0.01, "***"), (0.05, "**"), (0.10, "*"))
+
+#: What each test row reports, for the table note.
+TEST_NOTE = ("Hansen $p$: the $J$ test of the over-identifying restrictions with the "
+             "robust weight (Hansen 1982); Sargan $p$: the same restrictions with the "
+             "homoskedastic weight (Sargan 1958); AR(1), AR(2) $p$: tests for first- and "
+             "second-order serial correlation of the differenced errors (Arellano \& Bond "
+             "1991), of which AR(2) must not reject")
+DIFF_NOTE = ("; difference-in-Hansen $p$: validity of the level-equation instruments of "
+             "system GMM (Blundell \& Bond 1998)")
+
+
+def stars(p) -> str:
+    try:
+        p = float(p)
+    except (TypeError, ValueError):
+        return ""
+    for level, mark in STARS:
+        if p < level:
+            return mark
+    return ""
+
+
+def fails(row) -> bool:
+    """True when the audit marks this estimated variant as failing its own tests
+    (read from variants.csv: ``evidence`` when written, else ``acceptable``)."""
+    if "evidence" in row.index and isinstance(row["evidence"], str) and row["evidence"]:
+        return row["evidence"].strip().lower() not in ("acceptable",)
+    if "acceptable" in row.index:
+        return not bool(row["acceptable"])
+    return False
+
+
+def table_panels(audit: AuditFolder, per_panel: int = 5):
+    """The columns of the table in panels: each panel starts with the base model and
+    holds at most ``per_panel`` columns; returns (panels, what each departure
+    changes). Shared by table.tex and the Word table."""
     columns = one_at_a_time(audit)
     base_col, departures = columns[0], columns[1:]
     changes = max((len(cols) for _, cols, _ in departures), default=1)
     change_text = "one setting" if changes == 1 else \
         f"{changes} settings (no estimated variant changes only one)"
-    # balanced panels: 6 departures with room for 5 per panel give 3 + 3, not 5 + 1
+    # balanced panels: 6 departures with room for 4 per panel give 3 + 3, not 4 + 2
     room = max(per_panel - 1, 1)
     n_panels = max(1, -(-len(departures) // room))
     step = max(1, -(-len(departures) // n_panels))
     panels = [[base_col] + departures[i:i + step] for i in range(0, len(departures), step)] \
         or [[base_col]]
+    return panels, change_text
+
+
+def se_kinds(audit: AuditFolder, variants) -> list[str]:
+    """The standard-error labels of ``variants`` (each once, in order)."""
+    vrow = audit.variants.set_index("variant")
+    kinds = []
+    for vid in variants:
+        kind = str(vrow.loc[vid, "std_error_kind"]) if "std_error_kind" in vrow.columns else ""
+        try:
+            kind = option_label(CovarianceKind, kind)
+        except (ValueError, KeyError):
+            continue
+        if kind not in kinds:
+            kinds.append(kind)
+    return kinds
+
+
+def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
+                 per_panel: int = 5) -> str:
+    """The table as LaTeX: one ``tabularx`` per panel, each exactly ``\textwidth``
+    wide (so the panels line up and nothing overflows), terms named by their
+    ``[labels]`` text, optional significance stars, and a note that states the
+    standard errors, the test rows and the columns that fail their own tests."""
+    s = summary or summarize(audit)
+    panels, change_text = table_panels(audit, per_panel)
+    width = max(len(p) for p in panels)  # every panel gets the same columns
     est = audit.estimates.set_index(["variant", "term"])
     vrow = audit.variants.set_index("variant")
+    use_stars = bool(report_option(audit, "stars", False))
+    names = term_labels(audit)
 
     def cell_est(vid, term):
         if (vid, term) not in est.index:
@@ -120,60 +213,96 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
         e = est.loc[(vid, term)]
         if isinstance(e, pd.DataFrame):
             e = e.iloc[0]
-        return num(fmt(e["estimate"])), "(" + num(fmt(e["std_error"])) + ")"
+        mark = stars(e["p_value"]) if use_stars else ""
+        value = num(fmt(e["estimate"])) + (f"$^{{{mark}}}$" if mark else "")
+        return value, "(" + num(fmt(e["std_error"])) + ")"
 
+    def row_name(term):
+        return (tex_breakable(names[term]) if term in names
+                else f"\\texttt{{{tex_breakable(term, long=14)}}}")
+
+    has_diff = "diff_hansen_level_p" in vrow.columns
     diag_rows = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
                  ("Observations", "observations", fmt_int), ("Hansen $p$", "hansen_p", fmt_p),
+                 ("Sargan $p$", "sargan_p", fmt_p),
                  ("AR(1) $p$", "ar1_p", fmt_p), ("AR(2) $p$", "ar2_p", fmt_p)]
+    if has_diff:
+        diag_rows.append(("Diff.-in-Hansen $p$", "diff_hansen_level_p", fmt_p))
     lines = [
         "% robustgmm: focus terms across the base model and one-setting departures.",
-        "% Requires \\usepackage{booktabs} in the preamble.",
+        "% Requires \\usepackage{booktabs} and \\usepackage{tabularx} in the preamble.",
         "\\begin{table}[htbp]",
         "\\centering",
         "\\small",
+        "\\setlength{\\tabcolsep}{3pt}",
         "\\caption{Robustness of the estimates to one change at a time}",
         "\\label{tab:robustgmm}",
     ]
+    spec_cols = ("{>{\\raggedright\\arraybackslash}p{0.25\\textwidth}"
+                 + "*{" + str(width) + "}{>{\\centering\\arraybackslash}X}}")
     number = 1
+    failing = []
     for p, panel in enumerate(panels):
         k = len(panel)
+        pad = [""] * (width - k)
         if p:
             lines.append("\\medskip")
             lines.append("")
-        lines.append("\\begin{tabular}{l" + "c" * k + "}")
+        lines.append("\\begin{tabularx}{\\textwidth}" + spec_cols)
         lines.append("\\toprule")
         # column numbers: the base is (1) in every panel; departures count on
         nums = ["(1)"] + [f"({number + 1 + i})" for i in range(k - 1)]
         number += k - 1
-        lines.append(" & " + " & ".join(nums) + " \\\\")
-        heads = ["base"] + [tex(", ".join(departure_label(c, x) for c, x in zip(cols, values)))
+        marks = []
+        for vid, _, _ in panel:
+            bad = vid in vrow.index and fails(vrow.loc[vid])
+            marks.append("$^{\\dagger}$" if bad else "")
+            if bad and vid not in failing:
+                failing.append(vid)
+        lines.append(" & " + " & ".join(n + m for n, m in zip(nums, marks) ) + "".join(
+            " & " for _ in pad) + " \\\\")
+        # a number column holds about 9 characters of a header
+        heads = ["base"] + [tex_breakable(", ".join(departure_label(c, x)
+                                                    for c, x in zip(cols, values)), long=9)
                             for _, cols, values in panel[1:]]
-        lines.append(" & " + " & ".join(heads) + " \\\\")
+        lines.append(" & " + " & ".join(heads + pad) + " \\\\")
         lines.append("\\midrule")
         for term in audit.focus:
             pairs = [cell_est(vid, term) for vid, _, _ in panel]
-            lines.append(f"\\texttt{{{tex(term)}}} & " + " & ".join(a for a, _ in pairs) + " \\\\")
-            lines.append(" & " + " & ".join(b for _, b in pairs) + " \\\\")
+            lines.append(f"{row_name(term)} & " + " & ".join([a for a, _ in pairs] + pad)
+                         + " \\\\")
+            lines.append(" & " + " & ".join([b for _, b in pairs] + pad) + " \\\\")
         lines.append("\\midrule")
         for label, col, f in diag_rows:
             cells = [num(f(vrow.loc[vid, col])) for vid, _, _ in panel]
-            lines.append(f"{label} & " + " & ".join(cells) + " \\\\")
+            lines.append(f"{label} & " + " & ".join(cells + pad) + " \\\\")
         lines.append("\\bottomrule")
-        lines.append("\\end{tabular}")
+        lines.append("\\end{tabularx}")
     judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
               f"their specification tests" if s.has_acceptable
               else f"across all {s.n_ok} estimated variants")
-    verdicts = "; ".join(f"\\texttt{{{tex(t.term)}}} {tex(t.verdict)}" for t in s.terms)
+    verdicts = "; ".join(f"{row_name(t.term)} {tex(t.verdict)}" for t in s.terms)
     failed = [row["variant"] for _, row in audit.variants.iterrows()
               if row["status"] != "ok"]
-    note = (f"Standard errors in parentheses. Column (1) is the base model (variant "
+    shown = [vid for panel in panels for vid, _, _ in panel]
+    kinds = se_kinds(audit, shown)
+    se_text = (f"Standard errors in parentheses ({tex(', '.join(kinds))})." if kinds
+               else "Standard errors in parentheses.")
+    note = (f"{se_text} Column (1) is the base model (variant "
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
-            f"Verdicts ({judged}): {verdicts}. "
-            f"Statistical robustness does not establish instrument validity, which rests "
-            f"on economic reasoning.")
+            f"{TEST_NOTE}{DIFF_NOTE if has_diff else ''}. ")
+    if use_stars:
+        note += "$^{*}$ $p<0.10$, $^{**}$ $p<0.05$, $^{***}$ $p<0.01$. "
+    if failing:
+        note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
+                 "(Hansen, AR(2) or difference-in-Hansen at the audit's level) and does "
+                 "not count toward the verdicts. ")
+    note += (f"Verdicts ({judged}): {verdicts}. "
+             f"Statistical robustness does not establish instrument validity, which rests "
+             f"on economic reasoning.")
     if failed:
         note += f" {len(failed)} variant{'s' if len(failed) != 1 else ''} could not be estimated."
     lines += ["", "\\par\\smallskip",
-              "\\begin{minipage}{0.95\\linewidth}\\footnotesize", note, "\\end{minipage}",
+              "\\begin{minipage}{\\textwidth}\\footnotesize", note, "\\end{minipage}",
               "\\end{table}", ""]
     return "\n".join(lines)

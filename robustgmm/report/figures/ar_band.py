@@ -8,7 +8,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
 from ..inputs import AuditFolder
-from ..labels import band_arrays, mathtext_safe
+from ..labels import band_arrays, mathtext_safe, term_text
 from .common import (BLACK, BLUE, MAX_TICK_LABELS, ORANGE, SKY, VERMILLION, attach_tooltips,
                      clipped_handle, critical, draw_intervals, mark_base_and_truth, no_data,
                      sizes, sorted_term, style, value_limits, variant_ticks, variant_tooltips)
@@ -43,7 +43,9 @@ def plot_ar_band(ax, audit: AuditFolder, term: str, *, max_tick_labels: int = MA
     biased down (Nickell 1981), and the pooled OLS estimate, biased up; a credible
     estimate lies between them (Bond, Hoeffler & Temple 2001; Bond 2002)."""
     style(ax)
-    ax.set_title(mathtext_safe(f"Autoregressive coefficient {term} against the within-OLS band"),
+    named = term_text(audit, term)
+    named = term if named == term else f"{named} ({term})"
+    ax.set_title(mathtext_safe(f"Autoregressive coefficient {named} against the within-OLS band"),
                  fontsize=10, loc="left")
     frame = sorted_term(audit, term)
     n = len(frame)

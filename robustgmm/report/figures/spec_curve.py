@@ -7,11 +7,17 @@ from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 
 from ..inputs import AuditFolder
-from ..labels import mathtext_safe, setting_name, value_text
+from ..labels import mathtext_safe, setting_name, term_text, value_text
 from .common import (BLACK, BLUE, GREY, LANES, LIGHT, MAX_TICK_LABELS, VERMILLION,
                      attach_tooltips, choice_rows, clipped_handle, critical, draw_intervals,
                      draw_lanes, lane_positions, mark_base_and_truth, no_data, same, sizes,
                      style, value_limits, variant_ticks, variant_tooltips)
+
+
+def _named(audit, term: str) -> str:
+    """``Leverage (x[t])`` when the model file labels the term, else ``x[t]``."""
+    text = term_text(audit, term)
+    return term if text == term else f"{text} ({term})"
 
 
 def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
@@ -38,7 +44,7 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
     ax_choice = fig.add_subplot(grid[1], sharex=ax)
     style(ax)
     style(ax_choice)
-    ax.set_title(mathtext_safe(f"Specification curve: {term}"), fontsize=10, loc="left", pad=16)
+    ax.set_title(mathtext_safe(f"Specification curve: {_named(audit, term)}"), fontsize=10, loc="left", pad=16)
     if n == 0:
         no_data(ax, f"no estimated variant has a value for {term}")
         no_data(ax_choice, "")
@@ -67,7 +73,7 @@ def plot_specification_curve(fig: Figure, audit: AuditFolder, term: str, *,
     attach_tooltips(ax, marks, variant_tooltips(audit, frame))
     lanes = draw_lanes(ax, x, codes)
     if len(lanes) > 1:  # room above the axes for the stacked lane headings
-        ax.set_title(mathtext_safe(f"Specification curve: {term}"),
+        ax.set_title(mathtext_safe(f"Specification curve: {_named(audit, term)}"),
                      fontsize=10, loc="left", pad=6 + 9 * len(lanes))
     if limits[0] <= 0.0 <= limits[1]:
         ax.axhline(0.0, color=BLACK, linewidth=0.7)

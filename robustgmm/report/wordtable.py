@@ -1,0 +1,123 @@
+"""table.html: the table of table.tex as a plain HTML table that Word and LibreOffice
+open (File > Open, or copy and paste) as an editable table.
+
+Why HTML and not .docx: a .docx writer (python-docx) would add a compiled XML
+library as a dependency for one file, while both word processors read a plain HTML
+table directly. So this file holds nothing they cannot read: no script, no classes
+or style sheet, only inline styles they understand (Times New Roman, borders above
+and below the header and the body, centred number columns), one ``<table>`` per
+panel, and the same numbers, labels, stars, marks and note as table.tex (the panels
+and marks come from :mod:`.latex`, the numbers from :mod:`.summary`).
+"""
+from __future__ import annotations
+
+from html import escape
+
+import pandas as pd
+
+from .inputs import AuditFolder
+from .labels import report_option, term_labels
+from .latex import departure_label, fails, se_kinds, stars, table_panels
+from .summary import AuditSummary, fmt, fmt_int, fmt_p, summarize
+
+FONT = "font-family:'Times New Roman',serif;font-size:10pt"
+RULE = "border-top:1px solid #000"
+THICK = "border-top:1.5px solid #000"
+CELL = "padding:1pt 6pt"
+
+
+def _td(text: str, *, left=False, style="") -> str:
+    align = "left" if left else "center"
+    return f'<td style="{CELL};text-align:{align};{style}">{text}</td>'
+
+
+def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *,
+                      per_panel: int = 5) -> str:
+    s = summary or summarize(audit)
+    panels, change_text = table_panels(audit, per_panel)
+    width = max(len(p) for p in panels)
+    est = audit.estimates.set_index(["variant", "term"])
+    vrow = audit.variants.set_index("variant")
+    names = term_labels(audit)
+    use_stars = bool(report_option(audit, "stars", False))
+    has_diff = "diff_hansen_level_p" in vrow.columns
+    diag = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
+            ("Observations", "observations", fmt_int), ("Hansen p", "hansen_p", fmt_p),
+            ("Sargan p", "sargan_p", fmt_p), ("AR(1) p", "ar1_p", fmt_p),
+            ("AR(2) p", "ar2_p", fmt_p)]
+    if has_diff:
+        diag.append(("Diff.-in-Hansen p", "diff_hansen_level_p", fmt_p))
+
+    def cells(vid, term):
+        if (vid, term) not in est.index:
+            return "", ""
+        e = est.loc[(vid, term)]
+        if isinstance(e, pd.DataFrame):
+            e = e.iloc[0]
+        mark = stars(e["p_value"]) if use_stars else ""
+        return (escape(fmt(e["estimate"])) + (f"<sup>{mark}</sup>" if mark else ""),
+                "(" + escape(fmt(e["std_error"])) + ")")
+
+    out = ['<!DOCTYPE html>', '<html lang="en"><head><meta charset="utf-8">',
+           '<title>Robustness of the estimates to one change at a time</title></head>',
+           f'<body style="{FONT}">',
+           '<p style="font-weight:bold">Robustness of the estimates to one change at a time</p>']
+    number, failing = 1, []
+    for panel in panels:
+        pad = [""] * (width - len(panel))
+        nums = ["(1)"] + [f"({number + 1 + i})" for i in range(len(panel) - 1)]
+        number += len(panel) - 1
+        for vid, _, _ in panel:
+            if vid in vrow.index and fails(vrow.loc[vid]) and vid not in failing:
+                failing.append(vid)
+        marks = ["<sup>&#8224;</sup>" if vid in failing else "" for vid, _, _ in panel]
+        heads = ["base"] + [escape(", ".join(departure_label(c, x) for c, x in zip(cols, vals)))
+                            for _, cols, vals in panel[1:]]
+        out.append(f'<table style="border-collapse:collapse;{FONT};margin-bottom:8pt">')
+        out.append("<tr>" + _td("", left=True, style=THICK) + "".join(
+            _td(n + m, style=THICK) for n, m in zip(nums + pad, marks + pad)) + "</tr>")
+        out.append("<tr>" + _td("", left=True) + "".join(_td(h) for h in heads + pad) + "</tr>")
+        first = True
+        for term in audit.focus:
+            pair = [cells(vid, term) for vid, _, _ in panel]
+            style = RULE if first else ""
+            first = False
+            out.append("<tr>" + _td(escape(names.get(term, term)), left=True, style=style)
+                       + "".join(_td(a, style=style) for a, _ in pair)
+                       + "".join(_td("", style=style) for _ in pad) + "</tr>")
+            out.append("<tr>" + _td("", left=True) + "".join(_td(b) for _, b in pair)
+                       + "".join(_td("") for _ in pad) + "</tr>")
+        for k, (label, col, f) in enumerate(diag):
+            style = RULE if k == 0 else ""
+            out.append("<tr>" + _td(escape(label), left=True, style=style) + "".join(
+                _td(escape(f(vrow.loc[vid, col])), style=style) for vid, _, _ in panel)
+                + "".join(_td("", style=style) for _ in pad) + "</tr>")
+        out.append(f'<tr><td colspan="{width + 1}" style="{THICK}"></td></tr>')
+        out.append("</table>")
+    kinds = se_kinds(audit, [vid for panel in panels for vid, _, _ in panel])
+    note = ["Standard errors in parentheses" + (f" ({', '.join(kinds)})." if kinds else "."),
+            f"Column (1) is the base model (variant {audit.base_variant}); each other column "
+            f"changes {change_text}.",
+            "Hansen p: the J test of the over-identifying restrictions with the robust weight "
+            "(Hansen 1982); Sargan p: the same restrictions with the homoskedastic weight "
+            "(Sargan 1958); AR(1), AR(2) p: tests for first- and second-order serial "
+            "correlation of the differenced errors (Arellano & Bond 1991), of which AR(2) "
+            "must not reject" + ("; difference-in-Hansen p: validity of the level-equation "
+                                 "instruments of system GMM (Blundell & Bond 1998)."
+                                 if has_diff else ".")]
+    if use_stars:
+        note.append("* p < 0.10, ** p < 0.05, *** p < 0.01.")
+    if failing:
+        note.append("\u2020 The variant fails one of its own specification tests (Hansen, "
+                    "AR(2) or difference-in-Hansen at the audit's level) and does not count "
+                    "toward the verdicts.")
+    judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
+              f"their specification tests" if s.has_acceptable
+              else f"across all {s.n_ok} estimated variants")
+    note.append(f"Verdicts ({judged}): " + "; ".join(
+        f"{names.get(t.term, t.term)} {t.verdict}" for t in s.terms) + ".")
+    note.append("Statistical robustness does not establish instrument validity, which rests "
+                "on economic reasoning.")
+    out.append(f'<p style="{FONT};font-size:9pt">' + escape(" ".join(note)) + "</p>")
+    out += ["</body></html>", ""]
+    return "\n".join(out)
