@@ -500,9 +500,9 @@ def cmd_audit(args) -> int:
         check_name_length(args.out, "--out")
     spec = read_model(check_model_path(args.model))
     check_grid_size(spec, args)
-    if spec.vary.is_empty():
-        print(nothing_varied_note(spec), file=sys.stderr, flush=True)
     if args.plan:
+        if spec.vary.is_empty():
+            print(nothing_varied_note(spec), file=sys.stderr, flush=True)
         import pandas as pd
         frame = _plan_frame(spec)
         with pd.option_context("display.max_rows", None, "display.max_columns", None,
@@ -541,21 +541,21 @@ def cmd_audit(args) -> int:
     if run.get("lost"):
         print(f"robustgmm: note: {run['lost']} variant(s) lost their worker process twice "
               "and are recorded as failed; a rerun tries them again", file=sys.stderr)
-    print(run_line(run), file=sys.stderr, flush=True)
     fragile = _fragile_terms(result.verdict)
     _out(_audit_summary(result, out, fragile))
+    _out(run_line(run))
     if args.fail_on_fragile and fragile:
         return EXIT_FRAGILE
     return EXIT_OK
 
 
 def run_line(run: dict) -> str:
-    """The one line that closes every audit on stderr, with or without a bar:
-    '192 variants in 28.4 s: 180 estimated, 12 from the cache, 0 failed'."""
+    """The one line that closes every audit (on stdout, with or without a bar on
+    stderr): '192 variants in 28.4 s: 180 estimated, 12 from the cache, 0 failed'."""
     n = run.get("variants", 0)
     wall = run.get("wall_seconds")
     took = f" in {wall:.1f} s" if isinstance(wall, (int, float)) else ""
-    return (f"robustgmm: {n} variant{'s' if n != 1 else ''}{took}: "
+    return (f"{n} variant{'s' if n != 1 else ''}{took}: "
             f"{run.get('computed', 0)} estimated, {run.get('cached', 0)} from the cache, "
             f"{run.get('failed', 0)} failed")
 

@@ -130,13 +130,13 @@ def one_at_a_time(audit: AuditFolder) -> list[tuple[str, tuple[str, ...], tuple]
 STARS = ((0.01, "***"), (0.05, "**"), (0.10, "*"))
 
 #: What each test row reports, for the table note.
-TEST_NOTE = ("Hansen $p$: the $J$ test of the over-identifying restrictions with the "
-             "robust weight (Hansen 1982); Sargan $p$: the same restrictions with the "
-             "homoskedastic weight (Sargan 1958); AR(1), AR(2) $p$: tests for first- and "
-             "second-order serial correlation of the differenced errors (Arellano \& Bond "
+TEST_NOTE = ("Hansen \\textit{p}: the \\textit{J} test of the over-identifying restrictions with the "
+             "robust weight (Hansen 1982); Sargan \\textit{p}: the same restrictions with the "
+             "homoskedastic weight (Sargan 1958); AR(1), AR(2) \\textit{p}: tests for first- and "
+             "second-order serial correlation of the differenced errors (Arellano \\& Bond "
              "1991), of which AR(2) must not reject")
-DIFF_NOTE = ("; difference-in-Hansen $p$: validity of the level-equation instruments of "
-             "system GMM (Blundell \& Bond 1998)")
+DIFF_NOTE = ("; difference-in-Hansen \\textit{p}: validity of the level-equation instruments of "
+             "system GMM (Blundell \\& Bond 1998)")
 
 
 def stars(p) -> str:
@@ -292,9 +292,11 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
             f"{TEST_NOTE}{DIFF_NOTE if has_diff else ''}. ")
     if use_stars:
-        note += "$^{*}$ $p<0.10$, $^{**}$ $p<0.05$, $^{***}$ $p<0.01$. "
+        note += ("\\textsuperscript{*} \\textit{p} \\textless{} 0.10, \\textsuperscript{**} "
+                 "\\textit{p} \\textless{} 0.05, \\textsuperscript{***} \\textit{p} "
+                 "\\textless{} 0.01. ")
     if failing:
-        note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
+        note += ("\\textsuperscript{\\dag} The variant fails one of its own specification tests "
                  "(Hansen, AR(2) or difference-in-Hansen at the audit's level) and does "
                  "not count toward the verdicts. ")
     note += (f"Verdicts ({judged}): {verdicts}. "

@@ -96,16 +96,16 @@ def test_plan_needs_no_out_folder(tmp_path, capsys):
     assert code == 2 and err.count("\n") == 1 and "--out" in err and "--plan" in err
 
 
-def _audit_stderr(model, out, tty: bool) -> str:
+def _audit_streams(model, out, tty: bool) -> tuple[str, str]:
     cmd = [sys.executable, "-m", "robustgmm", "audit", str(model), "--out", str(out),
            "--jobs", "1", "--no-cache"]
     if not tty:
         proc = subprocess.run(cmd, capture_output=True, text=True, env=_env(), timeout=600)
         assert proc.returncode == 0, proc.stderr
-        return proc.stderr
+        return proc.stdout, proc.stderr
     # stderr on a pseudo-terminal (which reports a size of 0 x 0, as some do)
     master, slave = pty.openpty()
-    proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=slave, env=_env())
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=slave, env=_env())
     os.close(slave)
     chunks = []
     while True:
@@ -116,22 +116,23 @@ def _audit_stderr(model, out, tty: bool) -> str:
         if not data:
             break
         chunks.append(data)
+    stdout = proc.stdout.read().decode()
     proc.wait(timeout=600)
     os.close(master)
     assert proc.returncode == 0
-    return b"".join(chunks).decode(errors="replace")
+    return stdout, b"".join(chunks).decode(errors="replace")
 
 
 def test_progress_bar_only_on_a_terminal_and_a_closing_line_always(tmp_path):
     vary = {"form": ["per-period", "collapsed"], "steps": [1, 2], "last_lag": [2, 3, "all"]}
     model = _project(tmp_path, vary=vary)
     n = 12
-    piped = _audit_stderr(model, tmp_path / "a", tty=False)
+    out, piped = _audit_streams(model, tmp_path / "a", tty=False)
     assert "variants:" not in piped and "%|" not in piped
-    assert f"robustgmm: {n} variants in " in piped
-    on_tty = _audit_stderr(model, tmp_path / "b", tty=True)
+    assert f"{n} variants in " in out.splitlines()[-1]
+    out, on_tty = _audit_streams(model, tmp_path / "b", tty=True)
     assert f"/{n} [" in on_tty and "variants:" in on_tty  # done / total [elapsed<left]
-    assert f"robustgmm: {n} variants in " in on_tty
+    assert f"{n} variants in " in out.splitlines()[-1]
 
 
 def test_fit_takes_a_dataframe(tmp_path):

@@ -278,7 +278,8 @@ def test_markdown_report_escapes_user_text(hostile_audit):
 
 def test_latex_table_escapes_user_text(hostile_audit):
     _, out, _ = hostile_audit
-    tex = (out / "table.tex").read_text()
+    # zero-width break points inside long identifiers are not part of the text
+    tex = (out / "table.tex").read_text().replace("\\allowbreak{}", "")
     assert "\\input{" not in tex.replace("\\textbackslash{}input", "")
     assert TEX not in tex and XSS not in tex
     body = [line for line in tex.splitlines() if "passwd" in line]

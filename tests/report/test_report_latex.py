@@ -88,9 +88,9 @@ def test_labels_stars_note_and_failing_columns(writable_folder):
     row = next(line for line in tex.splitlines() if line.startswith("Leverage &"))
     first = row.split("&")[1]
     assert (stars(p) in first) if stars(p) else "$^{" not in first
-    assert "p<0.10" in tex and "p<0.01" in tex
+    assert "\\textit{p} \\textless{} 0.10" in tex and "\\textit{p} \\textless{} 0.01" in tex
     # the note names the tests and the difference-in-Hansen row is there when written
-    assert "Hansen $p$: the $J$ test" in tex and "Sargan" in tex
+    assert "Hansen \\textit{p}: the \\textit{J} test" in tex and "Sargan" in tex
     if "diff_hansen_level_p" in audit.variants.columns:
         assert "Diff.-in-Hansen $p$ &" in tex
     # a shown column whose variant fails its own tests is marked with a dagger
