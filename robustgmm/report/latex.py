@@ -281,7 +281,9 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
     judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
               f"their specification tests" if s.has_acceptable
               else f"across all {s.n_ok} estimated variants")
-    verdicts = "; ".join(f"{row_name(t.term)} {tex(t.verdict)}" for t in s.terms)
+    # in the full-width note a term needs no break points
+    verdicts = "; ".join(f"{tex(names[t.term]) if t.term in names else chr(92) + 'texttt{' + tex(t.term) + '}'} "
+                         f"{tex(t.verdict)}" for t in s.terms)
     failed = [row["variant"] for _, row in audit.variants.iterrows()
               if row["status"] != "ok"]
     shown = [vid for panel in panels for vid, _, _ in panel]
