@@ -6,12 +6,9 @@ import pandas as pd
 from matplotlib.colors import ListedColormap
 from matplotlib.patches import Patch
 
-from ..labels import band_arrays, mathtext_safe
+from ..labels import band_arrays
 from ..inputs import AuditFolder
-from .common import (BLACK, BLUE, GREEN, GREY, GROUP_COLOURS, GROUP_MARKERS, LIGHT,
-                     MAX_TICK_LABELS, ORANGE, PURPLE, SKY, VERMILLION, YELLOW,
-                     choice_rows, critical, mark_base_and_truth, no_data, same, sizes,
-                     sorted_term, style, variant_ticks)
+from .common import LIGHT, MAX_TICK_LABELS, VERMILLION, YELLOW, GREEN, style, variant_ticks
 
 
 PASS, WARN, FAIL, NOT_ESTIMATED = 0, 1, 2, 3
