@@ -231,10 +231,15 @@ class Reader:
             if section == "labels":
                 if "labels" in d:
                     table = self.table(d, "labels", "[labels]", ("labels",))
-                    try:
-                        fields["labels"] = v_labels(table)
-                    except Bad as bad:
-                        self.add("[labels]", str(bad), path=("labels",))
+                    good = []
+                    for term, text in table.items():  # one line per bad label
+                        try:
+                            good += v_labels([(term, text)])
+                        except Bad as bad:
+                            self.add(f"[labels] {key_text(term)}",
+                                     str(bad).replace(f"{term!r} ", ""), text,
+                                     ("labels", term))
+                    fields["labels"] = tuple(good)
                 continue
             table = self.table(d, section, f"[{section}]", (section,))
             self.unknown_keys(table, SECTIONS[section], section, f"[{section}]")

@@ -184,6 +184,11 @@ MODEL_CASES = [
                "[sample] exclude values: is missing"),
     model_case("unit equals period", sub('period = "year"', 'period = "firm"'),
                '[data] period = "firm"', "same column as [data] unit"),
+    model_case("label for a term the model does not have",
+               add('[labels]\n"q[t]" = "Leverage"'), "[labels] q[t]", "not a term of the model"),
+    model_case("empty label", add('[labels]\n"x[t]" = ""'), '[labels] x[t] = ""', "non-empty text"),
+    model_case("report stars not true or false", add('[report]\nstars = "yes"'),
+               '[report] stars = "yes"', "must be true or false"),
 ]
 
 DATA_CASES = [
