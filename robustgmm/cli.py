@@ -518,6 +518,8 @@ def cmd_audit(args) -> int:
         return EXIT_OK
     check_audit_inputs(Path(args.out), spec, Path(args.model))
     out = check_output_folder(args.out, args.force)
+    if spec.vary.is_empty():
+        print(nothing_varied_note(spec), file=sys.stderr, flush=True)
     from .audit import audit as run_audit, write_audit
     from .output import FolderLock
 

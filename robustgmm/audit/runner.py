@@ -52,6 +52,7 @@ from __future__ import annotations
 import hashlib
 import math
 import os
+import shutil
 import sys
 import time
 from dataclasses import dataclass, field
