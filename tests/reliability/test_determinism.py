@@ -121,7 +121,12 @@ def test_identical_across_more_jobs_and_reruns(project, tmp_path):
     }, tmp_path)
     for name in files:
         _same_files(files["jobs1"], files[name], name)
-    assert run["jobs4-cold-cache"]["jobs"] == 4 and run["jobs4-cold-cache"]["cached"] == 0
+    # never more workers than tasks or cores (issue 12, item 11), and said so
+    cold = run["jobs4-cold-cache"]
+    import joblib
+    expected = min(4, joblib.cpu_count(), cold["groups"])
+    assert cold["jobs"] == expected and cold["cached"] == 0
+    assert ("workers_capped" in cold) == (expected < 4)
     assert run["jobs2-warm-cache"]["computed"] == 0
 
 
