@@ -359,7 +359,7 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
     variants = variants.reset_index(drop=True)
     flags = variant_flags(variants, th, spec)
     ids = variants["variant"].astype(str).to_numpy()
-    planned_dup = (variants["duplicate_of"].fillna("").astype(str).to_numpy()
+    planned_dup = (variants["duplicate_of"].astype(object).fillna("").astype(str).to_numpy()
                    if "duplicate_of" in variants else np.full(len(variants), ""))
     dups = find_duplicates(variants, estimates)
     duplicate_of = np.array([dups.get(i, planned_dup[k] if planned_dup[k] != "nan" else "")
