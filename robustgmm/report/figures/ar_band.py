@@ -11,7 +11,7 @@ from ..inputs import AuditFolder
 from ..labels import band_arrays, mathtext_safe, term_text
 from .common import (BLACK, BLUE, MAX_TICK_LABELS, ORANGE, SKY, VERMILLION, attach_tooltips,
                      clipped_handle, critical, draw_intervals, mark_base_and_truth, no_data,
-                     sizes, sorted_term, style, value_limits, variant_ticks, variant_tooltips)
+                     ring_base, sizes, sorted_term, style, value_limits, variant_ticks, variant_tooltips)
 
 
 def _draw_band(ax, x, fe, ols, handles):
@@ -135,12 +135,7 @@ def plot_ar_sum(ax, audit: AuditFolder, *, max_tick_labels: int = MAX_TICK_LABEL
     if not inside.all():
         handles.append(Line2D([], [], color=VERMILLION, marker="o", linestyle="none",
                               markersize=4, label=f"outside the band ({int((~inside).sum())})"))
-    base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
-    if base.size:
-        ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
-                   edgecolors=VERMILLION, linewidths=1.6, zorder=4)
-        handles.append(Line2D([], [], color=VERMILLION, marker="o", markerfacecolor="none",
-                              linestyle="none", label="base model"))
+    ring_base(ax, handles, audit, frame, x, est, area)
     extra = [float(np.min(np.minimum(fe, ols))), float(np.max(np.maximum(fe, ols)))] \
         if has_band else []
     ax.set_ylim(*value_limits(est, est, est, extra=extra))

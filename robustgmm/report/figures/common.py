@@ -86,15 +86,21 @@ def same(series: pd.Series, value) -> np.ndarray:
     return (series.map(value_text) == value_text(value)).to_numpy()
 
 
-def mark_base_and_truth(ax, handles, audit, term, frame, x, est, area, truth_style):
-    """Ring the base model's estimate and draw the true value when it is known;
-    returns the base model's positions."""
+def ring_base(ax, handles, audit, frame, x, est, area):
+    """Ring the base model's estimate; returns the base model's positions."""
     base = np.flatnonzero(frame["variant"].to_numpy() == audit.base_variant)
     if base.size:
         ax.scatter(x[base], est[base], s=area * 3 + 30, facecolors="none",
                    edgecolors=VERMILLION, linewidths=1.6, zorder=4)
         handles.append(Line2D([], [], color=VERMILLION, marker="o", markerfacecolor="none",
                               linestyle="none", label="base model"))
+    return base
+
+
+def mark_base_and_truth(ax, handles, audit, term, frame, x, est, area, truth_style):
+    """Ring the base model's estimate and draw the true value when it is known;
+    returns the base model's positions."""
+    base = ring_base(ax, handles, audit, frame, x, est, area)
     truth = audit.truth_value(term)
     if truth is not None:
         ax.axhline(truth, color=GREEN, linestyle=truth_style, linewidth=1.2)
