@@ -202,9 +202,15 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                 est = gmm.get(pers["term"], np.nan)
                 row.update(ar_term=pers["term"], ar_coefficient=est, ar_ols=pers["ols"],
                            ar_fe=pers["fe"], in_bounds=_inside(est, pers["ols"], pers["fe"]))
+                if bnd.get("dropped"):
+                    row["warnings"] = " | ".join(filter(None, [
+                        row["warnings"], "bounds: the within estimator drops the time-invariant "
+                        "term(s) " + ", ".join(bnd["dropped"]) + " (absorbed by the unit effect)"]))
             elif bnd is not None:
-                row["warnings"] = " | ".join(filter(None, [row["warnings"],
-                                                           "bounds: " + bnd.get("error", "")]))
+                err = bnd.get("error", "")
+                # the bounds' own errors already start with "bounds:"
+                err = err if err.startswith("bounds:") else "bounds: " + err
+                row["warnings"] = " | ".join(filter(None, [row["warnings"], err]))
         row["instruments_per_unit"] = (row["instruments"] / row["units"]
                                        if row["instruments"] is not None and row["units"] else np.nan)
         vrows.append(row)

@@ -72,6 +72,7 @@ class Bounds:
     observations: int
     units: int
     persistence: str  # label of the coefficient the band check uses (lag or sum)
+    dropped: tuple[str, ...] = ()  # time-invariant terms the within regression drops
 
     def term(self, label: str) -> BoundEstimate:
         for b in self.terms:
@@ -86,6 +87,7 @@ class Bounds:
             "observations": self.observations,
             "units": self.units,
             "persistence": self.persistence,
+            "dropped": list(self.dropped),
         }
 
 
@@ -189,8 +191,13 @@ def _demean(arr: np.ndarray, sample: np.ndarray) -> np.ndarray:
 def ols_and_within(spec: Spec, panel, mask: np.ndarray):
     """Pooled OLS and within regressions of the model on ``mask``.
 
-    Returns ``(labels, (b_ols, V_ols), (b_fe, V_fe), sample)`` restricted to the
-    regressor terms (dummies and constant dropped from the output).
+    Returns ``(labels, (b_ols, V_ols), (b_fe, V_fe), sample, dropped)`` restricted
+    to the regressor terms (dummies and constant dropped from the output).
+
+    A term that does not vary within any unit on the sample (education, sector,
+    founding cohort) is absorbed by the unit effect: its demeaned column is zero, so
+    the within regression drops it (``dropped`` names it; its within estimate and
+    standard error are NaN) and the band for the AR coefficients remains.
     """
     y, X, labels, sample = _design(spec, panel, mask)
     K = len(labels)
@@ -204,9 +211,31 @@ def ols_and_within(spec: Spec, panel, mask: np.ndarray):
     # within: demeaned terms and dummies, no constant
     yw = _demean(y[:, :, None], sample)[:, :, 0]
     Xw = _demean(np.concatenate([X, D], axis=2), sample)
-    keep_w = _keep_columns(Xw, sample, K)
-    b_fe, V_fe = cluster_ols(yw, Xw[:, :, keep_w], sample)
-    return labels, (b_ols[:K], V_ols[:K, :K]), (b_fe[:K], V_fe[:K, :K]), sample
+    varies = _varies_within(X, Xw[:, :, :K], sample)
+    dropped = tuple(lab for lab, v in zip(labels, varies) if not v)
+    kept = np.flatnonzero(varies)
+    Xk = np.concatenate([Xw[:, :, kept], Xw[:, :, K:]], axis=2)
+    b_w, V_w = cluster_ols(yw, Xk[:, :, _keep_columns(Xk, sample, len(kept))], sample)
+    k = len(kept)
+    b_fe = np.full(K, np.nan)
+    V_fe = np.full((K, K), np.nan)
+    b_fe[kept] = b_w[:k]
+    V_fe[np.ix_(kept, kept)] = V_w[:k, :k]
+    return labels, (b_ols[:K], V_ols[:K, :K]), (b_fe, V_fe), sample, dropped
+
+
+def _varies_within(X: np.ndarray, Xw: np.ndarray, sample: np.ndarray) -> np.ndarray:
+    """(K,) bool: whether each term varies within units on the sample.
+
+    A term is time-invariant when its within sum of squares is negligible against
+    its total sum of squares (relative 1e-20, i.e. only rounding left after the
+    demeaning), or it is zero everywhere on the sample.
+    """
+    s = sample[:, :, None]
+    total = np.where(s, X, 0.0)
+    ss_total = (total ** 2).sum(axis=(0, 1))
+    ss_within = (Xw ** 2).sum(axis=(0, 1))
+    return ss_within > 1e-20 * np.maximum(ss_total, 1e-300)
 
 
 def _keep_columns(X: np.ndarray, sample: np.ndarray, n_keep: int) -> np.ndarray:
@@ -220,7 +249,7 @@ def ar_bounds(spec: Spec, panel, mask: np.ndarray) -> Bounds:
     ``mask`` is the variant's estimation sample (N,P) bool. Raises
     :class:`EstimationError` when the regressions cannot be run.
     """
-    labels, (bo, Vo), (bf, Vf), sample = ols_and_within(spec, panel, mask)
+    labels, (bo, Vo), (bf, Vf), sample, dropped = ols_and_within(spec, panel, mask)
     ar = list(spec.ar_terms())
     idx = [labels.index(a) for a in ar]
     out = []
@@ -235,7 +264,8 @@ def ar_bounds(spec: Spec, panel, mask: np.ndarray) -> Bounds:
                                  float(ones @ bf), float(np.sqrt(ones @ Vf @ ones))))
         persistence = sum_label(spec)
     return Bounds(terms=tuple(out), observations=int(sample.sum()),
-                  units=int(sample.any(axis=1).sum()), persistence=persistence)
+                  units=int(sample.any(axis=1).sum()), persistence=persistence,
+                  dropped=dropped)
 
 
 # ---------------------------------------------------------------------------

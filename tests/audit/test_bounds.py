@@ -60,7 +60,7 @@ def test_against_statsmodels_and_linearmodels(name):
     panel = _panel()
     rng = np.random.default_rng(5)
     mask = rng.random((panel.n_units, panel.n_periods)) < 0.9  # a variant's sample
-    labels, (bo, Vo), (bf, Vf), sample = ols_and_within(spec, panel, mask)
+    labels, (bo, Vo), (bf, Vf), sample, _ = ols_and_within(spec, panel, mask)
     frame = _long(spec, panel, sample)
     assert len(frame) == sample.sum() > 200
 
@@ -155,6 +155,51 @@ def test_gaps_never_shift_lags():
     y[0, 2] = np.nan
     panel = Panel(panel.units, panel.periods, {"y": y, "x": panel.values["x"]})
     spec = SPECS["ar1_no_time_effects"]
-    _, _, _, sample = ols_and_within(spec, panel, np.ones(y.shape, bool))
+    _, _, _, sample, _ = ols_and_within(spec, panel, np.ones(y.shape, bool))
     assert not sample[0, 2] and not sample[0, 3] and sample[0, 4]
     assert not sample[:, 0].any()
+
+
+def test_time_invariant_term_dropped_from_within_only():
+    """A regressor constant within units (schooling-like, effect 0.4 in the DGP) is
+    absorbed by the unit effect: the within regression drops it and still gives the
+    band, equal to linearmodels' PanelOLS without that term; pooled OLS keeps it and
+    equals statsmodels with it (reference libraries)."""
+    N, P = 80, 8
+    rng = np.random.default_rng(11)
+    eta = rng.normal(size=N)
+    z = rng.normal(size=N) + 0.3 * eta
+    x = rng.normal(size=(N, P))
+    y = np.zeros((N, P))
+    y[:, 0] = eta + rng.normal(size=N)
+    for t in range(1, P):
+        y[:, t] = 0.5 * y[:, t - 1] + 0.3 * x[:, t] + 0.4 * z + eta + rng.normal(size=N)
+    panel = Panel(units=np.arange(N), periods=np.arange(2000, 2000 + P),
+                  values={"y": y, "x": x, "z": np.repeat(z[:, None], P, axis=1)})
+    spec = Spec(unit="unit", period="period", outcome="y", outcome_lags=(1,),
+                regressors=(Regressor("x", (0,)), Regressor("z", (0,))), time_effects=True)
+    mask = np.ones((N, P), bool)
+    labels, (bo, Vo), (bf, Vf), sample, dropped = ols_and_within(spec, panel, mask)
+    zlab = labels[-1]  # the z term's label
+    assert zlab.startswith("z") and dropped == (zlab,)
+    iz = labels.index(zlab)
+    assert np.isnan(bf[iz]) and np.isnan(Vf[iz, iz])
+    frame = _long(spec, panel, sample)
+    dummies = pd.get_dummies(frame["period"], prefix="p", drop_first=True, dtype=float)
+    ref = statsmodels_api.OLS(frame["y"], statsmodels_api.add_constant(
+        pd.concat([frame[labels], dummies], axis=1))).fit(
+        cov_type="cluster", cov_kwds={"groups": frame["unit"].to_numpy()})
+    np.testing.assert_allclose(bo, ref.params[labels].to_numpy(), rtol=1e-8, atol=1e-10)
+    kept = [lab for lab in labels if lab != zlab]
+    indexed = frame.set_index(["unit", "period"])
+    X_fe = pd.concat([frame[kept], dummies], axis=1)
+    X_fe.index = indexed.index
+    fe = linearmodels_panel.PanelOLS(indexed["y"], X_fe, entity_effects=True).fit(
+        cov_type="clustered", cluster_entity=True, debiased=True, group_debias=True)
+    ik = [labels.index(k) for k in kept]
+    np.testing.assert_allclose(bf[ik], fe.params[kept].to_numpy(), rtol=1e-8, atol=1e-10)
+    np.testing.assert_allclose(np.sqrt(np.diag(Vf)[ik]), fe.std_errors[kept].to_numpy(), rtol=1e-8)
+    bounds = ar_bounds(spec, panel, mask)
+    assert bounds.dropped == (zlab,)
+    b = bounds.term(spec.ar_terms()[0])
+    assert np.isfinite(b.fe) and b.fe < b.ols  # Nickell: within below OLS
