@@ -238,8 +238,6 @@ def one_line(exc: BaseException) -> str:
 
 
 # ---------------------------------------------------------------------------
-# cache
-# ---------------------------------------------------------------------------
 # the run
 # ---------------------------------------------------------------------------
 @dataclass(frozen=True)
@@ -319,143 +317,204 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     check_on_error(on_error)
     start = time.perf_counter()
     todo = [v for v in variants if v.status == PLANNED]
-    cache, cache_problem = None, None
-    if cache_dir is not None:
-        try:
-            cache = Cache(cache_dir)
-        except OSError as exc:  # e.g. a file in its place: run without resuming
-            cache_problem = f"{cache_dir}: {exc.strerror or type(exc).__name__}"
+    cache, cache_problem = _open_cache(cache_dir)
+    groups = _share_groups(todo, shared=fit is None)
+    outcomes = _Outcomes(cache)
+    pending = [g for g in groups
+               if outcomes.look_up(g, _panel_of(g, panels), shared=fit is None)]
+    # the heaviest groups first, so parallel workers finish close together (the order
+    # of results does not depend on it)
+    pending.sort(key=lambda g: -_group_weight(g, _panel_of(g, panels)))
+    tasks = _Tasks(panels, fit, sample, on_error, os.getpid())
+    outcomes.bar = _progress_bar(progress, total=len(todo), initial=len(outcomes.by_id))
+    try:
+        n_workers, backend_used, capped = _dispatch(pending, tasks, outcomes, jobs, backend)
+    finally:
+        parallel.remove_memmaps()  # every exit path: done, interrupted, a bug
+        outcomes.close()
+    ordered = {v.id: outcomes.by_id[v.id] for v in todo}
+    extra = {"groups": len(groups), "estimated": outcomes.estimated, "shared": fit is None,
+             **{k: v for k, v in outcomes.deaths.items() if v},
+             **({"cache_write_errors": cache.write_errors}
+                if cache is not None and cache.write_errors else {}),
+             **({"cache_unavailable": cache_problem} if cache_problem else {}),
+             **({"workers_capped": capped} if capped else {})}
+    return ordered, _run_stats(ordered, cache, n_workers, backend_used,
+                               time.perf_counter() - start, extra)
+
+
+def _panel_of(group: Sequence[Variant], panels: Mapping[str, Any]):
+    """The panel a share group is estimated on (its members share the sample)."""
+    return panels[sample_key(group[0].spec.sample)]
+
+
+def _open_cache(cache_dir) -> tuple[Cache | None, str | None]:
+    """The cache of a run and, when its folder cannot be made (a file in its place),
+    no cache and one line saying why: the run goes on without resuming."""
+    if cache_dir is None:
+        return None, None
+    try:
+        return Cache(cache_dir), None
+    except OSError as exc:
+        return None, f"{cache_dir}: {exc.strerror or type(exc).__name__}"
+
+
+def _share_groups(todo: Sequence[Variant], shared: bool) -> list[list[Variant]]:
+    """The units of work: share groups (:func:`_share_key`), or one variant each when
+    not ``shared``; ordered by sample, then by the plan position of their first member."""
     by_key: dict[str, list[Variant]] = {}
     for v in todo:
-        key = f"{v.id}" if fit is not None else _share_key(v.spec)
-        by_key.setdefault(key, []).append(v)
-    groups = sorted(by_key.values(), key=lambda g: (sample_key(g[0].spec.sample),
-                                                     min(v.order for v in g)))
-    outcomes: dict[str, Outcome] = {}
-    keys: dict[str, str] = {}
-    pending: list[list[Variant]] = []
-    for group in groups:
-        signature = None if fit is not None else _group_signature(group)
-        panel = panels[sample_key(group[0].spec.sample)]
+        by_key.setdefault(_share_key(v.spec) if shared else v.id, []).append(v)
+    return sorted(by_key.values(), key=lambda g: (sample_key(g[0].spec.sample),
+                                                   min(v.order for v in g)))
+
+
+def _progress_bar(progress: bool | None, total: int, initial: int):
+    """A tqdm bar on stderr, or None (``progress`` None: only on a terminal)."""
+    if progress is None:
+        progress = sys.stderr.isatty()
+    if not progress:
+        return None
+    from tqdm import tqdm
+    # A terminal that reports a size of 0 x 0 (a pseudo-terminal without a size)
+    # makes tqdm hide its bar (no row left on the screen): fall back to 80 x 24.
+    size = shutil.get_terminal_size((80, 24))
+    return tqdm(total=total, initial=initial, file=sys.stderr, desc="variants",
+                unit="variant", leave=False, ncols=min(size.columns or 80, 100),
+                nrows=size.lines or 24)
+
+
+class _Outcomes:
+    """The outcomes of one run as they arrive — from the cache, from estimations
+    (each stored in the cache at once, so an interrupted run resumes), or lost with
+    their worker — and the progress bar they advance."""
+
+    def __init__(self, cache: Cache | None):
+        self.cache = cache
+        self.by_id: dict[str, Outcome] = {}
+        self.keys: dict[str, str] = {}
+        self.bar = None
+        self.estimated = 0  # members estimated, cached ones of a rerun group included
+        self.deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
+
+    def look_up(self, group: Sequence[Variant], panel, shared: bool) -> bool:
+        """Take the cached members of ``group``; True when any member is missing."""
+        if self.cache is None:
+            return True
+        signature = _group_signature(group) if shared else None
         missing = False
         for v in group:
-            if cache is None:
-                missing = True
-                continue
-            keys[v.id] = cache.key(panel.data_hash, v.spec, signature)
-            payload = cache.load(keys[v.id])
+            self.keys[v.id] = self.cache.key(panel.data_hash, v.spec, signature)
+            payload = self.cache.load(self.keys[v.id])
             if payload is None:
                 missing = True
             else:
-                outcomes[v.id] = _outcome(v.id, payload, cached=True)
-        if missing:
-            pending.append(group)
-    # the heaviest groups first, so parallel workers finish close together (the order
-    # of results does not depend on it)
-    pending.sort(key=lambda g: -_group_weight(g, panels[sample_key(g[0].spec.sample)]))
+                self.by_id[v.id] = _outcome(v.id, payload, cached=True)
+        return missing
 
-    n_jobs = -1 if jobs is None else int(jobs)
-    if progress is None:
-        progress = sys.stderr.isatty()
-    bar = None
-    if progress:
-        from tqdm import tqdm
-        # A terminal that reports a size of 0 x 0 (a pseudo-terminal without a size)
-        # makes tqdm hide its bar (no row left on the screen): fall back to 80 x 24.
-        size = shutil.get_terminal_size((80, 24))
-        bar = tqdm(total=len(todo), initial=len(outcomes), file=sys.stderr,
-                   desc="variants", unit="variant", leave=False,
-                   ncols=min(size.columns or 80, 100), nrows=size.lines or 24)
-    estimated = 0
-
-    def record(results):
-        nonlocal estimated
+    def record(self, results) -> None:
+        """Keep the ``(variant id, payload)`` results of one task."""
         for vid, payload in results:
-            estimated += 1
-            if vid in outcomes:  # cached member of a group that had to run
+            self.estimated += 1
+            if vid in self.by_id:  # cached member of a group that had to run
                 continue
             cacheable = payload.pop("cacheable", True)
-            if cache is not None and cacheable:
-                cache.store_quietly(keys[vid], vid, payload)
-            outcomes[vid] = _outcome(vid, payload, cached=False)
-            if bar is not None:
-                bar.update(1)
+            if self.cache is not None and cacheable:
+                self.cache.store_quietly(self.keys[vid], vid, payload)
+            self.by_id[vid] = _outcome(vid, payload, cached=False)
+            self._advance()
 
-    parent = os.getpid()
+    def finished(self, group: Sequence[Variant]) -> bool:
+        return all(v.id in self.by_id for v in group)
 
-    def task(group, marker=None):
-        return joblib.delayed(_task)([v.id for v in group], [v.spec for v in group],
-                                     panels[sample_key(group[0].spec.sample)], fit, sample,
-                                     parent, marker, on_error)
-
-    def finished(group) -> bool:
-        return all(v.id in outcomes for v in group)
-
-    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
-
-    def record_lost(group) -> None:
+    def record_lost(self, group: Sequence[Variant]) -> None:
+        """The members of a group whose worker died twice: failed, not cached."""
         for v in group:
-            if v.id in outcomes:
+            if v.id in self.by_id:
                 continue
-            deaths["lost"] += 1
-            outcomes[v.id] = Outcome(variant=v.id, status=FAILED, reason=LOST_REASON, fit=None,
-                                     bounds=None, seconds=0.0, cached=False)
-            if bar is not None:
-                bar.update(1)
+            self.deaths["lost"] += 1
+            self.by_id[v.id] = Outcome(variant=v.id, status=FAILED, reason=LOST_REASON,
+                                       fit=None, bounds=None, seconds=0.0, cached=False)
+            self._advance()
 
-    backend_used = "in-process"
-    n_workers = 1
-    capped = None
-    try:
-        if pending and jobs is None and backend is None and parallel._default_is_loky():
-            # jobs not set: time the first group here; when the whole audit would
-            # take less than starting worker processes costs, stay in this process
-            first = pending.pop(0)
-            t0 = time.perf_counter()
-            with parallel._blas_limit():
-                record(_task([v.id for v in first], [v.spec for v in first],
-                             panels[sample_key(first[0].spec.sample)], fit, sample, parent,
-                             None, on_error))
-            per_variant = (time.perf_counter() - t0) / len(first)
-            if sum(len(g) for g in pending) * per_variant < WORKER_STARTUP_SECONDS:
-                n_jobs = 1
-        if pending:
-            with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
-                # never more workers than tasks, cores or the free memory holds
-                n_workers, capped = parallel.worker_count(
-                    n_jobs, len(pending), panels[sample_key(pending[0][0].spec.sample)])
-                if n_workers == 1:  # in this process: nothing to lose but ourselves
-                    for results in parallel._parallel(1)(task(g) for g in pending):
-                        record(results)
-                else:
-                    parallel.run_surviving_worker_deaths(
-                        pending, task, record, finished, record_lost, n_workers, deaths)
-            if n_workers == 1:
-                backend_used = "in-process"
-    finally:
-        parallel.remove_memmaps()  # every exit path: done, interrupted, a bug
-        if bar is not None:
-            bar.close()
-    ordered = {v.id: outcomes[v.id] for v in todo}
-    stats = RunStats(
-        variants=len(todo),
+    def _advance(self) -> None:
+        if self.bar is not None:
+            self.bar.update(1)
+
+    def close(self) -> None:
+        if self.bar is not None:
+            self.bar.close()
+
+
+@dataclass(frozen=True)
+class _Tasks:
+    """The tasks of one run: a share group with its panel and the run's options,
+    either run here (:meth:`run`) or sent to joblib (:meth:`delayed`)."""
+
+    panels: Mapping[str, Any]
+    fit: Callable | None
+    sample: Callable | None
+    on_error: str
+    parent: int  # the process of the run (workers watch it)
+
+    def _args(self, group, marker):
+        return ([v.id for v in group], [v.spec for v in group], _panel_of(group, self.panels),
+                self.fit, self.sample, self.parent, marker, self.on_error)
+
+    def run(self, group) -> list:
+        return _task(*self._args(group, None))
+
+    def delayed(self, group, marker: str | None = None):
+        return joblib.delayed(_task)(*self._args(group, marker))
+
+
+def _dispatch(pending: list, tasks: _Tasks, outcomes: _Outcomes, jobs: int | None,
+              backend: str | None) -> tuple[int, str, str | None]:
+    """Run the ``pending`` groups; return the workers used, the backend's name and
+    why fewer workers ran than asked (None when not).
+
+    With ``jobs`` not set (and the default loky backend) the first group is timed
+    here; when the rest would take less than starting worker processes costs
+    (:data:`WORKER_STARTUP_SECONDS`), everything stays in this process."""
+    n_jobs = -1 if jobs is None else int(jobs)
+    if pending and jobs is None and backend is None and parallel._default_is_loky():
+        first = pending.pop(0)
+        t0 = time.perf_counter()
+        with parallel._blas_limit():
+            outcomes.record(tasks.run(first))
+        per_variant = (time.perf_counter() - t0) / len(first)
+        if sum(len(g) for g in pending) * per_variant < WORKER_STARTUP_SECONDS:
+            n_jobs = 1
+    if not pending:
+        return 1, "in-process", None
+    with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
+        # never more workers than tasks, cores or the free memory holds
+        n_workers, capped = parallel.worker_count(n_jobs, len(pending),
+                                                  _panel_of(pending[0], tasks.panels))
+        if n_workers == 1:  # in this process: nothing to lose but ourselves
+            for results in parallel._parallel(1)(tasks.delayed(g) for g in pending):
+                outcomes.record(results)
+        else:
+            parallel.run_surviving_worker_deaths(
+                pending, tasks.delayed, outcomes.record, outcomes.finished,
+                outcomes.record_lost, n_workers, outcomes.deaths)
+    return n_workers, ("in-process" if n_workers == 1 else backend_used), capped
+
+
+def _run_stats(ordered: Mapping[str, Outcome], cache: Cache | None, n_workers: int,
+               backend_used: str, wall_seconds: float, extra: dict) -> RunStats:
+    return RunStats(
+        variants=len(ordered),
         computed=sum(1 for o in ordered.values() if not o.cached),
         cached=sum(1 for o in ordered.values() if o.cached),
         corrupted=cache.corrupted if cache else 0,
         failed=sum(1 for o in ordered.values() if o.status == FAILED),
         jobs=n_workers,
         backend=backend_used,
-        wall_seconds=time.perf_counter() - start,
+        wall_seconds=wall_seconds,
         variant_seconds=sum(o.seconds for o in ordered.values() if not o.cached),
-        extra={"groups": len(groups), "estimated": estimated,
-               "shared": fit is None,
-               **({k: v for k, v in deaths.items() if v}),
-               **({"cache_write_errors": cache.write_errors}
-                  if cache is not None and cache.write_errors else {}),
-               **({"cache_unavailable": cache_problem} if cache_problem else {}),
-               **({"workers_capped": capped} if capped else {})},
+        extra=extra,
     )
-    return ordered, stats
 
 
 def _group_weight(group, panel) -> float:
