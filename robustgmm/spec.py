@@ -145,7 +145,11 @@ class Vary:
     """Values to try for each varied setting (``[audit.vary]``); empty = not varied.
 
     ``roles`` maps a regressor name to the roles to try; ``samples`` lists extra
-    sample filters (the base sample is always included).
+    sample filters (the base sample is always included). ``outcome_lags`` lists lag
+    lists of the outcome to try (``[[1], [1, 2]]``), ``lags`` maps a regressor name
+    to the lag lists to try (``[0]``, ``[0, 1]``), and ``drop`` lists sets of
+    regressors to leave out (``[[], ["married"]]``); a variant without a term simply
+    does not estimate it.
     """
 
     equations: tuple[str, ...] = ()
@@ -158,6 +162,9 @@ class Vary:
     errors: tuple[str, ...] = ()
     roles: tuple[tuple[str, tuple[str, ...]], ...] = ()
     samples: tuple[SampleFilter, ...] = ()
+    outcome_lags: tuple[tuple[int, ...], ...] = ()
+    lags: tuple[tuple[str, tuple[tuple[int, ...], ...]], ...] = ()
+    drop: tuple[tuple[str, ...], ...] = ()
 
     def __post_init__(self):
         from .modelfile import checks as c
@@ -167,6 +174,9 @@ class Vary:
             "first_lag": _each(c.v_first_lag), "last_lag": _each(_optional(c.v_last_lag)),
             "time_effects": _each(c.v_bool), "errors": _each(c.v_errors),
             "roles": _each(_role_pair), "samples": _tuple_of(SampleFilter, "SampleFilter"),
+            "outcome_lags": _each(_seq(c.v_lags(1, "a dynamic model needs at least one lag "
+                                                "of the outcome, e.g. [1]"))),
+            "lags": _each(_lags_pair), "drop": _each(_seq(c.v_drop_list)),
         })
 
     def is_empty(self) -> bool:
@@ -273,7 +283,13 @@ class Spec:
         return tuple(term_label(self.outcome, lag) for lag in self.outcome_lags)
 
     def focus_terms(self) -> tuple[str, ...]:
-        return self.focus or tuple(label for _, _, label in self.regressor_terms())
+        """The terms the audit judges: ``focus``, else every regressor term of the
+        base model except those of regressors that ``[audit.vary] drop`` leaves out
+        (a focus term is never dropped)."""
+        if self.focus:
+            return self.focus
+        dropped = {name for names in self.vary.drop for name in names}
+        return tuple(label for var, _, label in self.regressor_terms() if var not in dropped)
 
     def to_dict(self) -> dict:
         """The model-file dict of this spec (see :func:`robustgmm.modelfile.spec_to_dict`)."""
@@ -293,6 +309,14 @@ def _role_pair(v):
     if not (isinstance(v, (tuple, list)) and len(v) == 2):
         raise c.Bad("must be a (regressor name, roles) pair")
     return (c.v_name(v[0]), _each(c.v_role)(v[1]))
+
+
+def _lags_pair(v):
+    """One ``(regressor, lag lists to try)`` pair of :attr:`Vary.lags`."""
+    from .modelfile import checks as c
+    if not (isinstance(v, (tuple, list)) and len(v) == 2):
+        raise c.Bad("must be a (regressor name, lag lists) pair")
+    return (c.v_name(v[0]), _each(_seq(c.v_lags(0, "0 is the current period")))(v[1]))
 
 
 def term_label(name: str, lag: int) -> str:

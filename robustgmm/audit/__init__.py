@@ -189,7 +189,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                               "std_error": t["std_error"], "z": t["z"], "p_value": t["p_value"]})
             if "ar_sum" in fit:
                 from .bounds import sum_label
-                gmm[sum_label(spec)] = fit["ar_sum"]["estimate"]
+                gmm[sum_label(v.spec)] = fit["ar_sum"]["estimate"]  # the variant's own lags
             if bnd is not None and "terms" in bnd:
                 for b in bnd["terms"]:
                     est = gmm.get(b["term"], np.nan)

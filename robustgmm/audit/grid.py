@@ -63,11 +63,18 @@ import pandas as pd
 from ..errors import EstimationError, InputError, UnderidentifiedError
 from ..spec import SampleFilter, Spec, canonical_settings, sample_restrictions  # noqa: F401 (re-exported)
 
-#: Varied settings in grid order (the last varies fastest). Roles and samples are
-#: handled specially: one dimension per regressor whose role is varied
-#: (column ``role:NAME``) and one for the sample (column ``sample``).
-DIMENSIONS = ("equations", "transform", "steps", "errors", "form", "first_lag",
-              "last_lag", "time_effects", "roles", "samples")
+#: Varied settings in grid order (the last varies fastest). The lag structure comes
+#: first: ``outcome_lags``, one dimension per regressor whose lags are varied
+#: (column ``lags:NAME``) and the regressors left out (``drop``). Roles and samples
+#: are handled specially: one dimension per regressor whose role is varied
+#: (column ``role:NAME``) and one for the sample (column ``sample``). A column
+#: exists only when its key is in ``[audit.vary]``, so adding a dimension never
+#: changes the columns (or ids) of a grid that does not use it.
+DIMENSIONS = ("outcome_lags", "lags", "drop", "equations", "transform", "steps", "errors",
+              "form", "first_lag", "last_lag", "time_effects", "roles", "samples")
+#: the dimensions that replace one Spec field by a listed value
+SCALAR_DIMENSIONS = ("equations", "transform", "steps", "errors", "form", "first_lag",
+                     "last_lag", "time_effects")
 
 ID_LENGTH = 8
 PLANNED, SKIPPED = "planned", "skipped"
@@ -140,15 +147,35 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
             changes[field] = value
         return apply
 
-    for field in DIMENSIONS[:-2]:
+    names = [r.name for r in spec.regressors]
+
+    def known(where, name):
+        if name not in names:
+            raise InputError(f"{spec.source}: {where} {name} is not a regressor "
+                             f"of the model (regressors: {', '.join(names) or 'none'})")
+
+    if vary.outcome_lags:
+        dims.append(("outcome_lags", list(vary.outcome_lags), scalar("outcome_lags")))
+    for name, lists in vary.lags:
+        known("[audit.vary.lags]", name)
+
+        def apply_lags(changes, value, name=name):
+            changes.setdefault("_lags", {})[name] = value
+        dims.append((f"lags:{name}", list(lists), apply_lags))
+    if vary.drop:
+        for dropped in vary.drop:
+            for name in dropped:
+                known("[audit.vary] drop:", name)
+
+        def apply_drop(changes, value):
+            changes["_drop"] = value
+        dims.append(("drop", list(vary.drop), apply_drop))
+    for field in SCALAR_DIMENSIONS:
         values = list(getattr(vary, field))
         if values:
             dims.append((field, values, scalar(field)))
-    names = [r.name for r in spec.regressors]
     for name, roles in vary.roles:
-        if name not in names:
-            raise InputError(f"{spec.source}: [audit.vary.roles] {name} is not a regressor "
-                             f"of the model (regressors: {', '.join(names) or 'none'})")
+        known("[audit.vary.roles]", name)
 
         def apply_role(changes, value, name=name):
             changes.setdefault("_roles", {})[name] = value
@@ -163,11 +190,16 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
 
 
 def _apply(spec: Spec, changes: dict) -> Spec:
+    """The variant spec: the recorded changes applied to the base spec (roles and lags
+    per regressor, then the regressors left out)."""
     changes = dict(changes)
-    roles = changes.pop("_roles", None)
-    if roles:
+    roles = changes.pop("_roles", None) or {}
+    lags = changes.pop("_lags", None) or {}
+    drop = set(changes.pop("_drop", ()) or ())
+    if roles or lags or drop:
         changes["regressors"] = tuple(
-            dataclasses.replace(r, role=roles.get(r.name, r.role)) for r in spec.regressors)
+            dataclasses.replace(r, role=roles.get(r.name, r.role), lags=lags.get(r.name, r.lags))
+            for r in spec.regressors if r.name not in drop)
     return dataclasses.replace(spec, **changes)
 
 
@@ -175,14 +207,24 @@ def _base_value(spec: Spec, column: str) -> Any:
     if column.startswith("role:"):
         name = column[len("role:"):]
         return next(r.role for r in spec.regressors if r.name == name)
+    if column.startswith("lags:"):
+        name = column[len("lags:"):]
+        return next(r.lags for r in spec.regressors if r.name == name)
+    if column == "drop":
+        return ()
     if column == "sample":
         return spec.sample
     return getattr(spec, column)
 
 
 def _shown(column: str, value: Any) -> Any:
+    """The value as variants.csv shows it: as the model file writes it (lag lists
+    ``[1, 2]``, the regressors left out ``["married"]``, ``[]`` for none)."""
     if column == "sample":
         return value.name
+    if column in ("outcome_lags", "drop") or column.startswith("lags:"):
+        from ..modelfile.checks import fmt
+        return fmt(list(value), limit=10_000)
     return _display(value)
 
 

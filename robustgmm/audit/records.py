@@ -168,7 +168,9 @@ class TermVerdict:
     ``judged``, ``positive``, ``negative``, ``significant``, ``significant_positive``,
     ``significant_negative``, ``min``/``max``/``median`` over the judged variants,
     ``ok_min``/``ok_max`` over every estimated one, ``untestable`` and ``duplicates``
-    (estimating the term, not judged), ``informative``, ``uninformative_ids``.
+    (estimating the term, not judged), ``informative``, ``uninformative_ids``,
+    ``without_term`` (judged variants whose lag structure or controls leave the term
+    out: not counted for it).
     ``key_driver`` is the setting the conclusion depends on most (see
     :func:`_key_driver`)."""
 

@@ -132,6 +132,12 @@ def spec_to_dict(spec: Spec) -> dict:
     for key in ("equations", "transform", "steps", "form", "first_lag", "time_effects", "errors"):
         if getattr(v, key):
             vary[key] = list(getattr(v, key))
+    if v.outcome_lags:
+        vary["outcome_lags"] = [list(lags) for lags in v.outcome_lags]
+    if v.drop:
+        vary["drop"] = [list(names) for names in v.drop]
+    if v.lags:
+        vary["lags"] = {name: [list(lags) for lags in lists] for name, lists in v.lags}
     if v.last_lag:
         vary["last_lag"] = ["all" if x is None else x for x in v.last_lag]
     if v.roles:

@@ -247,6 +247,20 @@ def v_name_list(v):
     return tuple(out)
 
 
+def v_drop_list(v):
+    """A set of regressors to leave out (``[]`` leaves none out)."""
+    if not isinstance(v, list):
+        raise Bad('must be a list of regressor names, e.g. ["married"] (or [] for none)')
+    out = []
+    for item in v:
+        if not isinstance(item, str) or not item.strip():
+            raise Bad(f"{fmt(item)} is not a regressor name")
+        if item in out:
+            raise Bad(f"{fmt(item)} is listed twice")
+        out.append(item)
+    return tuple(out)
+
+
 def v_scalar_list(v):
     if not isinstance(v, list):
         raise Bad("must be a list of values, e.g. [7, 9] or [\"UK\"]")

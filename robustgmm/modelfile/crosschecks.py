@@ -130,6 +130,10 @@ def _vary(spec: Spec, r: Reader) -> None:
                 + (f" (did you mean {fmt(hint)}?)" if hint else
                    ("; regressors: " + ", ".join(dict.fromkeys(names)) if names
                     else "; the model has none")))
+    for reg, _lists in vary.lags:
+        if reg not in names:
+            add(f"[audit.vary.lags] {key_text(reg)}", _not_a_regressor(reg, names, spec))
+    _drop(spec, r, names)
     seen = [spec.sample.name]
     for i, s in enumerate(vary.samples, start=1):
         head = f"[[audit.vary.sample]] #{i} ({key_text(s.name)})"
@@ -140,3 +144,32 @@ def _vary(spec: Spec, r: Reader) -> None:
         if (r.ok(("sample",), ("audit", "vary", "sample", i))
                 and dataclasses.replace(s, name=spec.sample.name) == spec.sample):
             add(head, "has the same restrictions as the base sample; it would repeat it")
+
+
+def _not_a_regressor(name: str, names, spec: Spec) -> str:
+    if name == spec.outcome:
+        return "is the outcome; its lags are varied with [audit.vary] outcome_lags"
+    hint = closest(name, names)
+    return "is not a regressor of the model" + (
+        f" (did you mean {fmt(hint)}?)" if hint else
+        ("; regressors: " + ", ".join(dict.fromkeys(names)) if names else "; the model has none"))
+
+
+def _drop(spec: Spec, r: Reader, names) -> None:
+    """``[audit.vary] drop``: every name a regressor, and never one with a focus term
+    (a variant without the term could not judge it)."""
+    if not spec.vary.drop or not r.ok(("audit", "vary", "drop")):
+        return
+    shown = [list(d) for d in spec.vary.drop]
+    focus = set(spec.focus)
+    for names_dropped in spec.vary.drop:
+        for name in names_dropped:
+            if name not in names:
+                r.add("[audit.vary] drop", f"{fmt(name)} " + _not_a_regressor(name, names, spec),
+                      shown)
+                continue
+            hit = [label for var, _, label in spec.regressor_terms()
+                   if var == name and label in focus]
+            if hit:
+                r.add("[audit.vary] drop", f"{fmt(name)} holds the focus term "
+                      f"{', '.join(hit)}; a focus term cannot be dropped", shown)

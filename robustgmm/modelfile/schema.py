@@ -24,7 +24,7 @@ from ..options import DATA_EXTENSIONS
 from ..spec import Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
                      v_equations, v_errors, v_first_lag, v_form, v_lags, v_last_lag, v_name,
-                     v_labels, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
+                     v_drop_list, v_labels, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
                      v_transform)
 
 Path_ = tuple  # a key path: ("method", "steps"), ("model", "regressors", 2, "role"), ...
@@ -106,7 +106,10 @@ VARY = {
     "steps": Key("steps", v_steps), "form": Key("form", v_form),
     "first_lag": Key("first_lag", v_first_lag), "last_lag": Key("last_lag", v_last_lag),
     "time_effects": Key("time_effects", v_bool), "errors": Key("errors", v_errors),
-    "roles": TABLE, "sample": TABLE,
+    "outcome_lags": Key("outcome_lags", v_lags(
+        1, "a dynamic model needs at least one lag of the outcome, e.g. [1]")),
+    "drop": Key("drop", v_drop_list),
+    "roles": TABLE, "lags": TABLE, "sample": TABLE,
 }
 #: ``[audit.thresholds]`` keys → :class:`~robustgmm.spec.Thresholds` fields.
 THRESHOLDS = {f.name: Key(f.name, threshold_check(f.name)) for f in dataclasses.fields(Thresholds)}
@@ -345,6 +348,15 @@ class Reader:
                 if got is not None:
                     pairs.append((reg, got))
             values["roles"] = tuple(pairs)
+        if "lags" in table:
+            lags = self.table(table, "lags", "[audit.vary.lags]", path + ("lags",))
+            pairs = []
+            for reg, raw in lags.items():
+                got = self._vary_list(raw, v_lags(0, "0 is the current period"),
+                                      f"[audit.vary.lags] {key_text(reg)}", path + ("lags", reg))
+                if got is not None:
+                    pairs.append((reg, got))
+            values["lags"] = tuple(pairs)
         if "sample" in table:
             raw = table["sample"]
             if not isinstance(raw, list) or not all(isinstance(s, dict) for s in raw):

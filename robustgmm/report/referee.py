@@ -61,6 +61,12 @@ def value_phrase(setting: str, value: str) -> str:
         return "time effects" if value in ("true", "True") else "no time effects"
     if setting.startswith("role:"):
         return f"{setting[5:]} {value}"
+    if setting == "outcome_lags":
+        return f"outcome lags {value}"
+    if setting.startswith("lags:"):
+        return f"{setting[5:]} lags {value}"
+    if setting == "drop":
+        return "no regressor left out" if value == "[]" else f"{value} left out"
     if setting == "sample":
         return f"the sample {value}"
     return f"{setting} = {value}"

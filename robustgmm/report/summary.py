@@ -39,6 +39,8 @@ SETTING_PHRASES = {
     "time_effects": "time effects",
     "errors": "the standard errors",
     "sample": "the sample",
+    "outcome_lags": "the lags of the outcome",
+    "drop": "the regressors left out",
 }
 
 
@@ -89,6 +91,8 @@ def setting_phrase(column: str) -> str:
     """'the role of leverage' for a role column; the table above otherwise."""
     if column in SETTING_PHRASES:
         return SETTING_PHRASES[column]
+    if column.startswith("lags:"):
+        return f"the lags of {column[5:]}"
     if "role" in column.lower():
         name = column
         for token in ("roles", "role"):

@@ -76,6 +76,12 @@ def model_file_lines(changed: Mapping[str, str]) -> list[str]:
             out.append(f"[{_SECTION[setting]}] {setting} = {_toml_value(setting, value)}")
         elif setting.startswith("role:"):
             out.append(f'[[model.regressors]] name = "{setting[5:]}": role = "{value}"')
+        elif setting == "outcome_lags":
+            out.append(f"[model] outcome_lags = {value}")
+        elif setting.startswith("lags:"):
+            out.append(f'[[model.regressors]] name = "{setting[5:]}": lags = {value}')
+        elif setting == "drop":
+            out.append(f"remove the [[model.regressors]] of {value}")
         elif setting == "sample":
             out.append(f'[sample] the restrictions of the sample "{value}" '
                        "(from [[audit.vary.sample]])")

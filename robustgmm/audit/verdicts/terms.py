@@ -58,6 +58,9 @@ def _judge_term(term: str, c: _Context) -> TermVerdict:
     informative = np.ones(len(b), bool)
     if base is not None and base.std_error > 0 and math.isfinite(base.std_error):
         informative = ~(se > th["uninformative_se_ratio"] * base.std_error)
+    # variants whose lag structure or controls leave the term out do not estimate it:
+    # they are not counted for it (neither for nor against)
+    figures["without_term"] = int(len(c.judged_ids - set(by_id.index)))
     figures["informative"] = int(informative.sum())
     figures["uninformative_ids"] = [str(i) for i in acc.index[~informative]]
 
@@ -161,6 +164,10 @@ def _judge_term(term: str, c: _Context) -> TermVerdict:
     else:
         verdict = Verdict.ROBUST
     reason = _reason(term, verdict, base, figures, fired, c)
+    if figures["without_term"]:
+        k = figures["without_term"]
+        reason += (f" (counted over the variants that estimate the term; {k} acceptable "
+                   f"variant{'s' if k != 1 else ''} leave{'s' if k == 1 else ''} it out)")
     key = _key_driver(drivers)
     return TermVerdict(term=term, verdict=verdict, reason=reason,
                        summary=f"{term}: {verdict} — {reason}", base=base, figures=figures,
