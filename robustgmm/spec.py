@@ -117,8 +117,14 @@ class Regressor:
 class SampleFilter:
     """A structured sample restriction: nothing in it is evaluated.
 
-    Keeps periods in ``[period_from, period_to]`` and drops every unit that has any
-    row whose ``exclude_column`` value is in ``exclude_values``.
+    Keeps periods in ``[period_from, period_to]``, drops every unit that has any
+    row whose ``exclude_column`` value is in ``exclude_values``, and keeps only the
+    units whose observed ``keep_column`` values are all in ``keep_values`` (a
+    subgroup). ``split`` (only in ``[[audit.vary.sample]]``) names a column that is
+    constant within units: the audit replaces the sample by one subgroup per value
+    (:func:`robustgmm.audit.grid.resolve_splits`). A varied subgroup with fewer than
+    ``min_units`` units is skipped with that reason (``min_units`` changes no
+    estimate, so it is not part of the variant id).
     """
 
     name: str = "full sample"
@@ -126,18 +132,31 @@ class SampleFilter:
     period_to: int | None = None
     exclude_column: str | None = None
     exclude_values: tuple[Any, ...] = ()
+    keep_column: str | None = None
+    keep_values: tuple[Any, ...] = ()
+    split: str | None = None
+    min_units: int = 50
 
     def __post_init__(self):
         from .modelfile import checks as c
+        values = lambda v: () if len(v) == 0 else _seq(c.v_scalar_list)(v)  # noqa: E731
         _validate(self, {"name": c.v_name, "period_from": _optional(c.v_period),
                          "period_to": _optional(c.v_period),
-                         "exclude_column": _optional(c.v_name),
-                         "exclude_values": lambda v: () if len(v) == 0 else _seq(c.v_scalar_list)(v)})
+                         "exclude_column": _optional(c.v_name), "exclude_values": values,
+                         "keep_column": _optional(c.v_name), "keep_values": values,
+                         "split": _optional(c.v_name), "min_units": c.v_min_units})
 
     @property
     def is_full(self) -> bool:
         return (self.period_from is None and self.period_to is None
-                and self.exclude_column is None)
+                and self.exclude_column is None and self.keep_column is None
+                and self.split is None)
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The data columns the filter reads (exclude, keep, split)."""
+        return tuple(c for c in (self.exclude_column, self.keep_column, self.split)
+                     if c is not None)
 
 
 @dataclass(frozen=True)
@@ -340,13 +359,20 @@ def is_deterministic_label(label: str) -> bool:
 
 
 def sample_restrictions(sample: SampleFilter) -> dict:
-    """The restrictions of a sample filter, without its display name."""
-    return {
+    """The restrictions of a sample filter, without its display name. ``keep`` and
+    ``split`` enter only when set, so the ids of samples without them never move."""
+    out = {
         "period_from": sample.period_from,
         "period_to": sample.period_to,
         "exclude_column": sample.exclude_column,
         "exclude_values": list(sample.exclude_values),
     }
+    if sample.keep_column is not None:
+        out["keep_column"] = sample.keep_column
+        out["keep_values"] = list(sample.keep_values)
+    if sample.split is not None:
+        out["split"] = sample.split
+    return out
 
 
 def canonical_settings(spec: Spec) -> dict:

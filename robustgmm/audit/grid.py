@@ -293,6 +293,63 @@ def samples_of(spec: Spec) -> list[SampleFilter]:
     return out
 
 
+def resolve_splits(spec: Spec, frame=None) -> Spec:
+    """``spec`` with every ``split`` sample of ``[[audit.vary.sample]]`` replaced by one
+    subgroup per value of the split column (``keep = {column, values = [value]}``,
+    named ``"NAME: column = value"``, in sorted value order), so that the grid stays
+    a pure expansion. The column must be constant within each unit (a subgroup is a
+    set of units); otherwise, or when it is missing, the one-line error names the key.
+    ``frame``: the data (read from the model's data file when not given)."""
+    if not any(s.split is not None for s in spec.vary.samples):
+        return spec
+    from .. import data
+
+    if frame is None:
+        frame = data.read_frame(spec)
+    out: list[SampleFilter] = []
+    for i, s in enumerate(spec.vary.samples, start=1):
+        if s.split is None:
+            out.append(s)
+            continue
+        col = s.split
+        where = f"{spec.source}: [[audit.vary.sample]] #{i} ({s.name}) split = {col!r}"
+        if col not in frame.columns:
+            raise InputError(f"{where}: no such column in the data")
+        if s.keep_column is not None:
+            raise InputError(f"{where}: give split or keep in one sample, not both")
+        sub = frame[[spec.unit, col]].dropna()
+        per_unit = sub.groupby(spec.unit, sort=True)[col].nunique()
+        varying = per_unit[per_unit > 1]
+        if len(varying):
+            raise InputError(f"{where}: the column varies within units (unit "
+                             f"{varying.index[0]} has {int(varying.iloc[0])} values); split "
+                             "needs a column that is constant within each unit")
+        values = sorted({_plain(v) for v in sub[col]}, key=lambda v: (isinstance(v, str), v))
+        for v in values:
+            out.append(dataclasses.replace(s, name=f"{s.name}: {col} = {v}", split=None,
+                                           keep_column=col, keep_values=(v,)))
+    return dataclasses.replace(spec, vary=dataclasses.replace(spec.vary, samples=tuple(out)))
+
+
+def _plain(value: Any) -> Any:
+    """A data value as a plain Python scalar (whole floats as ints), so that the
+    subgroup's settings hash the same however the column was stored."""
+    value = value.item() if hasattr(value, "item") else value
+    if isinstance(value, float) and value.is_integer():
+        return int(value)
+    return value
+
+
+def subgroup_too_small(sample: SampleFilter, panel) -> str:
+    """The reason a varied subgroup is skipped ('' when it is large enough): fewer
+    than ``min_units`` units (default 50; common practice for a GMM sample, whose
+    clustered weight matrix needs many more units than instruments)."""
+    if sample.keep_column is None or panel.n_units >= sample.min_units:
+        return ""
+    return (f"sample {sample.name!r} has {panel.n_units} units, fewer than min_units = "
+            f"{sample.min_units}")
+
+
 def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
     """``sample_key -> Panel`` for every sample of the audit, each built once.
 
@@ -319,6 +376,9 @@ def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
             if key == sample_key(spec.sample):
                 raise  # the base sample must exist: that is bad input, not a variant
             panels[key] = f"sample {sample.name!r}: " + "; ".join(exc.problems)
+            continue
+        if key != sample_key(spec.sample):
+            panels[key] = subgroup_too_small(sample, panels[key]) or panels[key]
     return panels
 
 
@@ -512,5 +572,6 @@ def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
     Loads the data when ``panel`` (the base sample's panel) is not given.
     """
     check_base(spec)
+    spec = resolve_splits(spec)
     panels = load_panels(spec, panel)
     return plan_table(spec, plan(spec, panels))

@@ -153,13 +153,16 @@ def _exclude_mask(column: pd.Series, values) -> tuple[np.ndarray, list]:
 
 
 def apply_sample(frame: pd.DataFrame, spec, sample, where: str) -> pd.DataFrame:
-    """Keep periods in ``[period_from, period_to]`` and drop every unit with any row
-    whose ``exclude_column`` value is in ``exclude_values``."""
+    """Keep periods in ``[period_from, period_to]``, drop every unit with any row
+    whose ``exclude_column`` value is in ``exclude_values`` and keep only the units
+    whose observed ``keep_column`` values are all in ``keep_values``."""
     if sample is None or sample.is_full:
         return frame
     label = f"sample {sample.name!r}"
-    if sample.exclude_column is not None and sample.exclude_column not in frame.columns:
-        raise InputError(f"{where}: {label}: exclude column {sample.exclude_column!r} not found")
+    for kind, col in (("exclude", sample.exclude_column), ("keep", sample.keep_column),
+                      ("split", sample.split)):
+        if col is not None and col not in frame.columns:
+            raise InputError(f"{where}: {label}: {kind} column {col!r} not found")
     keep = np.ones(len(frame), dtype=bool)
     per = frame[spec.period].to_numpy()
     if sample.period_from is not None:
@@ -175,6 +178,19 @@ def apply_sample(frame: pd.DataFrame, spec, sample, where: str) -> pd.DataFrame:
                 f"{sample.exclude_column!r}; the filter would remove nothing")
         bad_units = pd.unique(frame.loc[hit, spec.unit])
         keep &= ~frame[spec.unit].isin(bad_units).to_numpy()
+    if sample.keep_column is not None:
+        # a subgroup: units whose observed values are all listed (missing ones ignored)
+        column = frame[sample.keep_column]
+        hit, absent = _exclude_mask(column, sample.keep_values)
+        if len(absent) == len(sample.keep_values):
+            raise InputError(
+                f"{where}: {label}: none of the kept values "
+                f"{', '.join(_show(v) for v in sample.keep_values)} occurs in column "
+                f"{sample.keep_column!r}; the subgroup would be empty")
+        outside = ~hit & column.notna().to_numpy()
+        bad_units = pd.unique(frame.loc[outside, spec.unit])
+        keep &= ~frame[spec.unit].isin(bad_units).to_numpy()
+        keep &= frame[spec.unit].isin(pd.unique(frame.loc[hit, spec.unit])).to_numpy()
     out = frame[keep]
     if len(out) == 0:
         lo, hi = int(per.min()), int(per.max())

@@ -43,8 +43,8 @@ def filter_columns(spec, samples=()) -> tuple[str, ...]:
     """Columns that sample filters need (base sample, then ``samples``)."""
     cols: dict[str, None] = {}
     for s in (spec.sample, *samples):
-        if s is not None and s.exclude_column is not None:
-            cols[s.exclude_column] = None
+        for col in (s.columns if s is not None else ()):
+            cols[col] = None
     return tuple(cols)
 
 

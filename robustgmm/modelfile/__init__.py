@@ -93,6 +93,12 @@ def _sample_to_dict(s: SampleFilter) -> dict:
         out["period_to"] = s.period_to
     if s.exclude_column is not None:
         out["exclude"] = {"column": s.exclude_column, "values": list(s.exclude_values)}
+    if s.keep_column is not None:
+        out["keep"] = {"column": s.keep_column, "values": list(s.keep_values)}
+    if s.split is not None:
+        out["split"] = s.split
+    if s.min_units != SampleFilter.min_units:
+        out["min_units"] = s.min_units
     return out
 
 

@@ -247,6 +247,12 @@ def v_name_list(v):
     return tuple(out)
 
 
+def v_min_units(v):
+    if not is_int(v) or v < 1:
+        raise Bad("must be a whole number of units, 1 or more")
+    return int(v)
+
+
 def v_drop_list(v):
     """A set of regressors to leave out (``[]`` leaves none out)."""
     if not isinstance(v, list):

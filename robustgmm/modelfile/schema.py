@@ -24,7 +24,7 @@ from ..options import DATA_EXTENSIONS
 from ..spec import Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
                      v_equations, v_errors, v_first_lag, v_form, v_lags, v_last_lag, v_name,
-                     v_drop_list, v_labels, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
+                     v_drop_list, v_labels, v_min_units, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
                      v_transform)
 
 Path_ = tuple  # a key path: ("method", "steps"), ("model", "regressors", 2, "role"), ...
@@ -73,6 +73,7 @@ SCHEMA: dict[Path_, Key | object] = {
     ("instruments", "extra"): Key("extra_instruments", v_name_list),
     ("sample", "name"): TABLE, ("sample", "period_from"): TABLE,
     ("sample", "period_to"): TABLE, ("sample", "exclude"): TABLE,
+    ("sample", "keep"): TABLE, ("sample", "split"): TABLE, ("sample", "min_units"): TABLE,
     ("audit", "focus"): Key("focus", v_name_list),
     ("audit", "alpha"): Key("alpha", v_prob),
     ("audit", "vary"): TABLE,
@@ -94,10 +95,18 @@ SAMPLE = {
     "period_from": Key("period_from", v_period, default=None),
     "period_to": Key("period_to", v_period, default=None),
     "exclude": TABLE,
+    "keep": TABLE,
+    "split": Key("split", v_name, default=None),
+    "min_units": Key("min_units", v_min_units, default=50),
 }
 EXCLUDE = {
     "column": Key("exclude_column", v_name, default=None, required=True),
     "values": Key("exclude_values", v_scalar_list, default=(), required=True),
+}
+#: ``keep = {column, values}``: a subgroup (the units whose values are all listed).
+KEEP = {
+    "column": Key("keep_column", v_name, default=None, required=True),
+    "values": Key("keep_values", v_scalar_list, default=(), required=True),
 }
 #: ``[audit.vary]`` keys → :class:`~robustgmm.spec.Vary` fields (each a list of values
 #: of the model-file key with the same check); ``roles`` and ``sample`` are tables.
@@ -132,7 +141,8 @@ def _printable(value) -> str:
                    for c in str(value))
 
 
-def describe_sample(pf, pt, column, values) -> str:
+def describe_sample(pf, pt, column, values, keep_column=None, keep_values=(),
+                    split=None) -> str:
     """The display name of an unnamed sample."""
     parts = []
     if pf is not None and pt is not None:
@@ -143,6 +153,10 @@ def describe_sample(pf, pt, column, values) -> str:
         parts.append(f"periods to {pt}")
     if column is not None:
         parts.append(f"excluding {_printable(column)} in {{{', '.join(map(_printable, values))}}}")
+    if keep_column is not None:
+        parts.append(f"{_printable(keep_column)} in {{{', '.join(map(_printable, keep_values))}}}")
+    if split is not None:
+        parts.append(f"by {_printable(split)}")
     return ", ".join(parts) if parts else "full sample"
 
 
@@ -314,19 +328,28 @@ class Reader:
         if pf is not None and pt is not None and pf > pt:
             self.add(f"{header} period_from = {pf}, period_to", "must not be before period_from",
                      pt, path + ("period_to",))
-        if "exclude" in table:
-            exclude = table["exclude"]
-            if not isinstance(exclude, dict):
-                self.add(f"{header} exclude",
-                         'must be a table: exclude = {column = "...", values = [...]}', exclude,
-                         path + ("exclude",))
+        for key, keys in (("exclude", EXCLUDE), ("keep", KEEP)):
+            if key not in table:
+                continue
+            sub = table[key]
+            if not isinstance(sub, dict):
+                self.add(f"{header} {key}",
+                         f'must be a table: {key} = {{column = "...", values = [...]}}', sub,
+                         path + (key,))
             else:
-                eh = f"{header} exclude"
-                self.unknown_keys(exclude, tuple(EXCLUDE), f"{where}.exclude", eh)
-                got.update(self.fields(exclude, EXCLUDE, eh, path + ("exclude",)))
+                eh = f"{header} {key}"
+                self.unknown_keys(sub, tuple(keys), f"{where}.{key}", eh)
+                got.update(self.fields(sub, keys, eh, path + (key,)))
+        if where == "sample" and got.get("split") is not None:
+            self.add(f"{header} split", "splits only a varied sample: put it in "
+                     "[[audit.vary.sample]] (the base sample is one sample)", got["split"],
+                     path + ("split",))
+            got["split"] = None
         if "name" not in got:
             got["name"] = describe_sample(pf, pt, got.get("exclude_column"),
-                                          got.get("exclude_values", ()))
+                                          got.get("exclude_values", ()),
+                                          got.get("keep_column"), got.get("keep_values", ()),
+                                          got.get("split"))
         return SampleFilter(**got)
 
     def vary(self, table: dict) -> Vary:
