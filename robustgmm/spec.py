@@ -106,11 +106,35 @@ class Regressor:
     name: str
     lags: tuple[int, ...] = (0,)
     role: str = "exogenous"
+    #: its own instrument window ``(first, last)`` (``last`` None = "all") and form,
+    #: used as given instead of the global ``[instruments]`` ones (None: the global
+    #: ones, with the predetermined shift); endogenous and predetermined only
+    instrument_lags: tuple[int, int | None] | None = None
+    instrument_form: str | None = None
 
     def __post_init__(self):
         from .modelfile import checks as c
         _validate(self, {"name": c.v_name, "lags": _seq(c.v_lags(0, "0 is the current period")),
-                         "role": c.v_role})
+                         "role": c.v_role, "instrument_lags": _optional(c.v_window),
+                         "instrument_form": _optional(c.v_form)})
+
+
+@dataclass(frozen=True)
+class GmmInstrument:
+    """An external GMM-style instrument (``[[instruments.gmm]]``): lagged levels of a
+    column that is not a regressor, in the transformed equation (lags ``first ..
+    last``), and in system GMM its difference dated ``first - 1`` in the level
+    equation, like the model's own GMM-style variables. ``lags``/``form`` None: the
+    global ``[instruments]`` window and form."""
+
+    name: str
+    lags: tuple[int, int | None] | None = None
+    form: str | None = None
+
+    def __post_init__(self):
+        from .modelfile import checks as c
+        _validate(self, {"name": c.v_name, "lags": _optional(c.v_window),
+                         "form": _optional(c.v_form)})
 
 
 @dataclass(frozen=True)
@@ -184,6 +208,8 @@ class Vary:
     outcome_lags: tuple[tuple[int, ...], ...] = ()
     lags: tuple[tuple[str, tuple[tuple[int, ...], ...]], ...] = ()
     drop: tuple[tuple[str, ...], ...] = ()
+    #: per GMM-style variable (the outcome or a regressor): instrument windows to try
+    instrument_lags: tuple[tuple[str, tuple[tuple[int, int | None], ...]], ...] = ()
 
     def __post_init__(self):
         from .modelfile import checks as c
@@ -196,6 +222,7 @@ class Vary:
             "outcome_lags": _each(_seq(c.v_lags(1, "a dynamic model needs at least one lag "
                                                 "of the outcome, e.g. [1]"))),
             "lags": _each(_lags_pair), "drop": _each(_seq(c.v_drop_list)),
+            "instrument_lags": _each(_window_pair),
         })
 
     def is_empty(self) -> bool:
@@ -246,6 +273,12 @@ class Spec:
     last_lag: int | None = None
     form: str = "per-period"
     extra_instruments: tuple[str, ...] = ()
+    #: the outcome's own instrument window and form (``[model] instrument_lags``,
+    #: ``instrument_form``); None: the global ``[instruments]`` ones
+    outcome_instrument_lags: tuple[int, int | None] | None = None
+    outcome_instrument_form: str | None = None
+    #: external GMM-style instruments (``[[instruments.gmm]]``)
+    gmm_instruments: tuple[GmmInstrument, ...] = ()
     sample: SampleFilter = field(default_factory=SampleFilter)
     focus: tuple[str, ...] = ()
     alpha: float = 0.05
@@ -273,6 +306,9 @@ class Spec:
             "errors": c.v_errors, "first_lag": c.v_first_lag,
             "last_lag": _optional(c.v_last_lag), "form": c.v_form,
             "extra_instruments": _seq(c.v_name_list),
+            "outcome_instrument_lags": _optional(c.v_window),
+            "outcome_instrument_form": _optional(c.v_form),
+            "gmm_instruments": _tuple_of(GmmInstrument, "GmmInstrument"),
             "sample": _instance(SampleFilter, "a SampleFilter"),
             "focus": _seq(c.v_name_list), "alpha": c.v_prob,
             "vary": _instance(Vary, "a Vary"),
@@ -288,6 +324,8 @@ class Spec:
             seen[reg.name] = None
         for name in self.extra_instruments:
             seen[name] = None
+        for inst in self.gmm_instruments:
+            seen[inst.name] = None
         return tuple(seen)
 
     def regressor_terms(self) -> tuple[tuple[str, int, str], ...]:
@@ -338,6 +376,14 @@ def _lags_pair(v):
     return (c.v_name(v[0]), _each(_seq(c.v_lags(0, "0 is the current period")))(v[1]))
 
 
+def _window_pair(v):
+    """One ``(variable, windows to try)`` pair of :attr:`Vary.instrument_lags`."""
+    from .modelfile import checks as c
+    if not (isinstance(v, (tuple, list)) and len(v) == 2):
+        raise c.Bad("must be a (variable name, windows) pair")
+    return (c.v_name(v[0]), _each(c.v_window)(v[1]))
+
+
 def term_label(name: str, lag: int) -> str:
     """``NAME[t]`` for lag 0, ``NAME[t-l]`` for lag l (the term labels of every output, docs/formats.md)."""
     return f"{name}[t]" if lag == 0 else f"{name}[t-{lag}]"
@@ -382,10 +428,10 @@ def canonical_settings(spec: Spec) -> dict:
     the sample's name) are left out, so the same model gives the same variant id,
     cache key and share group whatever it is called.
     """
-    return {
+    out = {
         "outcome": spec.outcome,
         "outcome_lags": list(spec.outcome_lags),
-        "regressors": [[r.name, list(r.lags), r.role] for r in spec.regressors],
+        "regressors": [_regressor_settings(r) for r in spec.regressors],
         "time_effects": bool(spec.time_effects),
         "equations": spec.equations,
         "transform": spec.transform,
@@ -397,6 +443,29 @@ def canonical_settings(spec: Spec) -> dict:
         "extra_instruments": list(spec.extra_instruments),
         "sample": sample_restrictions(spec.sample),
     }
+    # per-variable windows and external GMM-style instruments enter only when set, so
+    # the ids of models without them never move
+    own = _window_settings(spec.outcome_instrument_lags, spec.outcome_instrument_form)
+    if own:
+        out["outcome_instruments"] = own
+    if spec.gmm_instruments:
+        out["gmm_instruments"] = [[g.name, _window_settings(g.lags, g.form)]
+                                  for g in spec.gmm_instruments]
+    return out
+
+
+def _window_settings(lags, form) -> dict:
+    out: dict = {}
+    if lags is not None:
+        out["lags"] = [lags[0], "all" if lags[1] is None else lags[1]]
+    if form is not None:
+        out["form"] = form
+    return out
+
+
+def _regressor_settings(r: Regressor) -> list:
+    own = _window_settings(r.instrument_lags, r.instrument_form)
+    return [r.name, list(r.lags), r.role] + ([own] if own else [])
 
 
 def settings_of(spec: Spec) -> Mapping[str, Any]:

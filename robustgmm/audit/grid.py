@@ -71,7 +71,8 @@ from ..spec import SampleFilter, Spec, canonical_settings, sample_restrictions  
 #: exists only when its key is in ``[audit.vary]``, so adding a dimension never
 #: changes the columns (or ids) of a grid that does not use it.
 DIMENSIONS = ("outcome_lags", "lags", "drop", "equations", "transform", "steps", "errors",
-              "form", "first_lag", "last_lag", "time_effects", "roles", "samples")
+              "form", "first_lag", "last_lag", "time_effects", "instrument_lags", "roles",
+              "samples")
 #: the dimensions that replace one Spec field by a listed value
 SCALAR_DIMENSIONS = ("equations", "transform", "steps", "errors", "form", "first_lag",
                      "last_lag", "time_effects")
@@ -174,6 +175,13 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
         values = list(getattr(vary, field))
         if values:
             dims.append((field, values, scalar(field)))
+    for name, windows in vary.instrument_lags:
+        if name != spec.outcome and name not in [g.name for g in spec.gmm_instruments]:
+            known("[audit.vary.instrument_lags]", name)
+
+        def apply_window(changes, value, name=name):
+            changes.setdefault("_windows", {})[name] = value
+        dims.append((f"instrument_lags:{name}", list(windows), apply_window))
     for name, roles in vary.roles:
         known("[audit.vary.roles]", name)
 
@@ -191,16 +199,66 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
 
 def _apply(spec: Spec, changes: dict) -> Spec:
     """The variant spec: the recorded changes applied to the base spec (roles and lags
-    per regressor, then the regressors left out)."""
+    per regressor, then the regressors left out, then the instrument windows).
+
+    A window equal to the one the variable gets from the global settings is stored
+    as no own window, and an exogenous regressor keeps none (it instruments itself),
+    so that the same estimation always has the same settings (and id)."""
     changes = dict(changes)
     roles = changes.pop("_roles", None) or {}
     lags = changes.pop("_lags", None) or {}
     drop = set(changes.pop("_drop", ()) or ())
+    windows = changes.pop("_windows", None) or {}
     if roles or lags or drop:
         changes["regressors"] = tuple(
             dataclasses.replace(r, role=roles.get(r.name, r.role), lags=lags.get(r.name, r.lags))
             for r in spec.regressors if r.name not in drop)
-    return dataclasses.replace(spec, **changes)
+    out = dataclasses.replace(spec, **changes)
+    if windows or roles:
+        out = _with_windows(out, windows)
+    return out
+
+
+def default_window(spec: Spec, role: str) -> tuple[int, int | None]:
+    """The window a GMM-style variable gets from the global ``[instruments]`` settings
+    (predetermined regressors one lag sooner; see the core's design)."""
+    if role == "predetermined":
+        last = None if spec.last_lag is None else max(spec.last_lag - 1, 1)
+        return (max(spec.first_lag - 1, 1), last)
+    return (spec.first_lag, spec.last_lag)
+
+
+def _with_windows(spec: Spec, windows: Mapping[str, Any]) -> Spec:
+    def own(window, role):
+        return None if window is None or window == default_window(spec, role) else window
+
+    regs = []
+    for r in spec.regressors:
+        window = windows.get(r.name, r.instrument_lags)
+        regs.append(dataclasses.replace(
+            r, instrument_lags=None if r.role == "exogenous" else own(window, r.role)))
+    gmm = tuple(dataclasses.replace(g, lags=own(windows.get(g.name, g.lags), "external"))
+                for g in spec.gmm_instruments)
+    return dataclasses.replace(
+        spec, regressors=tuple(regs), gmm_instruments=gmm,
+        outcome_instrument_lags=own(windows.get(spec.outcome, spec.outcome_instrument_lags),
+                                    "outcome"))
+
+
+def window_of(spec: Spec, name: str) -> tuple[int, int | None] | None:
+    """The instrument window variable ``name`` has in ``spec`` (its own, else the
+    global one), or None when it is not GMM-style there (exogenous or dropped)."""
+    if name == spec.outcome:
+        return spec.outcome_instrument_lags or default_window(spec, "outcome")
+    for g in spec.gmm_instruments:
+        if g.name == name:
+            return g.lags or default_window(spec, "external")
+    for r in spec.regressors:
+        if r.name == name:
+            if r.role == "exogenous":
+                return None
+            return r.instrument_lags or default_window(spec, r.role)
+    return None
 
 
 def _base_value(spec: Spec, column: str) -> Any:
@@ -212,6 +270,8 @@ def _base_value(spec: Spec, column: str) -> Any:
         return next(r.lags for r in spec.regressors if r.name == name)
     if column == "drop":
         return ()
+    if column.startswith("instrument_lags:"):
+        return window_of(spec, column[len("instrument_lags:"):])
     if column == "sample":
         return spec.sample
     return getattr(spec, column)
@@ -225,6 +285,9 @@ def _shown(column: str, value: Any) -> Any:
     if column in ("outcome_lags", "drop") or column.startswith("lags:"):
         from ..modelfile.checks import fmt
         return fmt(list(value), limit=10_000)
+    if column.startswith("instrument_lags:"):
+        from ..modelfile.checks import window_text
+        return "none" if value is None else window_text(value)
     return _display(value)
 
 

@@ -22,8 +22,10 @@ Instruments (all zero where a row or a source value is missing):
 
 * transformed equation, lagged levels (GMM style): for the outcome and endogenous
   regressors lags ``first_lag .. last_lag``; for predetermined regressors the window
-  starts and ends one lag sooner. Per-period: one column per (row period, lag);
-  collapsed: one column per lag (Roodman 2009).
+  starts and ends one lag sooner; a variable with its own ``instrument_lags`` (and
+  external ``[[instruments.gmm]]`` columns) uses its own window and form.
+  Per-period: one column per (row period, lag); collapsed: one column per lag
+  (Roodman 2009).
 * level equation, lagged differences: ``Δv`` dated ``first_lag - 1`` periods back
   (one period less for predetermined regressors); per-period or collapsed. Deeper
   lags are redundant given the transformed-equation instruments (Blundell & Bond 1998).
@@ -236,26 +238,42 @@ class Design:
 
     # ------------------------------------------------------------ instruments
     def _gmm_windows(self):
-        """(variable, first lag, last lag) of each lagged-level instrument set.
+        """(variable, first lag, last lag, collapsed) of each lagged-level instrument set.
 
         The outcome and endogenous regressors use lags ``first_lag .. last_lag``;
         predetermined ones one lag sooner, ``max(first_lag − 1, 1) .. max(last_lag
         − 1, 1)`` (lag 0 would be correlated with the differenced shock); exogenous
-        ones instrument themselves (no window)."""
+        ones instrument themselves (no window). A variable with its own window
+        (``instrument_lags``) uses it as given, and its own form when set; external
+        GMM-style instruments (``[[instruments.gmm]]``) follow, with their own
+        window or the global one. ``invalid_reason`` refuses own windows that start
+        at lag 1 for the outcome or an endogenous regressor."""
         spec = self.spec
         first = spec.first_lag
         last = spec.last_lag if spec.last_lag is not None else self.P
-        out = [(spec.outcome, first, last)]
+
+        def window(name, own, form, lo, hi):
+            collapsed = self.collapsed if form is None else parse(Form, form) == Form.COLLAPSED
+            if own is not None:
+                lo, hi = own[0], own[1] if own[1] is not None else self.P
+            return (name, lo, hi, collapsed)
+
+        out = [window(spec.outcome, spec.outcome_instrument_lags, spec.outcome_instrument_form,
+                      first, last)]
         for reg in spec.regressors:
             match parse(Role, reg.role):
                 case Role.ENDOGENOUS:
-                    out.append((reg.name, first, last))
+                    out.append(window(reg.name, reg.instrument_lags, reg.instrument_form,
+                                      first, last))
                 case Role.PREDETERMINED:
-                    out.append((reg.name, max(first - 1, 1), max(last - 1, 1)))
+                    out.append(window(reg.name, reg.instrument_lags, reg.instrument_form,
+                                      max(first - 1, 1), max(last - 1, 1)))
                 case Role.EXOGENOUS:
                     pass
                 case other:
                     raise ValueError(f"unknown role {other!r}")
+        for inst in spec.gmm_instruments:
+            out.append(window(inst.name, inst.lags, inst.form, first, last))
         return out
 
     def _instrument_layout(self):
@@ -279,9 +297,7 @@ class Design:
         # rows per period with at least one unit, used to drop empty columns early
         complete = self._complete(values)
         rows_t, rows_l = self._rows_from_complete(complete)
-        collapsed = self.collapsed
-
-        for var, lo, hi in self._gmm_windows():
+        for var, lo, hi, collapsed in self._gmm_windows():
             vi = self.var_index[var]
             group = f"levels of {var}"
             lag_col = {}
@@ -301,7 +317,7 @@ class Design:
                                     f"{var} lag {lag} for period {self.panel.periods[t]}")
                     entry(TRANSFORMED, t)["lev"].append((vi, src, c))
         if self.system:
-            for var, lo, _ in self._gmm_windows():
+            for var, lo, _, collapsed in self._gmm_windows():
                 vi = self.var_index[var]
                 dlag = lo - 1
                 group = LEVEL_GROUP

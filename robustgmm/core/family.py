@@ -59,6 +59,16 @@ def invalid_reason(spec: Spec) -> str:
     such variants with it."""
     if spec.first_lag < 2:
         return FIRST_LAG_REASON.replace("first_lag = 1", f"first_lag = {spec.first_lag}")
+    # an own window starting at lag 1 is valid only for a predetermined regressor
+    # (and an external instrument): for the outcome or an endogenous regressor the
+    # level at t-1 is correlated with the transformed error (Arellano & Bond 1991)
+    own = [(spec.outcome, spec.outcome_instrument_lags)]
+    own += [(r.name, r.instrument_lags) for r in spec.regressors if r.role == "endogenous"]
+    for name, window in own:
+        if window is not None and window[0] < 2:
+            return (f"{name}: instrument_lags starts at lag {window[0]}, but the level at "
+                    "t-1 of the outcome or an endogenous regressor is correlated with the "
+                    "transformed error: start at 2 or later")
     if (parse(Equations, spec.equations) == Equations.SYSTEM
             and parse(Steps, spec.steps) == Steps.ONE
             and parse(Errors, spec.errors) == Errors.CONVENTIONAL):

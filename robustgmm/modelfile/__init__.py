@@ -102,6 +102,19 @@ def _sample_to_dict(s: SampleFilter) -> dict:
     return out
 
 
+def _window(window) -> list:
+    return [window[0], "all" if window[1] is None else window[1]]
+
+
+def _regressor_to_dict(r) -> dict:
+    out: dict[str, Any] = {"name": r.name, "lags": list(r.lags), "role": r.role}
+    if r.instrument_lags is not None:
+        out["instrument_lags"] = _window(r.instrument_lags)
+    if r.instrument_form is not None:
+        out["instrument_form"] = r.instrument_form
+    return out
+
+
 def spec_to_dict(spec: Spec) -> dict:
     """The model-file dict of a spec: ``spec_from_dict(spec_to_dict(s), source=s.source) == s``.
 
@@ -119,8 +132,7 @@ def spec_to_dict(spec: Spec) -> dict:
             "outcome": spec.outcome,
             "outcome_lags": list(spec.outcome_lags),
             "time_effects": spec.time_effects,
-            "regressors": [{"name": r.name, "lags": list(r.lags), "role": r.role}
-                           for r in spec.regressors],
+            "regressors": [_regressor_to_dict(r) for r in spec.regressors],
         },
         "method": {"equations": spec.equations, "transform": spec.transform,
                    "steps": spec.steps, "errors": spec.errors},
@@ -133,6 +145,14 @@ def spec_to_dict(spec: Spec) -> dict:
     }
     if not spec.regressors:
         del d["model"]["regressors"]
+    if spec.outcome_instrument_lags is not None:
+        d["model"]["instrument_lags"] = _window(spec.outcome_instrument_lags)
+    if spec.outcome_instrument_form is not None:
+        d["model"]["instrument_form"] = spec.outcome_instrument_form
+    if spec.gmm_instruments:
+        d["instruments"]["gmm"] = [
+            {"name": g.name, **({"lags": _window(g.lags)} if g.lags is not None else {}),
+             **({"form": g.form} if g.form is not None else {})} for g in spec.gmm_instruments]
     vary: dict[str, Any] = {}
     v = spec.vary
     for key in ("equations", "transform", "steps", "form", "first_lag", "time_effects", "errors"):
@@ -144,6 +164,9 @@ def spec_to_dict(spec: Spec) -> dict:
         vary["drop"] = [list(names) for names in v.drop]
     if v.lags:
         vary["lags"] = {name: [list(lags) for lags in lists] for name, lists in v.lags}
+    if v.instrument_lags:
+        vary["instrument_lags"] = {name: [_window(w) for w in windows]
+                                   for name, windows in v.instrument_lags}
     if v.last_lag:
         vary["last_lag"] = ["all" if x is None else x for x in v.last_lag]
     if v.roles:

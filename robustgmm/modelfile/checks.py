@@ -247,6 +247,29 @@ def v_name_list(v):
     return tuple(out)
 
 
+def v_window(v):
+    """An instrument lag window ``[first, last]``: whole numbers, ``last`` at least
+    ``first`` or ``"all"``; returned as ``(first, last)`` with ``None`` for "all"."""
+    if isinstance(v, tuple):
+        v = ["all" if x is None else x for x in v]
+    if not isinstance(v, list) or len(v) != 2:
+        raise Bad('must be a window [first, last], e.g. [2, 4] or [2, "all"]')
+    first, last = v
+    if not is_int(first) or first < 1:
+        raise Bad("the first lag must be a whole number, 1 or more")
+    if last == "all":
+        return (int(first), None)
+    if not is_int(last) or last < first:
+        raise Bad(f'the last lag must be a whole number of at least {first}, or "all"')
+    return (int(first), int(last))
+
+
+def window_text(window) -> str:
+    """A window as the model file writes it: ``[2, 4]``, ``[2, "all"]``."""
+    first, last = window
+    return fmt([first, "all" if last is None else last])
+
+
 def v_min_units(v):
     if not is_int(v) or v < 1:
         raise Bad("must be a whole number of units, 1 or more")

@@ -67,6 +67,19 @@ def _columns(spec: Spec, r: Reader) -> None:
         else:
             seen[reg.name] = i
     model_vars = {spec.outcome, *seen}
+    gmm_seen: set = set()
+    for i, inst in enumerate(spec.gmm_instruments, start=1):
+        header = f"[[instruments.gmm]] #{i} ({key_text(inst.name)}) name"
+        if inst.name in model_vars:
+            add(header, "is a model variable (its lags are instruments already); list "
+                "only columns that are not regressors", inst.name)
+        elif inst.name in (spec.unit, spec.period):
+            add(header, "is the unit or period column", inst.name)
+        elif inst.name in spec.extra_instruments:
+            add(header, "is also in [instruments] extra; list it once", inst.name)
+        elif inst.name in gmm_seen:
+            add(header, "is listed twice", inst.name)
+        gmm_seen.add(inst.name)
     for name in spec.extra_instruments:
         if name in model_vars:
             add("[instruments] extra", f"{fmt(name)} is already a model variable; "
@@ -134,6 +147,7 @@ def _vary(spec: Spec, r: Reader) -> None:
         if reg not in names:
             add(f"[audit.vary.lags] {key_text(reg)}", _not_a_regressor(reg, names, spec))
     _drop(spec, r, names)
+    _windows(spec, r)
     seen = [spec.sample.name]
     for i, s in enumerate(vary.samples, start=1):
         head = f"[[audit.vary.sample]] #{i} ({key_text(s.name)})"
@@ -173,3 +187,41 @@ def _drop(spec: Spec, r: Reader, names) -> None:
             if hit:
                 r.add("[audit.vary] drop", f"{fmt(name)} holds the focus term "
                       f"{', '.join(hit)}; a focus term cannot be dropped", shown)
+
+
+def _gmm_style_names(spec: Spec) -> set:
+    """Variables whose lagged levels are instruments in some variant: the outcome,
+    every regressor whose role (or a role the audit tries) is not exogenous, and the
+    external ``[[instruments.gmm]]`` columns."""
+    varied = dict(spec.vary.roles)
+    out = {spec.outcome, *(g.name for g in spec.gmm_instruments)}
+    for reg in spec.regressors:
+        if any(role != "exogenous" for role in (reg.role, *varied.get(reg.name, ()))):
+            out.add(reg.name)
+    return out
+
+
+def _windows(spec: Spec, r: Reader) -> None:
+    """Own instrument windows only for GMM-style variables (an exogenous regressor
+    instruments itself), and ``[audit.vary.instrument_lags]`` only for those."""
+    gmm = _gmm_style_names(spec)
+    for i, reg in enumerate(spec.regressors, start=1):
+        for key in ("instrument_lags", "instrument_form"):
+            if getattr(reg, key) is not None and reg.name not in gmm:
+                r.add(f"[[model.regressors]] #{i} ({key_text(reg.name)}) {key}",
+                      f"{reg.name} is exogenous (it instruments itself); an instrument window "
+                      "or form applies to endogenous or predetermined regressors")
+    names = [reg.name for reg in spec.regressors]
+    for name, _windows_tried in spec.vary.instrument_lags:
+        where = f"[audit.vary.instrument_lags] {key_text(name)}"
+        if name in gmm:
+            continue
+        if name in names:
+            r.add(where, f"{name} is exogenous (it instruments itself); instrument windows "
+                  "are varied for the outcome and endogenous or predetermined regressors")
+        else:
+            options = sorted(gmm)
+            hint = closest(name, options)
+            r.add(where, "is not the outcome, a GMM-style regressor or a [[instruments.gmm]] "
+                  "column" + (f" (did you mean {fmt(hint)}?)" if hint else
+                              f"; choose one of {', '.join(options)}"))

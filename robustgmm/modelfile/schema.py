@@ -21,10 +21,10 @@ from pathlib import Path
 from typing import Any, Callable
 
 from ..options import DATA_EXTENSIONS
-from ..spec import Regressor, SampleFilter, Spec, Thresholds, Vary
+from ..spec import GmmInstrument, Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
                      v_equations, v_errors, v_first_lag, v_form, v_lags, v_last_lag, v_name,
-                     v_drop_list, v_labels, v_min_units, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
+                     v_drop_list, v_labels, v_min_units, v_window, v_name_list, v_period, v_prob, v_role, v_scalar_list, v_steps,
                      v_transform)
 
 Path_ = tuple  # a key path: ("method", "steps"), ("model", "regressors", 2, "role"), ...
@@ -62,6 +62,8 @@ SCHEMA: dict[Path_, Key | object] = {
     ("model", "outcome_lags"): Key("outcome_lags", v_lags(
         1, "a dynamic model needs at least one lag of the outcome, e.g. [1]")),
     ("model", "time_effects"): Key("time_effects", v_bool),
+    ("model", "instrument_lags"): Key("outcome_instrument_lags", v_window),
+    ("model", "instrument_form"): Key("outcome_instrument_form", v_form),
     ("model", "regressors"): TABLE,
     ("method", "equations"): Key("equations", v_equations),
     ("method", "transform"): Key("transform", v_transform),
@@ -71,6 +73,7 @@ SCHEMA: dict[Path_, Key | object] = {
     ("instruments", "last_lag"): Key("last_lag", v_last_lag),
     ("instruments", "form"): Key("form", v_form),
     ("instruments", "extra"): Key("extra_instruments", v_name_list),
+    ("instruments", "gmm"): TABLE,
     ("sample", "name"): TABLE, ("sample", "period_from"): TABLE,
     ("sample", "period_to"): TABLE, ("sample", "exclude"): TABLE,
     ("sample", "keep"): TABLE, ("sample", "split"): TABLE, ("sample", "min_units"): TABLE,
@@ -88,6 +91,14 @@ REGRESSOR = {
     "name": Key("name", v_name, required=True),
     "lags": Key("lags", v_lags(0, "0 is the current period"), default=(0,)),
     "role": Key("role", v_role, default="exogenous"),
+    "instrument_lags": Key("instrument_lags", v_window, default=None),
+    "instrument_form": Key("instrument_form", v_form, default=None),
+}
+#: ``[[instruments.gmm]]`` keys → :class:`~robustgmm.spec.GmmInstrument` fields.
+GMM_INSTRUMENT = {
+    "name": Key("name", v_name, required=True),
+    "lags": Key("lags", v_window, default=None),
+    "form": Key("form", v_form, default=None),
 }
 #: ``[sample]`` / ``[[audit.vary.sample]]`` keys → :class:`~robustgmm.spec.SampleFilter`.
 SAMPLE = {
@@ -118,7 +129,7 @@ VARY = {
     "outcome_lags": Key("outcome_lags", v_lags(
         1, "a dynamic model needs at least one lag of the outcome, e.g. [1]")),
     "drop": Key("drop", v_drop_list),
-    "roles": TABLE, "lags": TABLE, "sample": TABLE,
+    "roles": TABLE, "lags": TABLE, "instrument_lags": TABLE, "sample": TABLE,
 }
 #: ``[audit.thresholds]`` keys → :class:`~robustgmm.spec.Thresholds` fields.
 THRESHOLDS = {f.name: Key(f.name, threshold_check(f.name)) for f in dataclasses.fields(Thresholds)}
@@ -266,6 +277,10 @@ class Reader:
                 regressors = self.regressors(table.get("regressors", MISSING))
                 if regressors is not MISSING:
                     fields["regressors"] = regressors
+            elif section == "instruments" and "gmm" in table:
+                got = self.gmm_instruments(table["gmm"])
+                if got is not MISSING:
+                    fields["gmm_instruments"] = got
             elif section == "audit":
                 self.audit_tables(table, fields)
         if "data_file" in fields:
@@ -319,6 +334,23 @@ class Reader:
             got = self.fields(table, REGRESSOR, header, path + (i,))
             if "name" in got:
                 out.append(Regressor(**got))
+        return tuple(out)
+
+    def gmm_instruments(self, value) -> Any:
+        path = ("instruments", "gmm")
+        if not isinstance(value, list) or not value or not all(isinstance(g, dict) for g in value):
+            self.add("[instruments] gmm", "must be a list of [[instruments.gmm]] tables with "
+                     'name (and lags = [first, last], form)', value, path)
+            return MISSING
+        out = []
+        for i, table in enumerate(value, start=1):
+            label = table.get("name")
+            header = (f"[[instruments.gmm]] #{i} ({key_text(label)})" if isinstance(label, str)
+                      else f"[[instruments.gmm]] #{i}")
+            self.unknown_keys(table, tuple(GMM_INSTRUMENT), "instruments.gmm", header)
+            got = self.fields(table, GMM_INSTRUMENT, header, path + (i,))
+            if "name" in got:
+                out.append(GmmInstrument(**got))
         return tuple(out)
 
     def sample(self, table: dict, header: str, where: str, path: Path_) -> SampleFilter:
@@ -380,6 +412,16 @@ class Reader:
                 if got is not None:
                     pairs.append((reg, got))
             values["lags"] = tuple(pairs)
+        if "instrument_lags" in table:
+            head = "[audit.vary.instrument_lags]"
+            windows = self.table(table, "instrument_lags", head, path + ("instrument_lags",))
+            pairs = []
+            for name, raw in windows.items():
+                got = self._vary_list(raw, v_window, f"{head} {key_text(name)}",
+                                      path + ("instrument_lags", name))
+                if got is not None:
+                    pairs.append((name, got))
+            values["instrument_lags"] = tuple(pairs)
         if "sample" in table:
             raw = table["sample"]
             if not isinstance(raw, list) or not all(isinstance(s, dict) for s in raw):

@@ -65,6 +65,8 @@ def value_phrase(setting: str, value: str) -> str:
         return f"outcome lags {value}"
     if setting.startswith("lags:"):
         return f"{setting[5:]} lags {value}"
+    if setting.startswith("instrument_lags:"):
+        return f"{setting[len('instrument_lags:'):]} instrumented by lags {value}"
     if setting == "drop":
         return "no regressor left out" if value == "[]" else f"{value} left out"
     if setting == "sample":

@@ -93,6 +93,8 @@ def setting_phrase(column: str) -> str:
         return SETTING_PHRASES[column]
     if column.startswith("lags:"):
         return f"the lags of {column[5:]}"
+    if column.startswith("instrument_lags:"):
+        return f"the instrument window of {column[len('instrument_lags:'):]}"
     if "role" in column.lower():
         name = column
         for token in ("roles", "role"):

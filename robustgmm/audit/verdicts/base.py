@@ -80,6 +80,10 @@ def model_file_lines(changed: Mapping[str, str]) -> list[str]:
             out.append(f"[model] outcome_lags = {value}")
         elif setting.startswith("lags:"):
             out.append(f'[[model.regressors]] name = "{setting[5:]}": lags = {value}')
+        elif setting.startswith("instrument_lags:"):
+            name = setting[len("instrument_lags:"):]
+            out.append(f'the instrument_lags of {name} = {value} ([model] for the outcome, '
+                       f'its [[model.regressors]] or [[instruments.gmm]] table otherwise)')
         elif setting == "drop":
             out.append(f"remove the [[model.regressors]] of {value}")
         elif setting == "sample":
