@@ -38,11 +38,13 @@ inconclusive; in one staff hours came out robust); the demo uses one fixed seed,
 - ``clinics`` — 250 fictional rural clinics, 2014-2022: waiting times with a
   *predetermined* regressor (nurse staffing reacts to last year's waiting-time
   shock, not this year's), estimated with *forward orthogonal deviations*; the
-  audit varies the transform and the regressor's role.
+  audit varies the transform, the regressor's role and the lag structure (a second
+  lag of the outcome and a lag of staffing, both zero in the process).
 - ``orchards`` — 300 fictional fruit cooperatives in three regions, 2010-2019, an
   *unbalanced panel with gaps*: the irrigation effect is zero in the highland region
-  and positive elsewhere, so *sample filters* (dropping a region, a later start)
-  move its estimate (the audit reports the spread as a caution).
+  and positive elsewhere, so *sample filters* (dropping a region, a later start,
+  one subgroup per region with ``split``) move its estimate (the highland subgroup,
+  where the effect is zero, makes the irrigation verdict fragile).
 """
 from __future__ import annotations
 
@@ -226,7 +228,8 @@ def simulate_clinics(seed: int) -> pd.DataFrame:
 CLINICS_MODEL = """\
 # Example: invented scenario (fictional rural clinics) with a known data-generating
 # process; see robustgmm/demo.py and truth.json.
-# Shows: a predetermined regressor and forward orthogonal deviations.
+# Shows: a predetermined regressor, forward orthogonal deviations and the lag
+# structure in the audit (a second lag of the outcome, a lag of the regressor).
 
 [data]
 file = "clinics.csv"
@@ -264,6 +267,10 @@ focus = ["wait_days[t-1]", "nurses[t]"]
 [audit.vary]
 transform = ["fd", "fod"]
 equations = ["difference", "system"]
+outcome_lags = [[1], [1, 2]]   # the referee's first question: a second lag of the outcome
+
+[audit.vary.lags]
+nurses = [[0], [0, 1]]         # and last year's staffing
 
 [audit.vary.roles]
 nurses = ["predetermined", "endogenous"]
@@ -360,6 +367,10 @@ exclude = { column = "region", values = ["highland"] }
 [[audit.vary.sample]]      # only the later years
 name = "from 2013"
 period_from = 2013
+
+[[audit.vary.sample]]      # one subgroup per region (each needs 50 cooperatives)
+name = "by region"
+split = "region"
 """
 
 ORCHARDS = Scenario(

@@ -88,8 +88,12 @@ def test_example_models_use_the_features_they_show():
     assert clinics.transform == "fod"
     assert {r.name: r.role for r in clinics.regressors}["nurses"] == "predetermined"
     orchards = read_model(EXAMPLES / "orchards" / "orchards.toml")
-    assert [s.name for s in orchards.vary.samples] == ["without highland", "from 2013"]
+    assert [s.name for s in orchards.vary.samples] == ["without highland", "from 2013",
+                                                       "by region"]
     assert orchards.vary.samples[0].exclude_column == "region"
+    assert orchards.vary.samples[2].split == "region"
+    assert clinics.vary.outcome_lags == ((1,), (1, 2))
+    assert clinics.vary.lags == (("nurses", ((0,), (0, 1))),)
 
 
 # -- the committed demo output ------------------------------------------------
