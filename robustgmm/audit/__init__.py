@@ -70,8 +70,9 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     runner.check_on_error(on_error)
     t0 = time.perf_counter()
     grid.check_base(spec)
-    spec = grid.resolve_splits(spec)  # one subgroup sample per value of a split column
-    panels = grid.load_panels(spec)
+    frame = grid.read_for_splits(spec)
+    spec = grid.resolve_splits(spec, frame)  # one subgroup sample per value of a split column
+    panels = grid.load_panels(spec, frame=frame)
     t_load = time.perf_counter()
     # counts come with each estimation; planning here only does the cheap checks
     planned = grid.plan(spec, panels, counts=False)

@@ -356,6 +356,15 @@ def samples_of(spec: Spec) -> list[SampleFilter]:
     return out
 
 
+def read_for_splits(spec: Spec):
+    """The data frame when ``spec`` has a ``split`` sample (read once, for the split
+    and then for every sample's panel), else None."""
+    if not any(s.split is not None for s in spec.vary.samples):
+        return None
+    from .. import data
+    return data.read_frame(spec)
+
+
 def resolve_splits(spec: Spec, frame=None) -> Spec:
     """``spec`` with every ``split`` sample of ``[[audit.vary.sample]]`` replaced by one
     subgroup per value of the split column (``keep = {column, values = [value]}``,
@@ -413,10 +422,11 @@ def subgroup_too_small(sample: SampleFilter, panel) -> str:
             f"{sample.min_units}")
 
 
-def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
+def load_panels(spec: Spec, panel=None, frame=None) -> dict[str, Any]:
     """``sample_key -> Panel`` for every sample of the audit, each built once.
 
-    ``panel``, when given, is the panel of the base sample. A sample that leaves no
+    ``panel``, when given, is the panel of the base sample; ``frame``, when given,
+    the data as :func:`robustgmm.data.read_frame` reads them (else they are read). A sample that leaves no
     data maps to the one-line reason (a string) instead of a panel, so that its
     variants are skipped with that reason rather than stopping the audit.
     Problems with the data file itself (missing file, bad columns) are raised as
@@ -425,7 +435,6 @@ def load_panels(spec: Spec, panel=None) -> dict[str, Any]:
     from .. import data
 
     panels: dict[str, Any] = {}
-    frame = None
     for sample in samples_of(spec):
         key = sample_key(sample)
         if panel is not None and key == sample_key(spec.sample):
@@ -635,6 +644,7 @@ def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
     Loads the data when ``panel`` (the base sample's panel) is not given.
     """
     check_base(spec)
-    spec = resolve_splits(spec)
-    panels = load_panels(spec, panel)
+    frame = read_for_splits(spec)
+    spec = resolve_splits(spec, frame)
+    panels = load_panels(spec, panel, frame=frame)
     return plan_table(spec, plan(spec, panels))
