@@ -353,6 +353,29 @@ def model_line(spec) -> str:
     return text
 
 
+def own_windows_text(spec) -> str:
+    """' (y: lags 2-4; x: lags 3-all, collapsed; external z: lags 2-all)': the
+    variables with their own instrument window or form, and the external GMM-style
+    instruments ('' when there are none)."""
+    def window(lags, form):
+        first, last = lags if lags is not None else (spec.first_lag, spec.last_lag)
+        text = f"lags {first}-{'all' if last is None else last}" if lags is not None else ""
+        return ", ".join(t for t in (text, form or "") if t)
+
+    parts = []
+    if spec.outcome_instrument_lags is not None or spec.outcome_instrument_form is not None:
+        parts.append(f"{spec.outcome}: "
+                     + window(spec.outcome_instrument_lags, spec.outcome_instrument_form))
+    for r in spec.regressors:
+        if r.role != "exogenous" and (r.instrument_lags is not None
+                                      or r.instrument_form is not None):
+            parts.append(f"{r.name}: " + window(r.instrument_lags, r.instrument_form))
+    for g in spec.gmm_instruments:
+        own = window(g.lags, g.form)
+        parts.append(f"external {g.name}" + (f": {own}" if own else ""))
+    return f" ({'; '.join(parts)})" if parts else ""
+
+
 def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
     """A compact plain-text summary of one fit (our own layout)."""
     from .options import CovarianceKind, Steps, Transform, label
@@ -364,6 +387,7 @@ def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
         f"{spec.equations} GMM, {label(Transform, spec.transform)}, "
         f"{label(Steps, spec.steps)}; instruments: lags {spec.first_lag}-"
         f"{'all' if spec.last_lag is None else spec.last_lag}, {spec.form}"
+        + own_windows_text(spec)
         + ("; time effects" if spec.time_effects else ""),
         f"Sample: {spec.sample.name}; {c.observations} observations, {c.units} units, "
         f"{c.periods} periods; {c.instruments} instruments "

@@ -173,3 +173,12 @@ def test_an_own_window_from_lag_1_for_the_outcome_is_refused(folder):
     spec = _spec(folder, vary={"instrument_lags": {"x": [[1, 3]]}})
     v = grid.expand(spec)[1]
     assert v.status == "skipped" and "x: instrument_lags starts at lag 1" in v.reason
+
+
+def test_the_fit_summary_names_own_windows_and_external_instruments(folder):
+    from robustgmm.cli import own_windows_text
+    spec = _spec(folder, x={"instrument_lags": [3, "all"], "instrument_form": "collapsed"},
+                 model={"instrument_lags": [2, 4]}, instruments={"gmm": [{"name": "z"}]})
+    assert own_windows_text(spec) == (" (y: lags 2-4; x: lags 3-all, collapsed; "
+                                      "external z)")
+    assert own_windows_text(_spec(folder)) == ""
