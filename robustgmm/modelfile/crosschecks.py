@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 
-from ..spec import Spec, term_labels
+from ..spec import Spec, term_label, term_labels
 from .checks import closest, fmt, key_text
 from .schema import RESERVED_NAMES, Reader
 
@@ -33,6 +33,11 @@ def _labels(spec: Spec, r: Reader) -> None:
     if not spec.labels or not r.ok(("model",), ("labels",)):
         return
     terms = [label for _, _, label in spec.regressor_terms()] + ["const"]
+    # terms that only some variants have (a varied lag structure) can be labelled too
+    terms += [term_label(spec.outcome, lag) for lags in spec.vary.outcome_lags for lag in lags]
+    terms += [term_label(name, lag) for name, lists in spec.vary.lags
+              for lags in lists for lag in lags]
+    terms = list(dict.fromkeys(terms))
     for term, _ in spec.labels:
         if term in terms or term.startswith("period["):
             continue

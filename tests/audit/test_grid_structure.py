@@ -182,3 +182,11 @@ def test_verdict_counts_only_variants_that_estimate_the_term(tmp_path):
     # x[t-1] has true coefficient 0: the variants that estimate it agree it is small
     est = result.estimates[result.estimates["term"] == "x[t-1]"]
     assert (np.abs(est["estimate"]) < 3 * est["std_error"]).all()
+
+
+def test_a_term_only_some_variants_have_can_be_labelled(tmp_path):
+    spec = make_spec(tmp_path, {"outcome_lags": [[1], [1, 2]], "lags": {"x": [[0], [0, 1]]}},
+                     labels={"y[t-2]": "Orders two years back", "x[t-1]": "Lagged x"})
+    assert dict(spec.labels)["y[t-2]"] == "Orders two years back"
+    with pytest.raises(InputError, match=r"\[labels\] y\[t-3\]: is not a term of the model"):
+        make_spec(tmp_path, {"outcome_lags": [[1], [1, 2]]}, labels={"y[t-3]": "no"})

@@ -182,3 +182,21 @@ def test_the_fit_summary_names_own_windows_and_external_instruments(folder):
     assert own_windows_text(spec) == (" (y: lags 2-4; x: lags 3-all, collapsed; "
                                       "external z)")
     assert own_windows_text(_spec(folder)) == ""
+
+
+def test_every_new_key_reads_from_a_toml_model_file(folder):
+    from helpers_toml import spec_to_toml
+    from robustgmm.modelfile import read_model
+    spec = _spec(folder, x={"instrument_lags": [3, "all"], "instrument_form": "collapsed"},
+                 model={"instrument_lags": [2, 4], "instrument_form": "per-period"},
+                 instruments={"gmm": [{"name": "z", "lags": [2, 3], "form": "collapsed"}]},
+                 vary={"outcome_lags": [[1], [1, 2]], "drop": [[], ["w"]],
+                       "lags": {"x": [[0], [0, 1]]},
+                       "instrument_lags": {"x": [[2, 3], [3, "all"]], "z": [[2, 4]]},
+                       "sample": [{"name": "low", "keep": {"column": "unit",
+                                                           "values": [1, 2, 3]},
+                                   "min_units": 2}]})
+    path = folder / "all.toml"
+    path.write_text(spec_to_toml(spec))
+    back = read_model(path)
+    assert dataclasses.replace(back, source=spec.source) == spec
