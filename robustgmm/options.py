@@ -105,6 +105,23 @@ class Effect(enum.StrEnum):
     INFORMATION = "information"
 
 
+class DropTarget(enum.StrEnum):
+    """What dropping units tries to overturn for one focus term (column ``target`` of
+    influence.csv): the sign of the estimate; its significance at alpha (lost when
+    the base is significant, gained when it is not); a significant estimate of the
+    opposite sign."""
+    SIGN = "sign"
+    SIGNIFICANCE = "significance"
+    OPPOSITE_SIGNIFICANT = "opposite_significant"
+
+
+class InfluenceScope(enum.StrEnum):
+    """Which models the dropping-units analysis covers (``[audit] influence``)."""
+    NONE = "none"
+    BASE = "base"
+    ALL = "all"
+
+
 LABELS: dict[Any, str] = {
     Equations.DIFFERENCE: "difference GMM",
     Equations.SYSTEM: "system GMM",
@@ -124,6 +141,9 @@ LABELS: dict[Any, str] = {
     CovarianceKind.CONVENTIONAL: "conventional",
     CovarianceKind.WINDMEIJER: "Windmeijer-corrected",
     CovarianceKind.WINDMEIJER_ITERATED: "Windmeijer-corrected, iterated",
+    DropTarget.SIGN: "sign reversed",
+    DropTarget.SIGNIFICANCE: "significance changed",
+    DropTarget.OPPOSITE_SIGNIFICANT: "significant with the opposite sign",
 }
 
 E = TypeVar("E", bound=enum.Enum)

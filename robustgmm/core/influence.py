@@ -238,8 +238,9 @@ class UnitSums:
         """The exact refit without the units at positions ``dropped`` (``weights``:
         their weights instead of 0, for derivative checks)."""
         dropped = np.asarray(dropped, dtype=np.int64)
-        red = self._reduced(dropped, weights)
-        one, sol, inputs = self._solve(red)
+        return self._refit_of(*self._solve(self._reduced(dropped, weights)))
+
+    def _refit_of(self, one, sol, inputs) -> Refit:
         vcov = covariance.estimator(self.steps, self.errors)(inputs)
         vcov = 0.5 * (vcov + vcov.T)
         se = np.sqrt(np.clip(np.diag(vcov), 0, None))
@@ -251,9 +252,15 @@ class UnitSums:
     def influence(self, dropped=()) -> np.ndarray:
         """``∂b/∂w_i`` for every unit (N, K) of the model without ``dropped``
         (module docstring); zero for dropped units and units without rows."""
+        return self.state(dropped)[1]
+
+    def state(self, dropped=()) -> tuple[Refit, np.ndarray]:
+        """The exact refit without ``dropped`` and the influence ``∂b/∂w_i`` (N, K) of
+        every unit on it (one solve for both)."""
         dropped = np.asarray(dropped, dtype=np.int64)
         red = self._reduced(dropped)
         one, sol, inputs = self._solve(red)
+        refit = self._refit_of(one, sol, inputs)
         w = red.w
         Q, q = red.zx, red.zy
         zx, zy = self.zx, self.zy
@@ -265,7 +272,7 @@ class UnitSums:
         forms = self._h_forms(AQ, np.repeat(a1[:, None], self.K, axis=1))
         d1 = (np.einsum("nlk,l->nk", zx, a1) - forms + g1 @ AQ) @ one.bread
         if self.steps == Steps.ONE:
-            return d1 * w[:, None]
+            return refit, d1 * w[:, None]
         b2, b_prev = sol.beta, sol.beta_prev
         a2 = sol.weight @ (q - Q @ b2)
         WQ = sol.weight @ Q
@@ -278,7 +285,7 @@ class UnitSums:
             out = direct + d1 @ D.T
         else:  # iterated: at the fixed point b = f(b), db = (I − D)⁻¹ (direct part)
             out = direct @ np.linalg.inv(np.eye(self.K) - D).T
-        return out * w[:, None]
+        return refit, out * w[:, None]
 
     def _h_forms(self, P, Qv) -> np.ndarray:
         task = _HForms(self.prob, P, Qv)
