@@ -89,6 +89,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="exit with code 3 when a focus term is fragile")
     p.add_argument("--force", action="store_true",
                    help="write into an existing non-empty folder that robustgmm did not create")
+    add_scheduler_option(p)
 
     p = sub.add_parser("report", help="rebuild the report of an audit output folder")
     p.add_argument("dir", metavar="DIR", help="an audit output folder")
@@ -104,6 +105,33 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--quick", action="store_true", help="small workloads only")
     p.add_argument("--out", metavar="DIR", default=None, help="where to write the bench report")
     return parser
+
+
+def add_scheduler_option(p) -> None:
+    """``--scheduler`` of the commands that run many estimations (audit; the hook
+    for other such commands: add this option and open :func:`cluster_backend`)."""
+    p.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                   help="run the estimations on the dask.distributed cluster of this "
+                        "scheduler (tcp://HOST:PORT; default: the DASK_SCHEDULER_ADDRESS "
+                        "environment variable, then [run] scheduler in the model file)")
+
+
+@contextlib.contextmanager
+def cluster_backend(args, model: Path):
+    """The joblib backend name for a run: "dask" (connected to the scheduler named by
+    ``--scheduler``, ``DASK_SCHEDULER_ADDRESS`` or ``[run] scheduler``, in that order)
+    or None (local workers). Unreachable schedulers, missing workers and other
+    package versions on the workers are one-line input errors (exit 2)."""
+    from .audit import cluster
+    from .modelfile import read_run
+    target = cluster.resolve(getattr(args, "scheduler", None), read_run(model).scheduler,
+                             str(model))
+    if target is None:
+        yield None
+        return
+    address, where = target
+    with cluster.connect(address, where):
+        yield "dask"
 
 
 # ---------------------------------------------------------------------------
@@ -541,20 +569,33 @@ def cmd_audit(args) -> int:
                     f"(column duplicate_of)" if dups else ""))
         return EXIT_OK
     check_audit_inputs(Path(args.out), spec, Path(args.model))
-    out = check_output_folder(args.out, args.force)
-    if spec.vary.is_empty():
-        print(nothing_varied_note(spec), file=sys.stderr, flush=True)
+    with contextlib.ExitStack() as stack:
+        # the cluster first: an unreachable scheduler leaves no output folder behind
+        backend = stack.enter_context(cluster_backend(args, Path(args.model)))
+        out = check_output_folder(args.out, args.force)
+        if spec.vary.is_empty():
+            print(nothing_varied_note(spec), file=sys.stderr, flush=True)
+        result = _run_audit(spec, out, args, backend)
+    return _after_audit(result, out, args)
+
+
+def _run_audit(spec, out: Path, args, backend):
     from .audit import audit as run_audit, write_audit
     from .output import FolderLock
 
     with FolderLock(out, "audit"):  # one audit per folder, for the whole run
+        kw = {} if backend is None else {"backend": backend}
         result = run_audit(spec, jobs=args.jobs,
                            cache_dir=None if args.no_cache else out / ".cache",
-                           progress=sys.stderr.isatty())
+                           progress=sys.stderr.isatty(), **kw)
         try:
             write_audit(result, out, model_file=Path(args.model), report=_report_builder())
         except OSError as exc:
             raise _cannot_write(args.out, exc) from None
+    return result
+
+
+def _after_audit(result, out: Path, args) -> int:
     run = (getattr(result, "manifest", None) or {}).get("run", {})
     if run.get("cache_write_errors"):
         print(f"robustgmm: note: {run['cache_write_errors']} cache entries could not be "

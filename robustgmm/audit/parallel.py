@@ -24,6 +24,7 @@ import shutil
 import tempfile
 import threading
 import time
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable, Sequence
 
@@ -86,29 +87,48 @@ def _limit_worker_blas(parent_pid: int) -> None:
     _LIMITED_PIDS.add(pid)
 
 
+def _is_dask(backend_obj) -> bool:
+    return any(t.__name__ == "DaskDistributedBackend" for t in type(backend_obj).__mro__)
+
+
 def _default_is_loky() -> bool:
     """True unless the caller activated another joblib backend (e.g. dask)."""
     return _is_loky(joblib.parallel.get_active_backend()[0])
 
 
 @contextlib.contextmanager
-def _backend_context(backend: str | None):
+def _backend_context(backend: str | None, shared: Sequence = ()):
     """The joblib configuration of a run.
 
     ``backend=None`` keeps whatever backend the caller activated (e.g. dask through
     ``joblib.parallel_config``) and otherwise uses loky. With loky, BLAS threads per
     worker are capped at :data:`BLAS_THREADS` (joblib sets the usual thread-count
     environment variables in the worker processes), so workers never oversubscribe
-    the cores.
+    the cores. With ``backend="dask"`` the objects in ``shared`` (the panels) are
+    scattered to every worker once when the block starts; joblib's dask backend then
+    sends each task a reference to them instead of a copy (it matches arguments by
+    identity).
     """
+    client = None
     if backend is None:
         active, _ = joblib.parallel.get_active_backend()
         backend = "loky" if _is_loky(active) else None
+        if _is_dask(active):  # the caller's dask client, with the repairs below
+            backend, client = "dask", active.client
     if backend is None:
         yield _backend_name(joblib.parallel.get_active_backend()[0])
     elif backend == "loky":
         with joblib.parallel_config(backend="loky", inner_max_num_threads=BLAS_THREADS):
             yield "loky"
+    elif backend == "dask":
+        from .cluster import WORKER_WAIT_SECONDS, dask_backend, share_with_workers
+        # workers lost all at once (restarted by their nannies, or a batch queue
+        # replacing them) get time to come back before joblib gives up
+        with joblib.parallel_config(backend=dask_backend(), client=client,
+                                    wait_for_workers_timeout=WORKER_WAIT_SECONDS):
+            share_with_workers(joblib.parallel.get_active_backend()[0],
+                               [obj for obj in shared if not isinstance(obj, str)])
+            yield backend
     else:
         with joblib.parallel_config(backend=backend):
             yield backend
@@ -123,8 +143,13 @@ def _parallel(n_jobs: int) -> joblib.Parallel:
     # results stream back as they finish, so each is cached at once (resume);
     # memory-mapped arrays go into this run's own folder (see memmap_folder)
     kw = {"temp_folder": str(memmap_folder())} if _default_is_loky() and n_jobs != 1 else {}
+    # joblib's dask backend never reports a failed task to an unordered generator
+    # (joblib 1.6: the error skips the completion callback, so the map waits
+    # forever): in plan order there, heaviest groups first as everywhere
+    order = "generator" if _is_dask(joblib.parallel.get_active_backend()[0]) \
+        else "generator_unordered"
     try:
-        return joblib.Parallel(n_jobs=n_jobs, return_as="generator_unordered", **kw)
+        return joblib.Parallel(n_jobs=n_jobs, return_as=order, **kw)
     except ValueError:  # a backend without unordered generators
         return joblib.Parallel(n_jobs=n_jobs, return_as="generator", **kw)
 
@@ -210,12 +235,37 @@ def worker_count(n_jobs: int, n_tasks: int, panel=None) -> tuple[int, str | None
 _WATCHED: set[int] = set()
 
 
-def in_worker(parent_pid: int) -> None:
-    """Set up this process once when it runs a task for ``parent_pid``: BLAS threads
-    and a watchdog that ends the worker when the parent is gone."""
-    _limit_worker_blas(parent_pid)
+@dataclass(frozen=True)
+class Parent:
+    """The process that runs an audit, as its tasks see it: its id (a worker on this
+    machine watches it) and its package versions (a dask worker checks its own
+    against them, :func:`robustgmm.audit.cluster.check_worker_versions`)."""
+
+    pid: int
+    versions: tuple = ()
+
+    @classmethod
+    def here(cls) -> "Parent":
+        from .cluster import versions
+        return cls(os.getpid(), tuple(sorted(versions().items())))
+
+
+def in_worker(parent: "int | Parent") -> None:
+    """Set up this process once when it runs a task for ``parent``: BLAS threads and
+    a watchdog that ends the worker when the parent is gone. In a dask worker: the
+    version check instead of the watchdog (the parent may run on another machine,
+    where its process id means nothing, and the cluster outlives it)."""
+    parent_pid = parent if isinstance(parent, int) else parent.pid
     pid = os.getpid()
-    if pid == parent_pid or pid in _WATCHED:
+    if pid == parent_pid:
+        return
+    from . import cluster
+    if cluster.in_dask_worker():
+        cluster.check_worker_versions(dict(getattr(parent, "versions", ())))
+        _limit_worker_blas(parent_pid)
+        return
+    _limit_worker_blas(parent_pid)
+    if pid in _WATCHED:
         return
     _WATCHED.add(pid)
     threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True,

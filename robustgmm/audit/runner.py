@@ -325,7 +325,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     # the heaviest groups first, so parallel workers finish close together (the order
     # of results does not depend on it)
     pending.sort(key=lambda g: -_group_weight(g, _panel_of(g, panels)))
-    tasks = _Tasks(panels, fit, sample, on_error, os.getpid())
+    tasks = _Tasks(panels, fit, sample, on_error, parallel.Parent.here())
     outcomes.bar = _progress_bar(progress, total=len(todo), initial=len(outcomes.by_id))
     try:
         n_workers, backend_used, capped = _dispatch(pending, tasks, outcomes, jobs, backend)
@@ -455,7 +455,7 @@ class _Tasks:
     fit: Callable | None
     sample: Callable | None
     on_error: str
-    parent: int  # the process of the run (workers watch it)
+    parent: Any  # the run's process: workers watch it, dask workers check its versions
 
     def _args(self, group, marker):
         return ([v.id for v in group], [v.spec for v in group], _panel_of(group, self.panels),
@@ -487,7 +487,9 @@ def _dispatch(pending: list, tasks: _Tasks, outcomes: _Outcomes, jobs: int | Non
             n_jobs = 1
     if not pending:
         return 1, "in-process", None
-    with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
+    # the panels go to a dask cluster once, not with every task
+    shared = list(tasks.panels.values())
+    with parallel._backend_context(backend, shared) as backend_used, parallel._blas_limit():
         # never more workers than tasks, cores or the free memory holds
         n_workers, capped = parallel.worker_count(n_jobs, len(pending),
                                                   _panel_of(pending[0], tasks.panels))

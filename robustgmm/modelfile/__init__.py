@@ -31,9 +31,10 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
 from ..errors import InputError
 from ..spec import SampleFilter, Spec
 from .crosschecks import cross_checks
+from .run import read_run  # noqa: F401  ([run]: how to run, not what to estimate)
 from .schema import SECTIONS, VARY_KEYS, Reader  # noqa: F401  (SECTIONS, VARY_KEYS: re-exported)
 
-__all__ = ["read_model", "spec_from_dict", "spec_to_dict", "SECTIONS", "VARY_KEYS"]
+__all__ = ["read_model", "read_run", "spec_from_dict", "spec_to_dict", "SECTIONS", "VARY_KEYS"]
 
 
 def spec_from_dict(d: dict, base_dir=None, source: str = "<dict>") -> Spec:
@@ -55,6 +56,13 @@ def spec_from_dict(d: dict, base_dir=None, source: str = "<dict>") -> Spec:
 
 def read_model(path) -> Spec:
     """Read a TOML model file; the data file is resolved relative to its folder."""
+    path = Path(path)
+    return spec_from_dict(load_toml(path), base_dir=path.parent, source=str(path))
+
+
+def load_toml(path) -> dict:
+    """The parsed TOML of a model file; a missing, unreadable, non-UTF-8 or
+    ill-formed file is one :class:`InputError` line naming it (and the line)."""
     path = Path(path)
     source = str(path)
     if not path.exists():
@@ -82,7 +90,7 @@ def read_model(path) -> Spec:
             raise InputError(f"{source}: line {m.group(1)}, column {m.group(2)}: "
                              f"TOML syntax error: {msg}") from None
         raise InputError(f"{source}: TOML syntax error: {msg}") from None
-    return spec_from_dict(d, base_dir=path.parent, source=source)
+    return d
 
 
 def _sample_to_dict(s: SampleFilter) -> dict:

@@ -84,6 +84,8 @@ SCHEMA: dict[Path_, Key | object] = {
     # [labels]: free keys, one per term of the model ("x[t]" = "Leverage")
     ("labels", "*"): TABLE,
     ("report", "stars"): Key("stars", v_bool),
+    # [run]: where to run, not what to estimate; read and checked by modelfile/run.py
+    ("run", "scheduler"): TABLE,
 }
 
 #: ``[[model.regressors]]`` keys → :class:`~robustgmm.spec.Regressor` fields.
@@ -283,6 +285,9 @@ class Reader:
                     fields["gmm_instruments"] = got
             elif section == "audit":
                 self.audit_tables(table, fields)
+            elif section == "run":
+                from .run import check_run
+                check_run(table, self)
         if "data_file" in fields:
             file = fields["data_file"]
             fields["data_file"] = Path(file) if base_dir is None else Path(base_dir) / file

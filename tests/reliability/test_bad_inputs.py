@@ -189,6 +189,8 @@ MODEL_CASES = [
     model_case("empty label", add('[labels]\n"x[t]" = ""'), '[labels] x[t] = ""', "non-empty text"),
     model_case("report stars not true or false", add('[report]\nstars = "yes"'),
                '[report] stars = "yes"', "must be true or false"),
+    model_case("run scheduler not an address", add('[run]\nscheduler = "login1"'),
+               '[run] scheduler = "login1"', "tcp://HOST:PORT", command="audit"),
 ]
 
 DATA_CASES = [
