@@ -51,7 +51,6 @@ from __future__ import annotations
 
 import hashlib
 import math
-import os
 import shutil
 import sys
 import time
