@@ -159,7 +159,14 @@ def connect(address: str, where: str = "--scheduler",
                                  f"{worker_seconds:.0f} s); start workers that connect to "
                                  "it") from None
             here = versions()
-            for worker, there in sorted(client.run(_worker_versions).items()):
+            try:
+                answers = client.run(_worker_versions)
+            except Exception as exc:  # noqa: BLE001 - e.g. robustgmm not importable there
+                reason = " ".join(str(exc).split()) or type(exc).__name__
+                raise InputError(f"{address}: the workers could not run robustgmm's version "
+                                 f"check ({type(exc).__name__}: {reason}); install the same "
+                                 "robustgmm, numpy and scipy on every worker") from None
+            for worker, there in sorted(answers.items()):
                 text = mismatch(here, there)
                 if text is not None:
                     raise version_error(address, worker, text)
