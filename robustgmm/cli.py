@@ -435,6 +435,14 @@ def format_fit_summary(spec, panel, result, all_terms: bool = False) -> str:
                      f"{_num(t.std_error, 10, 4)}  {_num(t.z, 8, 2)}  {_p(t.p_value)}")
     if hidden:
         lines.append(f"  ({hidden} period dummies not shown; use --all-terms or --json)")
+    if result.long_run:
+        lines += ["", "Long-run effects: sum of a regressor's coefficients / (1 - sum of the "
+                  "autoregressive coefficients); delta-method standard errors"]
+        width = max([len("term")] + [len(t.label) for t in result.long_run])
+        for t in result.long_run:
+            lines.append(f"  {t.label:<{width}}  {_num(t.estimate, 10, 4)}  "
+                         f"{_num(t.std_error, 10, 4)}  {_num(t.z, 8, 2)}  {_p(t.p_value)}"
+                         + (f"  ({t.reason})" if t.reason else ""))
 
     lines += test_block(result)
     if result.warnings:

@@ -123,7 +123,8 @@ VARIANTS = Table("variants.csv", (
 
 ESTIMATES = Table("estimates.csv", (
     Column("variant", "text", "variant id"),
-    Column("term", "text", "term label: NAME[t], NAME[t-1], const, period[1984]"),
+    Column("term", "text", "term label: NAME[t], NAME[t-1], const, period[1984], and the "
+           "long-run effect NAME[long-run] of each regressor (after the coefficients)"),
     Column("estimate", "float", "coefficient"),
     Column("std_error", "float", "standard error (the variant's std_error_kind)"),
     Column("z", "float", "estimate / std_error"),
@@ -171,7 +172,7 @@ FILES = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json", "manifes
 TRUTH_FILE = "truth.json"
 
 #: Keys of the JSON of ``robustgmm fit --json`` (:meth:`FitResult.to_dict`).
-FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings")
+FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings", "long_run")
 FIT_TERM_KEYS = ("estimate", "std_error", "z", "p_value")
 FIT_TEST_KEYS = ("ar1", "ar2", "sargan", "hansen", "difference_hansen")
 FIT_COUNT_KEYS = ("observations", "units", "instruments", "periods", "parameters",

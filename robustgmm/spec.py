@@ -389,6 +389,20 @@ def term_label(name: str, lag: int) -> str:
     return f"{name}[t]" if lag == 0 else f"{name}[t-{lag}]"
 
 
+LONG_RUN = "long-run"
+
+
+def long_run_label(name: str) -> str:
+    """``NAME[long-run]``: the long-run effect of regressor ``NAME`` (its coefficients'
+    sum over one minus the sum of the autoregressive coefficients, :mod:`robustgmm.core.longrun`)."""
+    return f"{name}[{LONG_RUN}]"
+
+
+def long_run_labels(spec: "Spec") -> tuple[str, ...]:
+    """The long-run labels of the model's regressors, in order."""
+    return tuple(dict.fromkeys(long_run_label(reg.name) for reg in spec.regressors))
+
+
 def period_label(period: int) -> str:
     return f"period[{int(period)}]"
 

@@ -27,7 +27,7 @@ from .. import __version__
 from ..atomic import atomic_write_text
 from .grid import canonical_json, canonical_settings
 
-CACHE_FORMAT = 2
+CACHE_FORMAT = 3  # 3: records hold the long-run effects
 
 
 def environment() -> dict:

@@ -96,9 +96,13 @@ def fit_record(result, spec) -> dict:
 
     Adds the sum of the autoregressive coefficients with its standard error
     ``sqrt(1' V 1)`` from the variant's covariance when the outcome has several lags.
+    The long-run effects (``NAME[long-run]``) follow the coefficients in ``terms``
+    (so estimates.csv has them for every variant); one that is not defined has NaN
+    values, and its reason is among the fit's warnings.
     """
     terms = [{"term": t.label, "estimate": _num(t.estimate), "std_error": _num(t.std_error),
-              "z": _num(t.z), "p_value": _num(t.p_value)} for t in result.terms]
+              "z": _num(t.z), "p_value": _num(t.p_value)}
+             for t in tuple(result.terms) + tuple(getattr(result, "long_run", ()))]
     counts = result.counts
     record = {
         "terms": terms,

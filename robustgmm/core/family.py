@@ -34,7 +34,7 @@ from ..data import Panel
 from ..errors import EstimationError, InputError
 from ..options import Equations, Errors, Steps, parse
 from ..spec import Spec, canonical_settings, settings_of
-from . import covariance, diagnostics
+from . import covariance, diagnostics, longrun
 from .design import Design
 from .engine import MomentEngine
 from .problem import FinalSums, GMMProblem, NotSubset, SumS, efficient_gmm
@@ -224,6 +224,9 @@ def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
     for label, b, s in zip(d.x_labels, beta, se):
         z = b / s if s > 0 else math.nan
         terms.append(TermEstimate(label, float(b), float(s), float(z), diagnostics.p_normal(z)))
+    # long-run effects Σβ/(1 − Σρ), delta method on the reported covariance
+    long_run, lr_warns = longrun.long_run_effects(spec, d.x_labels, beta, vcov)
+    warns += lr_warns
     units = int(d.unit_has_rows.sum())
     counts = Counts(
         observations=d.n_rows[1] if d.system else d.n_rows[0],
@@ -252,6 +255,7 @@ def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
         diagnostics={"windmeijer_d": inputs._d, "beta_one_step": one.beta,
                      "vcov_one_step_robust": one.v_robust, "sigma2": one.sigma2,
                      "redundant_time_moments": prob.redundant_time_moments},
+        long_run=long_run,
     )
 
 

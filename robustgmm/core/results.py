@@ -52,6 +52,14 @@ def _array(value):
     return value
 
 
+def _term_dict(t) -> dict:
+    out = {"estimate": _clean(t.estimate), "std_error": _clean(t.std_error),
+           "z": _clean(t.z), "p_value": _clean(t.p_value)}
+    if t.reason is not None:
+        out["reason"] = t.reason
+    return out
+
+
 @dataclass(frozen=True)
 class TermEstimate:
     label: str
@@ -59,6 +67,8 @@ class TermEstimate:
     std_error: float
     z: float
     p_value: float
+    #: why a derived term (a long-run effect) has no estimate; None otherwise
+    reason: str | None = None
 
 
 @dataclass(frozen=True)
@@ -123,8 +133,12 @@ class FitResult:
     vcov: np.ndarray
     settings: Mapping[str, Any] = field(default_factory=dict)
     diagnostics: Mapping[str, Any] = field(default_factory=dict)
+    #: long-run effects ``NAME[long-run]`` (:mod:`.longrun`), derived from ``terms``
+    #: and ``vcov``; not part of ``terms`` (``vcov`` is the coefficients' covariance)
+    long_run: tuple[TermEstimate, ...] = ()
 
     def __post_init__(self):
+        object.__setattr__(self, "long_run", tuple(self.long_run))
         vc = np.array(self.vcov, dtype=float)
         vc.setflags(write=False)
         object.__setattr__(self, "vcov", vc)
@@ -146,15 +160,16 @@ class FitResult:
         return np.array([t.std_error for t in self.terms])
 
     def term(self, label: str) -> TermEstimate:
-        for t in self.terms:
+        for t in self.terms + self.long_run:
             if t.label == label:
                 return t
         raise KeyError(f"no term {label!r}; terms are {', '.join(self.labels)}")
 
     def to_frame(self) -> pd.DataFrame:
-        """Coefficient table: one row per term."""
+        """Coefficient table: one row per term, then the long-run effects."""
         return pd.DataFrame(
-            [(t.label, t.estimate, t.std_error, t.z, t.p_value) for t in self.terms],
+            [(t.label, t.estimate, t.std_error, t.z, t.p_value)
+             for t in self.terms + self.long_run],
             columns=["term", "estimate", "std_error", "z", "p_value"],
         ).set_index("term")
 
@@ -176,7 +191,9 @@ class FitResult:
         order), ``std_error_kind``, ``tests`` (ar1, ar2, sargan, hansen → statistic,
         p_value, df, or null where the test is not defined; ``difference_hansen``:
         group → test), ``counts``, ``settings``, ``warnings``, ``vcov`` (the K × K
-        covariance of the standard errors, rows in term order) and ``diagnostics``.
+        covariance of the standard errors, rows in term order), ``diagnostics`` and
+        ``long_run`` (label → estimate, std_error, z, p_value and, where not defined,
+        reason).
         """
         tests = {name: (t.to_dict() if t is not None else None) for name, t in self.tests.items()}
         tests["difference_hansen"] = {g: t.to_dict() for g, t in self.difference_hansen.items()}
@@ -194,6 +211,7 @@ class FitResult:
                        "transformed_rows": c.transformed_rows, "level_rows": c.level_rows},
             "settings": dict(self.settings),
             "warnings": list(self.warnings),
+            "long_run": {t.label: _term_dict(t) for t in self.long_run},
             "vcov": _plain(self.vcov),
             "diagnostics": {k: _plain(v) for k, v in self.diagnostics.items()},
         }
@@ -217,6 +235,9 @@ class FitResult:
             vcov=_array(d["vcov"]) if d["vcov"] else np.zeros((0, 0)),
             settings=d["settings"],
             diagnostics={k: _array(v) for k, v in d["diagnostics"].items()},
+            long_run=tuple(TermEstimate(label, _float(t["estimate"]), _float(t["std_error"]),
+                                        _float(t["z"]), _float(t["p_value"]), t.get("reason"))
+                           for label, t in d.get("long_run", {}).items()),
         )
 
 

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 
-from ..spec import Spec, term_label, term_labels
+from ..spec import LONG_RUN, Spec, long_run_label, long_run_labels, term_label, term_labels
 from .checks import closest, fmt, key_text
 from .schema import RESERVED_NAMES, Reader
 
@@ -112,10 +112,16 @@ def _focus(spec: Spec, r: Reader) -> None:
         return
     labels = term_labels(spec)
     for term in spec.focus:
-        if term in labels:
+        if term in labels or term in long_run_labels(spec):
             continue
         if term == "const" or term.startswith("period["):
             msg = f"{fmt(term)}: the constant and period dummies cannot be focus terms"
+        elif term.endswith(f"[{LONG_RUN}]"):
+            names = [reg.name for reg in spec.regressors]
+            hint = closest(term[:-len(LONG_RUN) - 2], names)
+            msg = (f"{fmt(term)}: a long-run effect needs a regressor of the model, and "
+                   f"{fmt(term[:-len(LONG_RUN) - 2])} is not one"
+                   + (f" (did you mean {fmt(long_run_label(hint))}?)" if hint else ""))
         else:
             hint = closest(term, labels)
             msg = f"{fmt(term)} is not a term of the model"

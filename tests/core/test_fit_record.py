@@ -41,6 +41,10 @@ def assert_same_fit(a: FitResult, b: FitResult) -> None:
     assert dict(a.difference_hansen) == dict(b.difference_hansen)
     assert a.counts == b.counts and a.warnings == b.warnings
     assert _same(a.vcov, b.vcov)
+    assert [t.label for t in a.long_run] == [t.label for t in b.long_run]
+    for s, t in zip(a.long_run, b.long_run):
+        assert all(_same(getattr(s, f), getattr(t, f))
+                   for f in ("estimate", "std_error", "z", "p_value")) and s.reason == t.reason
     assert json.loads(json.dumps(dict(a.settings))) == dict(b.settings)
     assert a.diagnostics.keys() == b.diagnostics.keys()
     for k in a.diagnostics:

@@ -84,3 +84,16 @@ def test_the_schema_is_one_table_keyed_by_full_path():
     # scalar keys, except the [[instruments.gmm]] array of tables
     assert all(isinstance(v, Key) for k, v in SCHEMA.items()
                if k[0] in ("method", "instruments") and k != ("instruments", "gmm"))
+
+
+def test_long_run_focus_term_needs_a_regressor():
+    """`NAME[long-run]` is a focus term for a regressor of the model; for anything
+    else (the outcome, a misspelt name) a one-line error names it."""
+    d = copy.deepcopy(BASE)
+    d["audit"] = {"focus": ["x[long-run]"]}
+    assert spec_from_dict(d).focus == ("x[long-run]",)
+    found = problems(audit={"focus": ["xx[long-run]", "y[long-run]"]})
+    assert found[0].startswith('[audit] focus = ["xx[long-run]", "y[long-run]"]: '
+                               '"xx[long-run]": a long-run effect needs a regressor of the '
+                               'model, and "xx" is not one (did you mean "x[long-run]"?)')
+    assert '"y" is not one' in found[1] and len(found) == 2
