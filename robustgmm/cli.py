@@ -365,6 +365,36 @@ def test_block(result) -> list[str]:
             df = "" if t.df is None else str(t.df)
             out.append(f"  {group:<{width}}  {_num(t.statistic, 10, 3)}  {df:>4}  "
                        f"{p_text(t):>7}")
+    out += strength_block(result)
+    return out
+
+
+def strength_block(result) -> list[str]:
+    """'Instrument strength': the Kleibergen-Paap rank test of underidentification
+    (LM form, its p-value; the Wald form as F) per instrument set, and the conditional
+    F of each GMM-instrumented term (robustgmm.core.strength)."""
+    st = getattr(result, "strength", None) or {}
+    lm, wald, cond = st.get("rank_lm", {}), st.get("rank_wald", {}), st.get("conditional_f", {})
+    if not lm and not cond:
+        return []
+    out = ["", "Instrument strength (unit-clustered; underidentification: Kleibergen-Paap rank "
+           "test, LM form)"]
+    width = max([len("instruments")] + [len(n) for n in lm] + [len(n) for n in cond])
+    out.append(f"  {'instruments':<{width}}  {'rank LM':>10}  {'df':>4}  {'p':>7}  {'Wald F':>8}")
+    for name, t in lm.items():
+        if t.reason:
+            out.append(f"  {name:<{width}}  {t.reason}")
+            continue
+        w = wald.get(name)
+        f = w.statistic / w.df if w is not None and w.df else float("nan")
+        out.append(f"  {name:<{width}}  {_num(t.statistic, 10, 3)}  {t.df:>4}  "
+                   f"{_p(t.p_value).strip():>7}  {_num(f, 8, 2)}")
+    if cond:
+        out.append(f"  conditional F (Sanderson-Windmeijer; F < 10 is weak by the rule of "
+                   "thumb, common practice; no critical values for clustered GMM)")
+        for name, t in cond.items():
+            out.append(f"  {name:<{width}}  " + (t.reason if t.reason else
+                                                 f"{_num(t.statistic, 10, 2)}  {t.df:>4}"))
     return out
 
 

@@ -98,6 +98,18 @@ VARIANTS = Table("variants.csv", (
     Column("ar2_p", "float", "Arellano-Bond AR(2) p-value, differenced residuals"),
     Column("diff_hansen_level_p", "float",
            "difference-in-Hansen p-value of the level-equation instruments (system GMM)"),
+    Column("underid_p", "float",
+           "p-value of the Kleibergen-Paap rank test (LM form, unit-clustered) of underidentification of the whole instrument set; empty where not valid (reason in unavailable_tests)"),
+    Column("rk_f", "float",
+           "the Kleibergen-Paap rank Wald statistic divided by its degrees of freedom (a strength measure; no critical values for clustered GMM)"),
+    Column("underid_p_transformed", "float",
+           "the same rank test on the transformed-equation instruments and the regressor terms they move"),
+    Column("underid_p_level", "float",
+           "the same rank test on the level-equation instruments (system GMM)"),
+    Column("weak_f_min", "float",
+           "smallest Sanderson-Windmeijer conditional F over the lagged outcome and the endogenous or predetermined regressor terms"),
+    Column("weak_f_term", "text",
+           "the term with that smallest conditional F"),
     Column("std_error_kind", "text",
            "cluster-robust, windmeijer, windmeijer-iterated or conventional"),
     Column("ar_term", "text", "the AR term the band check uses (one lag, or the sum of the lags)"),
@@ -111,7 +123,8 @@ VARIANTS = Table("variants.csv", (
     Column("evidence", "text",
            "acceptable (estimated, every required test computed and passed), untestable "
            "(no test rejects but one cannot be computed, e.g. an exactly identified Hansen "
-           "test), rejected (a test rejects), failed or skipped"),
+           "test), rejected (a test rejects, or the rank test does not reject "
+           "underidentification), failed or skipped"),
     Column("acceptable", "bool", "`evidence` is acceptable (kept for compatibility)"),
     Column("duplicate_of", "text",
            "the id of the earlier variant with the same estimates to 1e-10 (empty when "
@@ -172,7 +185,8 @@ FILES = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json", "manifes
 TRUTH_FILE = "truth.json"
 
 #: Keys of the JSON of ``robustgmm fit --json`` (:meth:`FitResult.to_dict`).
-FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings", "long_run")
+FIT_KEYS = ("terms", "std_error_kind", "tests", "counts", "settings", "warnings", "long_run",
+            "strength")
 FIT_TERM_KEYS = ("estimate", "std_error", "z", "p_value")
 FIT_TEST_KEYS = ("ar1", "ar2", "sargan", "hansen", "difference_hansen")
 FIT_COUNT_KEYS = ("observations", "units", "instruments", "periods", "parameters",

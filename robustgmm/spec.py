@@ -248,6 +248,9 @@ class Thresholds:
     instruments_per_unit_warn: float = 0.25
     #: count untestable variants (exactly identified) as evidence
     count_untestable: bool = False
+    #: ``weak_instruments`` fires below this conditional F (Staiger & Stock 1997's
+    #: rule of thumb; common practice)
+    weak_f: float = 10.0
 
     def __post_init__(self):
         from .modelfile import checks as c

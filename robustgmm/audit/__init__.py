@@ -149,7 +149,32 @@ def _unavailable(fit: dict) -> str:
     removal leaves the model unidentified."""
     items = [(name, t) for name, t in fit["tests"].items() if t]
     items += [(f"difference-in-Hansen {g}", t) for g, t in fit["difference_hansen"].items() if t]
+    names = {"rank_lm": "rank test", "conditional_f": "conditional F"}
+    for kind, tests in (fit.get("strength") or {}).items():
+        if kind in names:  # the Wald form shares the LM form's reason
+            items += [(f"{names[kind]} {n}", t) for n, t in tests.items() if t]
     return " | ".join(f"{name}: {t['reason']}" for name, t in items if t.get("reason"))
+
+
+def _strength_columns(fit: dict) -> dict:
+    """The instrument-strength columns of variants.csv from a fit record: the rank
+    test p-values (LM form) of the whole system and of each equation, the rank
+    Wald F of the system and the smallest conditional F with its term."""
+    st = fit.get("strength") or {}
+    lm, wald, cond = st.get("rank_lm", {}), st.get("rank_wald", {}), st.get("conditional_f", {})
+    out = {"underid_p": _p(lm.get("system")),
+           "underid_p_transformed": _p(lm.get("transformed", lm.get("system") if
+                                              "level" not in lm else None)),
+           "underid_p_level": _p(lm.get("level"))}
+    w = wald.get("system") or {}
+    out["rk_f"] = (w["statistic"] / w["df"] if w.get("statistic") is not None
+                   and np.isfinite(w["statistic"]) and w.get("df") else np.nan)
+    fs = {term: t["statistic"] for term, t in cond.items()
+          if t and t.get("statistic") is not None and np.isfinite(t["statistic"])}
+    term = min(fs, key=fs.get) if fs else None
+    out["weak_f_min"] = fs[term] if term else np.nan
+    out["weak_f_term"] = term
+    return out
 
 
 def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -169,7 +194,9 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
         fit = o.fit if (o is not None and o.status == runner.OK) else None
         bnd = o.bounds if (o is not None and o.status == runner.OK) else None
         row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, ar1_p=np.nan, ar2_p=np.nan,
-                   diff_hansen_level_p=np.nan, std_error_kind=None, ar_term=None,
+                   diff_hansen_level_p=np.nan, underid_p=np.nan, rk_f=np.nan,
+                   underid_p_transformed=np.nan, underid_p_level=np.nan, weak_f_min=np.nan,
+                   weak_f_term=None, std_error_kind=None, ar_term=None,
                    ar_coefficient=np.nan, ar_ols=np.nan, ar_fe=np.nan, in_bounds=None,
                    unavailable_tests="", warnings="")
         if fit is not None:
@@ -183,6 +210,7 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                        ar2_p=_p(tests.get("ar2")),
                        diff_hansen_level_p=_p(fit["difference_hansen"].get(verdicts.LEVEL_GROUP)),
                        std_error_kind=fit["std_error_kind"],
+                       **_strength_columns(fit),
                        unavailable_tests=_unavailable(fit),
                        warnings=" | ".join(fit.get("warnings", [])))
             gmm = {t["term"]: t["estimate"] for t in fit["terms"]}

@@ -113,6 +113,9 @@ def fit_record(result, spec) -> dict:
                    ("observations", "units", "instruments", "periods", "parameters")
                    if hasattr(counts, k)},
         "warnings": list(result.warnings),
+        # instrument strength (robustgmm.core.strength): kind → block or term → test
+        "strength": {kind: {name: _test(t) for name, t in tests.items()}
+                     for kind, tests in getattr(result, "strength", {}).items()},
     }
     ar = list(spec.ar_terms())
     labels = [t.label for t in result.terms]

@@ -34,7 +34,7 @@ from ..data import Panel
 from ..errors import EstimationError, InputError
 from ..options import Equations, Errors, Steps, parse
 from ..spec import Spec, canonical_settings, settings_of
-from . import covariance, diagnostics, longrun
+from . import covariance, diagnostics, longrun, strength
 from .design import Design
 from .engine import MomentEngine
 from .problem import FinalSums, GMMProblem, NotSubset, SumS, efficient_gmm
@@ -196,7 +196,7 @@ def _difference_hansen(prob: GMMProblem, sol: _Solution, one: _OneStep) -> tuple
 
 
 def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
-              diff_hansen: tuple[dict, list]) -> FitResult:
+              diff_hansen: tuple[dict, list], strength_tests: dict | None = None) -> FitResult:
     d = prob.design
     L, K = prob.L, prob.K
     steps, errors = parse(Steps, spec.steps), parse(Errors, spec.errors)
@@ -256,6 +256,7 @@ def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
                      "vcov_one_step_robust": one.v_robust, "sigma2": one.sigma2,
                      "redundant_time_moments": prob.redundant_time_moments},
         long_run=long_run,
+        strength=strength_tests or {},
     )
 
 
@@ -312,9 +313,12 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
     by_engine: dict = {}
     for k, p in live.items():
         by_engine.setdefault(id(p.engine), (p.engine, []))[1].append(k)
+    # the sums of the instrument-strength statistics (they depend on the instrument
+    # set only) ride on the same pass
+    strong = {k: strength.plan(live[k].spec, live[k], ones[k].A) for k in live}
     for eng, keys in by_engine.values():
         tasks = {k: SumS(live[k], ones[k].beta) for k in keys}
-        eng.run_pass(list(tasks.values()))
+        eng.run_pass(list(tasks.values()) + [strong[k][2] for k in keys])
         for k, task in tasks.items():
             ones[k].S, ones[k].ssr = task.S, task.ssr
     for k, p in live.items():
@@ -349,7 +353,8 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
             continue
         try:
             out[i] = _assemble(spec, live[k], ones[k], sols[(k, parse(Steps, spec.steps))],
-                               diffs[(k, parse(Steps, spec.steps))])
+                               diffs[(k, parse(Steps, spec.steps))],
+                               strength.statistics(live[k], strong[k]))
         except Exception as exc:  # noqa: BLE001 — returned, the caller decides (its type says)
             out[i] = exc
     return out

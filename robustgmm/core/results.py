@@ -136,8 +136,14 @@ class FitResult:
     #: long-run effects ``NAME[long-run]`` (:mod:`.longrun`), derived from ``terms``
     #: and ``vcov``; not part of ``terms`` (``vcov`` is the coefficients' covariance)
     long_run: tuple[TermEstimate, ...] = ()
+    #: instrument strength (:mod:`.strength`): ``rank_lm`` and ``rank_wald`` (block →
+    #: TestResult; blocks ``system`` and, in system GMM, ``transformed`` and
+    #: ``level``) and ``conditional_f`` (term → TestResult whose statistic is the F)
+    strength: Mapping[str, Mapping[str, TestResult]] = field(default_factory=dict)
 
     def __post_init__(self):
+        object.__setattr__(self, "strength", MappingProxyType(
+            {k: MappingProxyType(dict(v)) for k, v in dict(self.strength).items()}))
         object.__setattr__(self, "long_run", tuple(self.long_run))
         vc = np.array(self.vcov, dtype=float)
         vc.setflags(write=False)
@@ -212,6 +218,8 @@ class FitResult:
             "settings": dict(self.settings),
             "warnings": list(self.warnings),
             "long_run": {t.label: _term_dict(t) for t in self.long_run},
+            "strength": {k: {name: t.to_dict() for name, t in v.items()}
+                         for k, v in self.strength.items()},
             "vcov": _plain(self.vcov),
             "diagnostics": {k: _plain(v) for k, v in self.diagnostics.items()},
         }
@@ -238,6 +246,8 @@ class FitResult:
             long_run=tuple(TermEstimate(label, _float(t["estimate"]), _float(t["std_error"]),
                                         _float(t["z"]), _float(t["p_value"]), t.get("reason"))
                            for label, t in d.get("long_run", {}).items()),
+            strength={k: {name: TestResult.from_dict(t) for name, t in v.items()}
+                      for k, v in d.get("strength", {}).items()},
         )
 
 

@@ -525,3 +525,24 @@ def test_exactly_identified_variants_through_the_estimator(tmp_path):
     counts = result.verdict["variants"]
     assert counts["untestable"] == 2 and counts["duplicates"] == 1
     assert result.verdict["terms"]["x[t]"]["figures"]["judged"] == counts["acceptable"]
+
+
+def test_underidentified_variant_is_not_acceptable_and_weak_instruments_caution():
+    """`underidentified`: the rank test does not reject at alpha (p >= alpha) → the
+    variant is excluded like a rejected test; a rank test that is not valid (no
+    p-value) does not fire. `weak_instruments`: smallest conditional F below weak_f
+    (10, the Staiger & Stock 1997 rule of thumb) → caution only."""
+    v, e = _results([0.5, 0.5, 0.52, 0.49],
+                    diag={1: {"underid_p": 0.3, "weak_f_min": 2.0},
+                          2: {"underid_p": float("nan"), "weak_f_min": 25.0},
+                          3: {"underid_p": 0.001, "weak_f_min": 7.0}})
+    ev = verdicts.evaluate(SPEC, v, e)
+    cols = ev.columns
+    assert cols["evidence"].tolist() == ["acceptable", "rejected", "acceptable", "acceptable"]
+    assert "underidentified" in cols["flags"].iloc[1]
+    assert "weak_instruments" in cols["flags"].iloc[3] and "underidentified" not in cols["flags"].iloc[3]
+    assert not {"underidentified", "weak_instruments"} & set(cols["flags"].iloc[2].split(";"))
+    flags = {f["id"]: f for f in ev.verdict.to_dict()["model"]}
+    assert flags["weak_instruments"]["figures"]["ids"] == ["v1", "v3"]
+    assert flags["weak_instruments"]["threshold"] == 10.0
+    assert flags["underidentified"]["figures"]["ids"] == ["v1"]

@@ -45,6 +45,13 @@ def assert_same_fit(a: FitResult, b: FitResult) -> None:
     for s, t in zip(a.long_run, b.long_run):
         assert all(_same(getattr(s, f), getattr(t, f))
                    for f in ("estimate", "std_error", "z", "p_value")) and s.reason == t.reason
+    assert a.strength.keys() == b.strength.keys()
+    for kind in a.strength:
+        assert a.strength[kind].keys() == b.strength[kind].keys()
+        for name, t in a.strength[kind].items():
+            u = b.strength[kind][name]
+            assert all(_same(getattr(t, f), getattr(u, f)) for f in ("statistic", "p_value"))
+            assert (t.df, t.reason) == (u.df, u.reason)
     assert json.loads(json.dumps(dict(a.settings))) == dict(b.settings)
     assert a.diagnostics.keys() == b.diagnostics.keys()
     for k in a.diagnostics:

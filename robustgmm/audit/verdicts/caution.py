@@ -45,7 +45,8 @@ def _model_flags(variants, flags, th, base_pos, ids) -> tuple[Firing, ...]:
                  "difference_hansen_level_rejects": "diff_hansen_level_p",
                  "hansen_p_high": "hansen_p", "hansen_p_near_one": "hansen_p",
                  "instruments_exceed_units": "instruments_per_unit",
-                 "tests_unavailable": None, "duplicate_estimate": None}
+                 "tests_unavailable": None, "duplicate_estimate": None,
+                 "underidentified": "underid_p", "weak_instruments": "weak_f_min"}
     for rule in RULES:
         if rule.level != "variant":
             continue

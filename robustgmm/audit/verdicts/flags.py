@@ -53,6 +53,9 @@ def variant_flags(variants: pd.DataFrame, thresholds: Mapping[str, Any],
                                    | near_one),
             "hansen_p_near_one": ok & near_one,
             "instruments_exceed_units": ok & (per_unit > thresholds["instruments_per_unit"]),
+            # a rank test that is not valid has no p-value and does not fire
+            "underidentified": ok & (_column(variants, "underid_p") >= thresholds["alpha"]),
+            "weak_instruments": ok & (_column(variants, "weak_f_min") < thresholds["weak_f"]),
         }, index=variants.index)
     rejected = flags[list(REJECTION_RULES)].any(axis=1).to_numpy()
     missing = ~np.isfinite(hansen) | ~np.isfinite(ar2) | (system & ~np.isfinite(dh))

@@ -45,6 +45,19 @@ RULES: tuple[Rule, ...] = (
     Rule("difference_hansen_level_rejects", "variant",
          "difference-in-Hansen test rejects the level-equation instruments of system GMM",
          "Blundell & Bond (1998); Roodman (2009)", "difference_hansen_reject", Effect.EXCLUDE),
+    Rule("underidentified", "variant",
+         "the Kleibergen-Paap rank test (LM form, unit-clustered) of the whole instrument "
+         "set does not reject underidentification at alpha: the instruments may not "
+         "identify the model (not evaluated where the statistic is not valid, e.g. too "
+         "many instruments for the units)",
+         "Kleibergen & Paap (2006); Bazzi & Clemens (2013)", "alpha", Effect.EXCLUDE),
+    Rule("weak_instruments", "variant",
+         "the smallest Sanderson-Windmeijer conditional F of a GMM-instrumented term "
+         "(lagged outcome, endogenous or predetermined regressor) is below the threshold: "
+         "weak instruments bias GMM towards OLS-like estimates and distort its tests. A "
+         "rule of thumb: no critical values exist for cluster-robust GMM first stages",
+         "Sanderson & Windmeijer (2016); Staiger & Stock (1997) rule of thumb, common "
+         "practice; Bun & Windmeijer (2010)", "weak_f", Effect.CAUTION),
     Rule("tests_unavailable", "variant",
          "no test rejects, but a required test cannot be computed (Hansen, AR(2), and in "
          "system GMM the level-equation difference-in-Hansen); an exactly identified "
@@ -102,7 +115,8 @@ RULES: tuple[Rule, ...] = (
 )
 RULE_BY_ID = {r.id: r for r in RULES}
 VARIANT_RULES = tuple(r.id for r in RULES if r.level == "variant")
-REJECTION_RULES = ("hansen_rejects", "ar2_rejects", "difference_hansen_level_rejects")
+REJECTION_RULES = ("hansen_rejects", "ar2_rejects", "difference_hansen_level_rejects",
+                   "underidentified")
 BASE_ANCHORED = ("sign_change", "significance_flip", "spread")
 
 COMBINATION = (
@@ -110,8 +124,8 @@ COMBINATION = (
     "base-anchored rules are then not evaluated); otherwise fragile if sign_change or "
     "significance_flip fires among the judged variants; otherwise robust. Caution rules "
     "are reported beside the verdict and never change it. A variant is acceptable when "
-    "it estimated, every required test could be computed, and neither hansen_rejects, "
-    "ar2_rejects nor difference_hansen_level_rejects fired; untestable when no test "
+    "it estimated, every required test could be computed, and none of hansen_rejects, "
+    "ar2_rejects, difference_hansen_level_rejects and underidentified fired; untestable when no test "
     "rejects but one cannot be computed. The judged variants are the acceptable ones "
     "(and the untestable ones with count_untestable = true), duplicates left out.")
 
