@@ -154,9 +154,29 @@ class Design:
         for reg in spec.regressors:
             self.term_roles.extend([parse(Role, reg.role)] * len(reg.lags))
         self.term_roles = ["outcome"] * len(spec.outcome_lags) + self.term_roles
+        self.time_invariant = self._time_invariant_terms()
         self._global_masks()
         self._x_columns()
         self._instrument_layout()
+
+    def _time_invariant_terms(self) -> frozenset:
+        """Labels of the regressor terms whose variable does not vary within any unit
+        (education, sector, a founding cohort): every transform removes them, so
+        difference GMM cannot estimate them, and in system GMM they are identified
+        from the level equation only (see :meth:`_instrument_layout`)."""
+        out = []
+        for term, role in zip(self.terms, self.term_roles):
+            if role == "outcome":
+                continue
+            v = self.panel.values[term.var]
+            missing = np.isnan(v)
+            lo = np.where(missing, np.inf, v).min(axis=1)
+            hi = np.where(missing, -np.inf, v).max(axis=1)
+            seen = np.isfinite(lo)
+            scale = np.maximum(np.abs(lo[seen]), np.abs(hi[seen])) if seen.any() else 0.0
+            if seen.any() and np.all(hi[seen] - lo[seen] <= 1e-12 * np.maximum(scale, 1.0)):
+                out.append(term.label)
+        return frozenset(out)
 
     # ------------------------------------------------------------------ rows
     def _complete(self, values: dict) -> np.ndarray:
@@ -350,8 +370,15 @@ class Design:
                 entry(TRANSFORMED, t)["own"].append((self._aug_index(j, n_terms, k_all), c))
         if self.system:
             for j in own_terms:
-                c = new_col("exogenous", LEVEL, f"{all_terms[j].label} (difference, level equation)")
                 term = all_terms[j]
+                if term.label in self.time_invariant:
+                    # its difference is zero: the level itself instruments the level
+                    # equation, valid when the term is uncorrelated with the unit effect
+                    c = new_col("exogenous", LEVEL, f"{term.label} (level, level equation)")
+                    for t in np.flatnonzero(rows_l_any):
+                        entry(LEVEL, t)["own"].append((self._aug_index(j, n_terms, k_all), c))
+                    continue
+                c = new_col("exogenous", LEVEL, f"{all_terms[j].label} (difference, level equation)")
                 vi = self.var_index[term.var]
                 for t in np.flatnonzero(rows_l_any):
                     src = t - term.lag
@@ -429,6 +456,10 @@ class Design:
             augtr[:, 1:] = aug[:, 1:] - aug[:, :-1]
         ytr = np.where(rows_t, ytr, 0.0)
         augtr = np.where(rows_t[:, :, None], augtr, 0.0)
+        # the transform of a time-invariant term is zero: exactly (no FOD rounding)
+        for j, term in enumerate(self.terms):
+            if term.label in self.time_invariant:
+                augtr[:, :, j] = 0.0
         ylv = np.where(rows_l, ylev, 0.0)
         auglv = np.where(rows_l[:, :, None], aug, 0.0)
 

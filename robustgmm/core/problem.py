@@ -135,6 +135,18 @@ class GMMProblem:
         kept = set(keep_x.tolist())
         dropped = [d.x_labels_all[j] for j in range(K) if j not in kept]
         bad = [lab for lab in dropped if not is_deterministic_label(lab)]
+        # a time-invariant term vanishes under the transform: difference GMM drops it
+        # with a note (its effect is absorbed by the unit effect); anything else
+        # collinear is an error
+        invariant = [lab for lab in bad if lab in d.time_invariant]
+        if invariant and not d.system:
+            self.warnings.append(
+                f"{', '.join(invariant)} dropped: {'it does' if len(invariant) == 1 else 'they do'}"
+                " not vary within units, so the transform removes "
+                f"{'it' if len(invariant) == 1 else 'them'} (absorbed by the unit effect); "
+                "difference GMM cannot estimate time-invariant terms (system GMM estimates "
+                "them from the level equation)")
+            bad = [lab for lab in bad if lab not in invariant]
         if bad:
             raise EstimationError(
                 "regressor(s) with no independent variation after the transform: "
@@ -151,6 +163,12 @@ class GMMProblem:
                     "(a regressor repeats the time effects)")
         d.set_kept_columns(keep_x)
         self._keep_instruments(zhz)
+        if d.system and any(d.x_labels_all[j] in d.time_invariant for j in keep_x):
+            names = [d.x_labels_all[j] for j in keep_x if d.x_labels_all[j] in d.time_invariant]
+            self.warnings.append(
+                f"{', '.join(names)}: time-invariant, identified from the level equation only "
+                "(an exogenous one instruments itself there, which assumes it is uncorrelated "
+                "with the unit effect)")
         if d.n_rows[0] <= len(keep_x):
             raise UnderidentifiedError(
                 f"only {d.n_rows[0]} observations in the transformed equation for {len(keep_x)} "
