@@ -174,7 +174,11 @@ class Design:
             hi = np.where(missing, -np.inf, v).max(axis=1)
             seen = np.isfinite(lo)
             scale = np.maximum(np.abs(lo[seen]), np.abs(hi[seen])) if seen.any() else 0.0
-            if seen.any() and np.all(hi[seen] - lo[seen] <= 1e-12 * np.maximum(scale, 1.0)):
+            tol = 1e-12 * np.maximum(scale, 1.0)
+            # constant within units but not across them (a column constant everywhere
+            # is a degenerate column, left to the data layer's message)
+            if (seen.any() and np.all(hi[seen] - lo[seen] <= tol)
+                    and np.ptp(lo[seen]) > tol.max()):
                 out.append(term.label)
         return frozenset(out)
 

@@ -224,9 +224,6 @@ DATA_CASES = [
     data_case("filter column missing", lambda d: d.drop(columns="sector"), "column 'sector' not found",
               model_edit=add('[sample]\nexclude = {column = "sector", values = [1]}')),
     # estimation-level data problems (robustgmm.core raises EstimationError -> exit 2)
-    data_case("regressor constant within every unit", lambda d: d.assign(x=d["firm"] * 1.0),
-              "cannot estimate the model", "x[t]",
-              model_edit=sub('equations = "system"', 'equations = "difference"')),
     data_case("perfectly collinear regressors", lambda d: d.assign(z=2 * d["x"]),
               "cannot estimate the model", "z[t]",
               model_edit=add('[[model.regressors]]\nname = "z"\nlags = [0, 1]\nrole = "endogenous"')),
