@@ -123,9 +123,10 @@ class World:
     def burn_in(self) -> int:
         return BURN_STATIONARY if self.stationary else BURN_LONG
 
-    def arrays(self, seed: int, rep: int) -> dict[str, np.ndarray]:
+    def arrays(self, seed: int, rep: int, masked: bool = True) -> dict[str, np.ndarray]:
         """(N, T) arrays of one replication, drawn from ``default_rng([seed, rep])``;
-        unobserved cells are NaN."""
+        unobserved cells are NaN (``masked=False``: every cell, for callers that copy
+        each column's own pattern of missing cells)."""
         rng = np.random.default_rng([int(seed), int(rep)])
         n, t_obs = self.mask.shape
         k = len(self.regressors)
@@ -164,6 +165,8 @@ class World:
             # mean as observed; the shift decays as the process would
             dev = self.start_dev[self.outcome]
             ys += np.nan_to_num(dev)[:, None] * self.rho ** np.arange(t_obs)[None, :]
+        if not masked:
+            return {self.outcome: ys, **{name: xs[:, :, j] for j, name in enumerate(self.regressors)}}
         out = {self.outcome: np.where(self.mask, ys, np.nan)}
         for j, name in enumerate(self.regressors):
             out[name] = np.where(self.mask, xs[:, :, j], np.nan)

@@ -1,0 +1,465 @@
+"""Replications of the whole grid in a calibrated world (issue 15).
+
+For replication ``r`` the worker rebuilds the simulated panel from ``(seed, r)``
+alone (:meth:`~robustgmm.montecarlo.calibrate.World.arrays`), copies it into the real
+data's frame (same units, calendar, other columns and each model column's own
+missing cells), builds the panel of every sample of the audit and estimates every
+planned variant with the audit's own estimation of a share group
+(:func:`robustgmm.audit.runner.estimate_group`, which uses the core's shared-work
+families). A replication returns, per variant, its status, each focus term's
+estimate and standard error, and the p-values of Hansen, AR(2) and the level
+difference-in-Hansen: a few numbers, never a panel.
+
+**Summary** (one row per variant × focus term, :func:`summarise`), over the ``R_ok``
+replications in which the variant was estimated, with ``b`` the truth, ``b_r`` the
+estimates, ``s_r`` their standard errors and ``z = Φ⁻¹(1 − alpha/2)``:
+
+* ``bias = mean(b_r) − b``, ``relative_bias = bias / |b|`` (empty when ``b = 0``),
+  ``sd`` the simulation standard deviation (ddof 1), ``rmse = sqrt(mean((b_r − b)²))``;
+* ``se_ratio = mean(s_r) / sd`` (below 1: reported errors too small; Windmeijer 2005);
+* ``coverage``: share of replications with ``|b_r − b| ≤ z s_r`` (the 1 − alpha
+  interval contains the truth); ``size``: share with ``|b_r − b| / s_r > z``, the
+  rejection rate of the true null ``H0: term = b`` at alpha (so ``size = 1 −
+  coverage``; both are listed because readers look for either);
+* Monte Carlo standard errors ``sd / sqrt(R_ok)`` of the mean and
+  ``sqrt(c (1 − c) / R_ok)`` of the coverage (binomial);
+* per variant, the rejection rates at alpha of Hansen, AR(2) and the level
+  difference-in-Hansen over the replications where the test was computed: all three
+  nulls are true in the simulated world, so each rate is the test's size.
+
+**Determinism**: a replication depends only on ``(seed, r)``, the world and the
+grid, and runs with the runner's fixed BLAS thread count, so results do not depend
+on ``jobs`` or on which replications came from the cache; the summary reads them in
+replication order.
+
+**Cache and resume**: each finished replication is stored as one checksummed entry of
+the audit cache (:class:`robustgmm.audit.cache.Cache`, key = the world, the grid,
+the seed, the replication and the versions), written by the process that computed
+it as soon as it is done: a killed run resumes without recomputing finished
+replications.
+
+**Parallel**: replications are sent to the audit's workers in blocks
+(:mod:`robustgmm.audit.parallel`: backends, BLAS threads, worker limits, lost
+workers; a block whose worker dies is retried alone once, then its replications
+are recorded lost).
+"""
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+import sys
+import time
+from dataclasses import dataclass, field
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+import pandas as pd
+
+from ..errors import EstimationError, InputError
+from ..options import Role
+from .calibrate import World, calibrate, fit_summary
+
+#: Replications below this give rates too noisy to read (a binomial standard error
+#: above 0.05 at a 0.5 rate needs fewer than 100; 10 is the floor we accept).
+MIN_REPS = 10
+DEFAULT_REPS = 200
+#: Version of a cached replication's record (raise when its layout changes).
+REP_FORMAT = 1
+#: Replications per worker task at most (tasks carry the world and the frame once).
+MAX_BLOCK = 25
+LOST = "lost"
+
+
+@dataclass(frozen=True)
+class Simulation:
+    """The Monte Carlo of one grid: ``summary`` (simulation.csv without the varied
+    settings' display), ``calibration`` (calibration.json), ``run`` (figures)."""
+
+    summary: pd.DataFrame
+    calibration: Mapping[str, Any]
+    run: Mapping[str, Any]
+    records: Sequence[dict] = field(default=(), repr=False, compare=False)
+
+
+# ---------------------------------------------------------------------------
+# the world of a model
+# ---------------------------------------------------------------------------
+def truth_of(spec, fit_result) -> dict[str, float]:
+    """The true value of every focus term in the calibrated world: the base model's
+    coefficient on ``outcome[t-1]`` and on each regressor's ``name[t]``; every other
+    term (further outcome lags, lagged regressors) is 0, since the world is an AR(1)
+    in the outcome with contemporaneous regressors."""
+    from ..spec import term_label
+    est = {t.label: float(t.estimate) for t in fit_result.terms}
+    truth = {}
+    for var, lag, label in spec.regressor_terms():
+        truth[label] = 0.0
+    truth[term_label(spec.outcome, 1)] = est.get(term_label(spec.outcome, 1), 0.0)
+    for reg in spec.regressors:
+        truth[term_label(reg.name, 0)] = est.get(term_label(reg.name, 0), 0.0)
+    return truth
+
+
+def build_world(spec, frame: pd.DataFrame, base_panel, *, truth: Mapping[str, float] | None = None,
+                initial: str = "stationary") -> tuple[World, dict[str, float]]:
+    """Calibrate the world of ``spec`` on the data ``frame``; the truth is the base
+    model's estimate (``core.fit`` on ``base_panel``) unless ``truth`` gives term →
+    value. Raises :class:`InputError` when the base model cannot be estimated."""
+    from .. import core
+    from ..spec import term_label
+    if initial not in ("stationary", "data"):
+        raise InputError(f"simulate: initial must be 'stationary' or 'data', not {initial!r}")
+    if truth is None:
+        try:
+            base = core.fit(spec, base_panel)
+        except EstimationError as exc:
+            raise InputError(f"{spec.source}: simulate: the base model cannot be estimated "
+                             f"on the data, so there is no world to calibrate "
+                             f"({' '.join(str(exc).split())})") from None
+        truth = truth_of(spec, base)
+    else:
+        known = {label for _, _, label in spec.regressor_terms()}
+        bad = [k for k in truth if k not in known]
+        if bad:
+            raise InputError(f"simulate: truth names {bad[0]!r}, not a term of the model "
+                             f"(terms: {', '.join(sorted(known))})")
+        truth = {**{label: 0.0 for label in known}, **{k: float(v) for k, v in truth.items()}}
+    kinds = {reg.name: str(Role(reg.role).value) for reg in spec.regressors}
+    world = calibrate(frame, unit=spec.unit, period=spec.period, outcome=spec.outcome,
+                      regressors=kinds,
+                      truth={f"L1.{spec.outcome}": truth.get(term_label(spec.outcome, 1), 0.0),
+                             **{k: truth.get(term_label(k, 0), 0.0) for k in kinds}},
+                      initial=initial)
+    return world, dict(truth)
+
+
+def simulated_frame(world: World, template: pd.DataFrame, seed: int, rep: int,
+                    columns: Sequence[str]) -> pd.DataFrame:
+    """The real ``template`` frame with each model column replaced by replication
+    ``rep``'s values, its missing cells kept missing (so gaps, attrition and every
+    column's own missing values are copied exactly)."""
+    arr = world.arrays(seed, rep, masked=False)
+    iu = np.searchsorted(world.units, template[world.unit].to_numpy())
+    ip = np.searchsorted(world.periods, template[world.period].to_numpy())
+    out = template.copy()
+    for col in columns:
+        real = template[col].to_numpy(float)
+        out[col] = np.where(np.isfinite(real), arr[col][iu, ip], np.nan)
+    return out
+
+
+# ---------------------------------------------------------------------------
+# one replication (runs in a worker)
+# ---------------------------------------------------------------------------
+def _p(test) -> float | None:
+    return None if not test or test.get("p_value") is None else float(test["p_value"])
+
+
+def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: int,
+              focus: Sequence[str], level_group: str) -> dict:
+    """Estimate every planned variant on replication ``rep``; return its record
+    ``{"rep", "variants": {id: {"status", "terms": {term: [estimate, se]},
+    "hansen", "ar2", "dh_level"}}}`` (module docstring)."""
+    from .. import core, data
+    from ..audit import runner
+    from ..audit.grid import sample_key
+    spec0 = variants[0].spec
+    frame = simulated_frame(world, template, seed, rep, (spec0.outcome,) + world.regressors)
+    panels: dict[str, Any] = {}
+    groups: dict[tuple, list] = {}
+    for v in variants:
+        key = sample_key(v.spec.sample)
+        if key not in panels:
+            try:
+                panels[key] = data.build_panel(frame, v.spec, sample=v.spec.sample)
+            except InputError as exc:  # this draw leaves the sample without data
+                panels[key] = "; ".join(exc.problems)
+        groups.setdefault((key, core.share_key(v.spec)), []).append(v)
+    out: dict[str, dict] = {}
+    for (key, _), members in groups.items():
+        panel = panels[key]
+        if isinstance(panel, str):
+            for v in members:
+                out[v.id] = {"status": runner.FAILED, "reason": panel}
+            continue
+        for v, entry in zip(members, runner.estimate_group([m.spec for m in members], panel)):
+            if entry["status"] != runner.OK:
+                out[v.id] = {"status": entry["status"], "reason": entry["reason"]}
+                continue
+            fit = entry["fit"]
+            terms = {t["term"]: [t["estimate"], t["std_error"]] for t in fit["terms"]
+                     if t["term"] in focus}
+            out[v.id] = {"status": runner.OK, "terms": terms,
+                         "hansen": _p(fit["tests"].get("hansen")),
+                         "ar2": _p(fit["tests"].get("ar2")),
+                         "dh_level": _p(fit["difference_hansen"].get(level_group))}
+    return {"rep": int(rep), "variants": {v.id: out[v.id] for v in variants}}
+
+
+def _block_task(world, template, variants, seed, reps, focus, level_group, cache_dir,
+                world_key, parent_pid, marker=None):
+    from ..audit import parallel
+    if marker is not None:
+        try:
+            open(marker, "a").close()
+        except OSError:
+            pass
+    parallel.in_worker(parent_pid)
+    cache = _open_cache(cache_dir)
+    results = []
+    for rep in reps:
+        rec = replicate(world, template, variants, seed, rep, focus, level_group)
+        if cache is not None:  # at once, so a killed run keeps it
+            cache.store_quietly(_rep_key(cache, world_key, seed, rep), f"replication {rep}", rec)
+        results.append(rec)
+    return results
+
+
+# ---------------------------------------------------------------------------
+# cache
+# ---------------------------------------------------------------------------
+def _open_cache(cache_dir):
+    if cache_dir is None:
+        return None
+    from ..audit.cache import Cache
+    try:
+        return Cache(os.path.join(str(cache_dir), "simulation"))
+    except OSError:
+        return None
+
+
+def world_key(world: World, template: pd.DataFrame, variants, focus, alpha) -> str:
+    """Hash of what every replication depends on besides ``(seed, rep)``: the
+    world's parameters and mask, the data frame copied into, the planned variants'
+    canonical settings and the focus terms."""
+    from ..audit.grid import canonical_json, canonical_settings
+    from ..data.panel import hash_frame
+    h = hashlib.sha256()
+    h.update(canonical_json({"format": REP_FORMAT, "world": world.to_dict(),
+                             "variants": [[v.id, canonical_settings(v.spec)] for v in variants],
+                             "focus": list(focus), "alpha": alpha}).encode())
+    h.update(np.packbits(world.mask).tobytes())
+    h.update(hash_frame(template, world.unit, world.period,
+                        [c for c in template.columns if c not in (world.unit, world.period)]).encode())
+    return h.hexdigest()
+
+
+def _rep_key(cache, wkey: str, seed: int, rep: int) -> str:
+    """sha256 of the cache format, the versions (:func:`robustgmm.audit.cache.environment`),
+    the world key, the seed and the replication."""
+    from ..audit.cache import CACHE_FORMAT, environment
+    from ..audit.grid import canonical_json
+    text = canonical_json({"format": CACHE_FORMAT, "replication_format": REP_FORMAT,
+                           "environment": environment(), "world": wkey,
+                           "seed": int(seed), "rep": int(rep)})
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+# ---------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------
+def check_reps(reps, seed) -> tuple[int, int]:
+    """``(reps, seed)`` as integers, or :class:`InputError` with one line each."""
+    problems = []
+    if isinstance(reps, bool) or not isinstance(reps, (int, np.integer)):
+        problems.append(f"--reps: {reps!r} is not a whole number of replications")
+    elif reps < MIN_REPS:
+        problems.append(f"--reps: {reps} replications are too few; use at least {MIN_REPS} "
+                        f"(rates from fewer have a Monte Carlo error above 0.15)")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        problems.append(f"--seed: {seed!r} is not a non-negative whole number")
+    if problems:
+        raise InputError(problems)
+    return int(reps), int(seed)
+
+
+def run_replications(world: World, template: pd.DataFrame, variants, *, reps: int, seed: int,
+                     focus: Sequence[str], level_group: str, alpha: float,
+                     jobs: int | None = None, cache_dir=None, progress: bool | None = False,
+                     backend: str | None = None) -> tuple[list[dict], dict]:
+    """Run replications ``0 .. reps-1`` (cached ones read back); return their records
+    in replication order and the run figures."""
+    import joblib
+
+    from ..audit import parallel
+
+    start = time.perf_counter()
+    variants = list(variants)
+    wkey = world_key(world, template, variants, focus, alpha)
+    cache = _open_cache(cache_dir)
+    records: dict[int, dict] = {}
+    if cache is not None:
+        for rep in range(reps):
+            rec = cache.load(_rep_key(cache, wkey, seed, rep))
+            if rec is not None:
+                records[rep] = rec
+    cached = len(records)
+    todo = [r for r in range(reps) if r not in records]
+    if progress is None:
+        progress = sys.stderr.isatty()
+    bar = None
+    if progress:
+        import shutil
+        from tqdm import tqdm
+        size = shutil.get_terminal_size((80, 24))
+        bar = tqdm(total=reps, initial=cached, file=sys.stderr, desc="replications",
+                   unit="rep", leave=False, ncols=min(size.columns or 80, 100))
+
+    def record(results):
+        for rec in results:
+            records[int(rec["rep"])] = rec
+            if bar is not None:
+                bar.update(1)
+
+    n_jobs = -1 if jobs is None else int(jobs)
+    parent = os.getpid()
+    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
+    n_workers, capped, backend_used = 1, None, "in-process"
+    try:
+        if todo:
+            with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
+                n_workers, capped = parallel.worker_count(n_jobs, len(todo))
+                size = max(1, min(MAX_BLOCK, math.ceil(len(todo) / (4 * n_workers))))
+                blocks = [todo[i:i + size] for i in range(0, len(todo), size)]
+                args = (world, template, variants, seed)
+                tail = (focus, level_group, cache_dir, wkey, parent)
+                if n_workers == 1:
+                    backend_used = "in-process"
+                    for block in blocks:
+                        record(_block_task(*args, block, *tail))
+                else:
+                    def task(block, marker=None):
+                        return joblib.delayed(_block_task)(*args, block, *tail, marker)
+
+                    def lost(block):
+                        for rep in block:
+                            if rep not in records:
+                                deaths["lost"] += 1
+                                records[rep] = {"rep": rep, "variants": {
+                                    v.id: {"status": LOST, "reason": parallel.LOST_REASON}
+                                    for v in variants}}
+
+                    parallel.run_surviving_worker_deaths(
+                        blocks, task, record, lambda b: all(r in records for r in b), lost,
+                        n_workers, deaths)
+    finally:
+        parallel.remove_memmaps()
+        if bar is not None:
+            bar.close()
+    ordered = [records[r] for r in range(reps)]
+    run = {"reps": reps, "seed": seed, "computed": len(todo), "cached": cached,
+           "jobs": n_workers, "backend": backend_used,
+           "wall_seconds": time.perf_counter() - start,
+           **{k: v for k, v in deaths.items() if v},
+           **({"workers_capped": capped} if capped else {}),
+           **({"cache_write_errors": cache.write_errors} if cache is not None
+              and cache.write_errors else {})}
+    return ordered, run
+
+
+# ---------------------------------------------------------------------------
+# summary
+# ---------------------------------------------------------------------------
+SUMMARY_STATS = ("true_value", "mean", "median", "bias", "relative_bias", "sd", "rmse",
+                 "mean_std_error", "se_ratio", "coverage", "size", "bias_mc_se",
+                 "coverage_mc_se", "reps_ok", "reps", "hansen_rejection", "ar2_rejection",
+                 "diff_hansen_level_rejection")
+
+
+def _rate(ps: list, alpha: float) -> float:
+    ps = [p for p in ps if p is not None and np.isfinite(p)]
+    return float(np.mean(np.array(ps) < alpha)) if ps else math.nan
+
+
+def summarise(records: Sequence[dict], variants, focus: Sequence[str],
+              truth: Mapping[str, float], alpha: float) -> pd.DataFrame:
+    """One row per planned variant × focus term (module docstring for the formulas)."""
+    from scipy.special import ndtri
+    z = float(ndtri(1.0 - alpha / 2.0))
+    rows = []
+    for v in variants:
+        recs = [r["variants"].get(v.id, {}) for r in records]
+        ok = [r for r in recs if r.get("status") == "ok"]
+        rates = {
+            "hansen_rejection": _rate([r.get("hansen") for r in ok], alpha),
+            "ar2_rejection": _rate([r.get("ar2") for r in ok], alpha),
+            "diff_hansen_level_rejection": _rate([r.get("dh_level") for r in ok], alpha),
+        }
+        for term in focus:
+            b = float(truth.get(term, 0.0))
+            pairs = np.array([r["terms"][term] for r in ok if term in r["terms"]
+                              and r["terms"][term][0] is not None], dtype=float).reshape(-1, 2)
+            pairs = pairs[np.isfinite(pairs[:, 0])]
+            est, se = pairs[:, 0], pairs[:, 1]
+            n = len(est)
+            row = {"variant": v.id, "order": v.order, "is_base": v.is_base, "term": term,
+                   "true_value": b, "reps_ok": n, "reps": len(records), **rates}
+            if n:
+                err = est - b
+                sd = float(np.std(est, ddof=1)) if n > 1 else math.nan
+                good = np.isfinite(se) & (se > 0)
+                cover = np.abs(err[good]) <= z * se[good]
+                cov = float(np.mean(cover)) if good.any() else math.nan
+                row.update(mean=float(np.mean(est)), median=float(np.median(est)),
+                           bias=float(np.mean(err)),
+                           relative_bias=float(np.mean(err) / abs(b)) if b != 0 else math.nan,
+                           sd=sd, rmse=float(np.sqrt(np.mean(err ** 2))),
+                           mean_std_error=float(np.mean(se[good])) if good.any() else math.nan,
+                           coverage=cov, size=1.0 - cov if good.any() else math.nan,
+                           bias_mc_se=sd / math.sqrt(n) if n > 1 else math.nan,
+                           coverage_mc_se=math.sqrt(cov * (1 - cov) / good.sum())
+                           if good.any() else math.nan)
+                row["se_ratio"] = (row["mean_std_error"] / sd
+                                   if n > 1 and sd > 0 else math.nan)
+            rows.append(row)
+    cols = ["variant", "order", "is_base", "term"] + list(SUMMARY_STATS)
+    frame = pd.DataFrame(rows, columns=cols)
+    for c in ("reps_ok", "reps", "order"):
+        frame[c] = frame[c].astype("Int64")
+    return frame
+
+
+# ---------------------------------------------------------------------------
+# the whole simulation of a spec
+# ---------------------------------------------------------------------------
+def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None = None,
+             cache_dir=None, progress: bool | None = False, backend: str | None = None,
+             truth: Mapping[str, float] | None = None, initial: str = "stationary",
+             planned=None, panels=None) -> Simulation:
+    """Calibrate the world of ``spec`` to its data and run ``reps`` replications of
+    its whole grid (``planned``/``panels``: an audit's plan and panels, reused).
+
+    Raises :class:`InputError` (one line each) for bad ``reps``/``seed``/``truth``/
+    ``initial`` and when the base model cannot be estimated on the data."""
+    from .. import data
+    from ..audit import grid
+    from ..options import LEVEL_GROUP
+
+    reps, seed = check_reps(reps, seed)
+    grid.check_base(spec)
+    if panels is None:
+        panels = grid.load_panels(spec)
+    if planned is None:
+        planned = grid.plan(spec, panels, counts=False)
+    variants = [v for v in planned if v.status == grid.PLANNED]
+    frame = data.read_frame(spec)
+    base_panel = panels[grid.sample_key(spec.sample)]
+    world, truth_terms = build_world(spec, frame, base_panel, truth=truth, initial=initial)
+    focus = tuple(spec.focus_terms())
+    records, run = run_replications(world, frame, variants, reps=reps, seed=seed, focus=focus,
+                                    level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
+                                    cache_dir=cache_dir, progress=progress, backend=backend)
+    summary = summarise(records, variants, focus, truth_terms, spec.alpha)
+    columns = (spec.outcome,) + world.regressors
+    calibration = {
+        "seed": seed, "reps": reps, "alpha": spec.alpha,
+        "truth": {t: truth_terms[t] for t in focus if t in truth_terms},
+        "truth_source": "given" if truth is not None else "base model estimate",
+        "world": world.to_dict(),
+        "fit": fit_summary(frame, simulated_frame(world, frame, seed, 0, columns), columns,
+                           unit=spec.unit, period=spec.period),
+        "failed": {v.id: sum(1 for r in records if r["variants"][v.id]["status"] != "ok")
+                   for v in variants},
+    }
+    return Simulation(summary=summary, calibration=calibration, run=run, records=records)

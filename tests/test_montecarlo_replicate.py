@@ -1,0 +1,107 @@
+"""Replications of the grid in the calibrated world (issue 15): the summary formulas
+against hand computations, determinism across jobs and the cache, resume after an
+interruption (counting replications), bad input. The data come from
+robustgmm.simulate (a known process); nothing here reads the reference data."""
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from robustgmm.errors import InputError
+from robustgmm.montecarlo import replicate as rp
+from tests.helpers_audit import make_spec
+
+VARY = {"equations": ["difference", "system"], "steps": [1, 2]}
+
+
+@pytest.fixture
+def spec(tmp_path):
+    return make_spec(tmp_path, vary=VARY, panel_kw={"n_units": 60, "n_periods": 6},
+                     instruments={"form": "collapsed"})
+
+
+def test_summary_formulas_by_hand():
+    """bias, sd, RMSE, coverage, size, se_ratio and the test rejection rates of
+    three replications computed by hand."""
+    class V:  # a planned variant, as the summary sees it
+        id, order, is_base = "v1", 0, True
+    est, se = [0.4, 0.6, 0.9], [0.1, 0.1, 0.1]
+    recs = [{"rep": r, "variants": {"v1": {"status": "ok", "terms": {"a": [e, s]},
+                                             "hansen": p, "ar2": 0.5, "dh_level": None}}}
+            for r, (e, s, p) in enumerate(zip(est, se, [0.01, 0.2, 0.03]))]
+    row = rp.summarise(recs, [V], ["a"], {"a": 0.5}, 0.05).iloc[0]
+    err = np.array(est) - 0.5
+    assert row["bias"] == pytest.approx(err.mean())
+    assert row["relative_bias"] == pytest.approx(err.mean() / 0.5)
+    assert row["sd"] == pytest.approx(np.std(est, ddof=1))
+    assert row["rmse"] == pytest.approx(math.sqrt(np.mean(err ** 2)))
+    # |err| = 0.1, 0.1, 0.4 against 1.96 * 0.1: two of three intervals cover
+    assert row["coverage"] == pytest.approx(2 / 3) and row["size"] == pytest.approx(1 / 3)
+    assert row["se_ratio"] == pytest.approx(0.1 / np.std(est, ddof=1))
+    assert row["hansen_rejection"] == pytest.approx(2 / 3)
+    assert row["ar2_rejection"] == 0.0 and math.isnan(row["diff_hansen_level_rejection"])
+    assert row["reps_ok"] == 3 and row["median"] == pytest.approx(0.6)
+
+
+def test_deterministic_across_jobs_and_cache(spec, tmp_path):
+    one = rp.simulate(spec, reps=10, seed=5, jobs=1)
+    two = rp.simulate(spec, reps=10, seed=5, jobs=2, cache_dir=tmp_path / "c")
+    again = rp.simulate(spec, reps=10, seed=5, jobs=1, cache_dir=tmp_path / "c")
+    assert two.run["computed"] == 10 and again.run["cached"] == 10 and again.run["computed"] == 0
+    pd.testing.assert_frame_equal(one.summary, two.summary)
+    pd.testing.assert_frame_equal(one.summary, again.summary)
+    other = rp.simulate(spec, reps=10, seed=6, jobs=1)
+    assert not one.summary["mean"].equals(other.summary["mean"])
+    # every planned variant and focus term has a row; the truth is the base estimate
+    assert len(one.summary) == 4 * 3
+    assert (one.summary["reps_ok"] == 10).all()
+    assert set(one.calibration["truth"]) == {"y[t-1]", "x[t]", "w[t]"}
+
+
+def test_resume_after_interruption(spec, tmp_path, monkeypatch):
+    """Interrupted at the eighth replication, the rerun computes only the
+    replications not finished."""
+    real = rp.replicate
+    calls = []
+
+    def flaky(world, template, variants, seed, rep, *a):
+        calls.append(rep)
+        if len(calls) == 8:
+            raise KeyboardInterrupt
+        return real(world, template, variants, seed, rep, *a)
+
+    monkeypatch.setattr(rp, "replicate", flaky)
+    with pytest.raises(KeyboardInterrupt):
+        rp.simulate(spec, reps=12, seed=2, jobs=1, cache_dir=tmp_path / "c")
+    monkeypatch.setattr(rp, "replicate", real)
+    resumed = rp.simulate(spec, reps=12, seed=2, jobs=1, cache_dir=tmp_path / "c")
+    assert resumed.run["cached"] == 7 and resumed.run["computed"] == 5
+    fresh = rp.simulate(spec, reps=12, seed=2, jobs=1)
+    pd.testing.assert_frame_equal(resumed.summary, fresh.summary)
+
+
+@pytest.mark.parametrize("reps, seed, word", [(9, 0, "--reps: 9"), (20, "x", "--seed: 'x'"),
+                                              (20, 1.5, "--seed: 1.5"), ("ten", 0, "--reps")])
+def test_bad_reps_and_seed(spec, reps, seed, word):
+    with pytest.raises(InputError) as err:
+        rp.simulate(spec, reps=reps, seed=seed)
+    assert len(err.value.problems) == 1 and err.value.problems[0].startswith(word)
+    assert "\n" not in err.value.problems[0]
+
+
+def test_base_model_not_estimable(tmp_path):
+    """A regressor that copies another (z = 2x): the base model cannot be estimated,
+    so there is no world to calibrate (one line)."""
+    from tests.helpers_audit import model_dict, write_panel
+    from robustgmm.modelfile import spec_from_dict
+    path = write_panel(tmp_path, n_units=30, n_periods=6)
+    frame = pd.read_csv(path)
+    frame.assign(z=2 * frame["x"]).to_csv(path, index=False)
+    d = model_dict()
+    d["model"]["regressors"].append({"name": "z", "lags": [0], "role": "endogenous"})
+    spec = spec_from_dict(d, base_dir=tmp_path)
+    with pytest.raises(InputError) as err:
+        rp.simulate(spec, reps=10)
+    assert len(err.value.problems) == 1
+    assert "base model cannot be estimated" in err.value.problems[0]
