@@ -11,9 +11,10 @@ outcome, stacked over the transformed and, in system GMM, the level equation):
 
 Identification (:meth:`GMMProblem._first_pass`), in this order:
 
-1. regressor columns collinear in ``X'X`` (after the transform): a period dummy is
-   dropped (with a warning when a regressor repeats the time effects), any other
-   term is an error;
+1. regressor columns collinear in ``X'X`` (after the transform): period dummies
+   collinear among themselves are dropped (the base period); regressors collinear
+   with each other, or with the constant and period effects (a regressor that
+   varies only over time, ``z = 2x + 1``), are an error naming them;
 2. instrument columns that are zero for every unit, or that belong to a dropped
    dummy, are left out; so are time-effect moments implied by the time-effect
    moments before them (:meth:`.design.Design.time_functionals`; level moments
@@ -101,6 +102,11 @@ class FinalSums:
         self.ar.add(ctx.pc, prob.beta_all(self.beta), prob.keep_x, gt, ctx.level_differences())
 
 
+def _and(items) -> str:
+    items = list(items)
+    return items[0] if len(items) == 1 else ", ".join(items[:-1]) + " and " + items[-1]
+
+
 def _scale(diag: np.ndarray) -> np.ndarray:
     return 1.0 / np.sqrt(np.where(diag > 0, diag, 1.0))
 
@@ -151,16 +157,23 @@ class GMMProblem:
             raise EstimationError(
                 "regressor(s) with no independent variation after the transform: "
                 f"{', '.join(bad)} (constant within every unit, or collinear with other regressors)")
-        # the time effects lose one column among themselves (the base period); any
-        # further dummy dropped is taken by a regressor and is worth a warning
+        # the time effects lose columns among themselves (the base period, periods
+        # outside the sample); a further deterministic column dropped is taken by the
+        # regressors: some combination of them equals a combination of the constant
+        # and the period effects in every row, so their coefficients are not
+        # identified (dropping the constant would silently reparametrise: with
+        # z = 2x + 1, "z" would become the constant)
         det = np.asarray([j for j in range(K) if is_deterministic_label(d.x_labels_all[j])], dtype=int)
         if det.size:
-            alone = set(self.engine.independent_among(det).tolist())
-            taken = [d.x_labels_all[j] for j in sorted(alone - kept)]
-            if taken:
-                self.warnings.append(
-                    f"{', '.join(taken)} dropped: collinear with the regressors "
-                    "(a regressor repeats the time effects)")
+            alone = self.engine.independent_among(det)
+            if set(alone.tolist()) - kept:
+                involved = self._collinear_with_deterministic(alone)
+                raise EstimationError(
+                    f"{_and(involved)} {'is an exact linear function' if len(involved) == 1 else 'are exact linear functions of each other and'} "
+                    "of the constant and period effects in every row of this sample, so "
+                    f"{'its coefficient is' if len(involved) == 1 else 'their coefficients are'} "
+                    "not identified: drop "
+                    + ("it or the time effects" if len(involved) == 1 else "one of them"))
         d.set_kept_columns(keep_x)
         self._keep_instruments(zhz)
         if d.system and any(d.x_labels_all[j] in d.time_invariant for j in keep_x):
@@ -213,6 +226,18 @@ class GMMProblem:
             raise EstimationError(
                 f"{self.L} instruments for only {n_rows} observations: reduce last_lag, "
                 "use collapsed instruments or add data")
+
+    def _collinear_with_deterministic(self, det: np.ndarray) -> list[str]:
+        """The regressor terms in the span of the other regressors and the
+        independent deterministic columns ``det`` (each scanned last on ``X'X``)."""
+        d = self.design
+        regs = [j for j in range(len(d.x_labels_all)) if not is_deterministic_label(d.x_labels_all[j])]
+        involved = []
+        for j in regs:
+            order = np.asarray([*(r for r in regs if r != j), *det.tolist(), j], dtype=int)
+            if j not in set(self.engine.independent_among(order).tolist()):
+                involved.append(d.x_labels_all[j])
+        return involved or [d.x_labels_all[j] for j in regs]
 
     def _keep_instruments(self, zhz):
         """Drop instrument columns that are zero for every unit, then redundant

@@ -23,6 +23,7 @@ import pytest
 from robustgmm import cli, core
 from robustgmm.audit import grid
 from robustgmm.audit import audit
+from robustgmm.errors import EstimationError
 from robustgmm.modelfile import read_model
 from robustgmm.simulate import simulate_panel
 
@@ -530,20 +531,56 @@ def test_fit_shows_the_warnings(troubled, tmp_path, capsys):
     assert any("singular" in w for w in json.loads((tmp_path / "fit.json").read_text())["warnings"])
 
 
-def test_a_dummy_dropped_for_collinearity_is_reported(troubled):
-    # with a linear trend, the period dummies and the trend are collinear after the
-    # transform; the core keeps the trend and silently drops one more dummy
-    regressors = [{"name": "trend", "lags": [0], "role": "exogenous"},
-                  {"name": "x", "lags": [0], "role": "endogenous"}]
-    spec = make_spec(troubled, None, model={"regressors": regressors},
-                     method={"equations": "difference"})
-    base = make_spec(troubled, None, method={"equations": "difference"})
-    with_trend = core.fit(spec, grid.load_panels(spec)[grid.sample_key(spec.sample)])
-    without = core.fit(base, grid.load_panels(base)[grid.sample_key(base.sample)])
-    dummies = lambda r: {t.label for t in r.terms if t.label.startswith("period[")}  # noqa: E731
-    dropped = dummies(without) - dummies(with_trend)
-    assert dropped, "the trend takes the place of a dummy"
-    assert any(label in w for w in with_trend.warnings for label in dropped)
+def test_a_regressor_collinear_with_the_time_effects_is_an_error(troubled, tmp_path, capsys):
+    # With time effects, a linear trend is a combination of the period dummies after
+    # the transform (and z = 2x + 1 a combination of x and the constant in system
+    # GMM): dropping a dummy or the constant would make the regressor's coefficient
+    # an arbitrary normalisation (issue 12 item 2). The core used to drop one more
+    # dummy with a warning; now the terms are named and the variant fails.
+    frame = pd.read_csv(troubled / "panel.csv")
+    frame["x_affine"] = 2.0 * frame["x"] + 1.0
+    frame.to_csv(troubled / "panel.csv", index=False)
+    cases = [([{"name": "trend", "lags": [0], "role": "exogenous"},
+               {"name": "x", "lags": [0], "role": "endogenous"}], "difference", ["trend[t]"]),
+             ([{"name": "trend", "lags": [0], "role": "exogenous"},
+               {"name": "x", "lags": [0], "role": "endogenous"}], "system", ["trend[t]"]),
+             ([{"name": "x", "lags": [0], "role": "endogenous"},
+               {"name": "x_affine", "lags": [0], "role": "exogenous"}], "system",
+              ["x[t]", "x_affine[t]"])]
+    for regressors, equations, named in cases:
+        spec = make_spec(troubled, None, model={"regressors": regressors},
+                         method={"equations": equations})
+        with pytest.raises(EstimationError) as info:
+            core.fit(spec, grid.load_panels(spec)[grid.sample_key(spec.sample)])
+        text = str(info.value)
+        assert "exact linear function" in text and "constant and period effects" in text
+        assert all(term in text for term in named), text
+        assert "x[t]" in text or named == ["trend[t]"]
+        if named == ["trend[t]"]:
+            assert "x[t]" not in text  # x is not part of the dependency
+    model = write_model(troubled, None, name="affine.toml",
+                        model={"regressors": cases[2][0]}, method={"equations": "system"})
+    code, _, err = _main(["fit", model], capsys)
+    assert code == cli.EXIT_INPUT and "x_affine[t]" in err and len(err.strip().splitlines()) == 1
+
+
+def test_collinearity_in_one_sample_fails_that_variant_only(troubled):
+    # z = 2x + 1 from 2004 on, independent before: the full sample identifies
+    # both coefficients, the late sample does not (issue 12 item 2: that variant
+    # fails with the reason, the audit goes on)
+    frame = pd.read_csv(troubled / "panel.csv")
+    rng = np.random.default_rng(5)
+    frame["z"] = np.where(frame["period"] >= 2004, 2.0 * frame["x"] + 1.0, rng.normal(size=len(frame)))
+    frame.to_csv(troubled / "panel.csv", index=False)
+    regressors = [{"name": "x", "lags": [0], "role": "endogenous"},
+                  {"name": "z", "lags": [0], "role": "exogenous"}]
+    spec = make_spec(troubled, {"equations": ["system"],
+                                "sample": [{"name": "late", "period_from": 2004}]},
+                     model={"regressors": regressors}, method={"equations": "system"})
+    v = _audit_variants(spec).set_index("sample")
+    assert v.loc["full sample", "status"] == "ok"
+    assert v.loc["late", "status"] == "failed"
+    assert "x[t] and z[t] are exact linear functions" in v.loc["late", "reason"]
 
 
 def test_reports_show_numerical_warnings(troubled, tmp_path):
