@@ -552,16 +552,18 @@ LARGE_GRID = 5000
 def check_grid_size(spec, args) -> None:
     """Refuse a very large grid without ``--yes``: one line with the count and, for an
     audit, the time it would take (one base-model fit timed, times the variants,
-    over the workers). Counting the grid estimates nothing."""
-    from .audit.grid import expand
-    n = len(expand(spec))
-    if n <= LARGE_GRID or args.yes:
+    over the workers). Counting the grid estimates nothing. A model file with
+    ``[audit] max_variants`` sets its own cap instead (above it: an error naming the
+    key, whatever ``--yes`` says)."""
+    from .audit.grid import check_size
+    n = check_size(spec, cap=LARGE_GRID)
+    if spec.max_variants is not None or n is None or n <= LARGE_GRID or args.yes:
         return
     what = "planning it counts instruments for each" if args.plan else "running it"
     estimate = "" if args.plan else _time_estimate(spec, n, args.jobs)
     raise InputError(f"{spec.source}: [audit.vary] makes {n:,} variants (more than "
                      f"{LARGE_GRID:,}){estimate}; {what} is a long job: add --yes to go "
-                     "ahead, or vary fewer settings")
+                     "ahead (or set [audit] max_variants), or vary fewer settings")
 
 
 def _time_estimate(spec, n: int, jobs) -> str:

@@ -285,6 +285,10 @@ class Spec:
     sample: SampleFilter = field(default_factory=SampleFilter)
     focus: tuple[str, ...] = ()
     alpha: float = 0.05
+    #: The most variants the audit may run (``[audit] max_variants``; None: no cap
+    #: of the model's own, the command line asks for ``--yes`` above 5,000). A run
+    #: control, not part of :func:`canonical_settings`.
+    max_variants: int | None = None
     vary: Vary = field(default_factory=Vary)
     thresholds: Thresholds = field(default_factory=Thresholds)
     #: Display labels of terms for every document (``[labels] "x[t]" = "Leverage"``)
@@ -314,6 +318,7 @@ class Spec:
             "gmm_instruments": _tuple_of(GmmInstrument, "GmmInstrument"),
             "sample": _instance(SampleFilter, "a SampleFilter"),
             "focus": _seq(c.v_name_list), "alpha": c.v_prob,
+            "max_variants": _optional(c.v_max_variants),
             "vary": _instance(Vary, "a Vary"),
             "thresholds": _instance(Thresholds, "a Thresholds"),
             "source": _instance(str, "a text (the model file, for messages)"),

@@ -72,6 +72,7 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     grid.check_base(spec)
     frame = grid.read_for_splits(spec)
     spec = grid.resolve_splits(spec, frame)  # one subgroup sample per value of a split column
+    grid.check_size(spec)
     panels = grid.load_panels(spec, frame=frame)
     t_load = time.perf_counter()
     # counts come with each estimation; planning here only does the cheap checks

@@ -55,6 +55,7 @@ import dataclasses
 import hashlib
 import itertools
 import json
+import math
 from dataclasses import dataclass
 from typing import Any, Callable, Mapping, Sequence
 
@@ -638,6 +639,28 @@ def check_base(spec: Spec) -> None:
         raise InputError(f"{spec.source}: the base model: {reason}")
 
 
+def size_bound(spec: Spec) -> int:
+    """At most this many variants: the base plus the product of the varied lists
+    (:func:`expand` removes repeats, so the grid can be smaller). Instant."""
+    return 1 + math.prod(len(values) for _, values, _ in _dimensions(spec))
+
+
+def check_size(spec: Spec, cap: int | None = None) -> int | None:
+    """Check the grid of ``spec`` against ``[audit] max_variants`` (or ``cap`` when the
+    model sets none): above it the audit is bad input, one line naming the key and
+    the count. Returns the exact count (from :func:`expand`: no data, no estimate)
+    when the bound :func:`size_bound` exceeds the cap, otherwise None (within it)."""
+    limit = spec.max_variants if spec.max_variants is not None else cap
+    if limit is None or size_bound(spec) <= limit:
+        return None
+    n = len(expand(spec))
+    if spec.max_variants is not None and n > spec.max_variants:
+        raise InputError(f"{spec.source}: [audit.vary] makes {n:,} variants, more than "
+                         f"[audit] max_variants = {spec.max_variants:,}: vary fewer "
+                         "settings or raise max_variants")
+    return n
+
+
 def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
     """Plan the audit of ``spec`` without estimating (``robustgmm audit --plan``).
 
@@ -646,5 +669,6 @@ def plan_frame(spec: Spec, panel=None) -> pd.DataFrame:
     check_base(spec)
     frame = read_for_splits(spec)
     spec = resolve_splits(spec, frame)
+    check_size(spec)
     panels = load_panels(spec, panel, frame=frame)
     return plan_table(spec, plan(spec, panels))

@@ -151,6 +151,8 @@ def spec_to_dict(spec: Spec) -> dict:
         "audit": {"focus": list(spec.focus), "alpha": spec.alpha,
                   "thresholds": dataclasses.asdict(spec.thresholds)},
     }
+    if spec.max_variants is not None:
+        d["audit"]["max_variants"] = spec.max_variants
     if not spec.regressors:
         del d["model"]["regressors"]
     if spec.outcome_instrument_lags is not None:

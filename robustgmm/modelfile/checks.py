@@ -189,6 +189,14 @@ def v_last_lag(v):
     return int(v)
 
 
+def v_max_variants(v):
+    if not is_int(v):
+        raise Bad("must be a whole number (1 or more): the most variants the audit may run")
+    if v < 1:
+        raise Bad("must be 1 or more")
+    return int(v)
+
+
 def v_period(v):
     if not is_int(v):
         raise Bad("must be a whole number (a period of the data)")

@@ -226,3 +226,47 @@ def test_a_very_large_grid_needs_yes(tmp_path, capsys, monkeypatch):
     assert not (tmp_path / "out").exists()
     code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), "--plan", "--yes"])
     assert code == 0
+
+
+def test_max_variants_caps_the_grid_in_one_line(tmp_path, capsys, monkeypatch):
+    # [audit] max_variants: the grid is counted without estimating anything (the
+    # core's fit is replaced by a trap) and a larger one is an error naming the key
+    # and the count, with or without --yes, for the audit, its plan and the API
+    from robustgmm import cli, core
+    from robustgmm.audit import audit
+    from robustgmm.errors import InputError
+    from robustgmm.modelfile import read_model
+
+    vary = {"steps": [1, 2], "form": ["per-period", "collapsed"]}  # 4 variants
+    model = write_model(tmp_path / "project", vary, audit={"max_variants": 3})
+    spy = []
+    monkeypatch.setattr(core, "fit_family", lambda *a, **k: spy.append(1))
+    monkeypatch.setattr(core, "fit", lambda *a, **k: spy.append(1))
+    for extra in ([], ["--plan"], ["--yes"]):
+        code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), *extra])
+        lines = capsys.readouterr().err.strip().splitlines()
+        assert code == cli.EXIT_INPUT and len(lines) == 1, lines
+        assert "makes 4 variants, more than [audit] max_variants = 3" in lines[0]
+    assert not spy and not (tmp_path / "out").exists()
+    with pytest.raises(InputError, match=r"max_variants = 3"):
+        audit(read_model(model))
+    assert not spy
+    monkeypatch.undo()
+    # a cap at or above the count runs without --yes, even above the default size
+    monkeypatch.setattr(cli, "LARGE_GRID", 3)
+    model = write_model(tmp_path / "project", vary, name="cap4.toml", audit={"max_variants": 4})
+    assert cli.main(["audit", str(model), "--plan"]) == 0
+    assert read_model(model).max_variants == 4
+
+
+def test_max_variants_must_be_a_whole_number(tmp_path, capsys):
+    from robustgmm import cli
+    for bad in ("0", "2.5", '"many"'):
+        folder = tmp_path / bad.strip('"').replace(".", "_")
+        model = write_model(folder, {"steps": [1, 2]})
+        model.write_text(model.read_text().replace("[audit]\n", f"[audit]\nmax_variants = {bad}\n", 1))
+        assert "max_variants" in model.read_text()
+        code = cli.main(["audit", str(model), "--plan"])
+        lines = capsys.readouterr().err.strip().splitlines()
+        assert code == cli.EXIT_INPUT and len(lines) == 1, lines
+        assert f"[audit] max_variants = {bad}" in lines[0], lines
