@@ -213,14 +213,18 @@ def read_table(table: Table, path: Path, settings: Sequence[str],
 
     Text columns are read as strings; the other kinds are checked and left as pandas
     reads them (a whole-number column with a missing value is float, a boolean
-    column with one is object), empty cells are missing values."""
+    column with one is object), empty cells are missing values. Each column's type
+    is inferred from the whole column (``low_memory=False``), so a long table is
+    read as a short one is: never chunk by chunk, which would leave a setting
+    column such as ``steps`` half integers and half text (with a DtypeWarning)."""
     if not path.is_file():
         problems.append(f"{path}: file missing (not an audit output folder? "
                         f"run `robustgmm audit MODEL.toml --out {path.parent}` first)")
         return None
     kinds = table.kinds(settings)
     try:
-        frame = pd.read_csv(path, dtype={c: str for c, k in kinds.items() if k == "text"})
+        frame = pd.read_csv(path, dtype={c: str for c, k in kinds.items() if k == "text"},
+                            low_memory=False)
     except Exception as exc:  # pandas raises several parser error types
         first = str(exc).splitlines()[0] if str(exc) else ""
         problems.append(f"{path}: cannot be read as CSV ({exc.__class__.__name__}: {first})")

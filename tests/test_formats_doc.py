@@ -21,3 +21,23 @@ def test_every_json_key_is_documented():
         assert f"`{key}`" in DOC, key
     assert f"now {contract.FORMAT_VERSION})" in DOC
     assert "| `vcov` |" in DOC and "| `diagnostics` |" in DOC
+
+
+def test_a_long_table_is_read_by_whole_columns(tmp_path, recwarn):
+    # issue 12 item 12: a grid of 103,680 variants read `steps` back half integers
+    # and half text, with a pandas DtypeWarning on stderr (pandas parses a csv in
+    # chunks of 2**18 rows unless told to type each column as a whole)
+    import pandas as pd
+    names = contract.VARIANTS.names(["steps"])
+    rows = 2 ** 18 + 5
+    line = {n: "" for n in names}
+    line.update(variant="a", order="1", is_base="False", status="failed", steps="2")
+    text = ",".join(names) + "\n" + (",".join(line[n] for n in names) + "\n") * rows
+    path = tmp_path / "variants.csv"
+    path.write_text(text + text.splitlines()[1].replace(",2,", ",iterated,") + "\n")
+    problems: list = []
+    frame = contract.read_table(contract.VARIANTS, path, ["steps"], problems)
+    assert problems == []
+    assert not [w for w in recwarn if issubclass(w.category, pd.errors.DtypeWarning)]
+    assert {type(v) for v in frame["steps"]} == {str}
+    assert frame["steps"].iloc[-1] == "iterated" and frame["steps"].iloc[0] == "2"

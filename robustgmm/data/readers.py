@@ -80,7 +80,10 @@ def _csv_separator(path: Path) -> str:
 
 def _read(path: Path, kind: str, columns: list) -> pd.DataFrame:
     if kind == ".csv":
-        return _read_csv(path, usecols=lambda c: c in set(columns))
+        # low_memory=False: each column's type is inferred from the whole column, not
+        # chunk by chunk (chunks would mix numbers and text in one column, with a
+        # DtypeWarning on stderr, and "007" and 7 would become different ids)
+        return _read_csv(path, usecols=lambda c: c in set(columns), low_memory=False)
     if kind == ".parquet":
         return pd.read_parquet(path, columns=columns)
     if kind == ".dta":

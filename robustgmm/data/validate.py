@@ -138,10 +138,14 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
                         + (f" and {n - 1} more rows" if n > 1 else ""))
     elif (units.dtype == object or isinstance(units.dtype, pd.CategoricalDtype)
           or pd.api.types.is_string_dtype(units.dtype)):
-        kinds = {type(v) for v in units}
-        if len(kinds) > 1 or isinstance(units.dtype, pd.CategoricalDtype):
-            units = units.astype(str)
-        out[spec.unit] = _strip_ids(units, spec.unit, where)
+        mixed = _mixed_ids(units, spec.unit, where, row)
+        if mixed:
+            problems.append(mixed)
+        else:
+            kinds = {type(v) for v in units}
+            if len(kinds) > 1 or isinstance(units.dtype, pd.CategoricalDtype):
+                units = units.astype(str)
+            out[spec.unit] = _strip_ids(units, spec.unit, where)
 
     # periods: whole numbers
     per = out[spec.period]
@@ -235,6 +239,22 @@ def _period_step(periods: np.ndarray) -> int:
     if len(distinct) < 2:
         return 1
     return int(reduce(math.gcd, np.diff(distinct).tolist()))
+
+
+def _mixed_ids(units: pd.Series, column: str, where: str, row: Callable) -> str | None:
+    """A problem line when a unit column holds numbers and text side by side (cells
+    typed differently in a spreadsheet): ``7`` and ``"7"`` or ``"007"`` would be read
+    as different units, or as one, depending on how they are compared, so the ids
+    must be written one way. (A csv column is parsed as a whole: one kind.)"""
+    if isinstance(units.dtype, pd.CategoricalDtype):
+        return None
+    is_text = units.map(lambda v: isinstance(v, str)).to_numpy()
+    if is_text.all() or not is_text.any():
+        return None
+    number, text = units.index[~is_text][0], units.index[is_text][0]
+    return (f"{where}: unit column {column!r} holds both numbers ({_show(units[number])} at "
+            f"{row(number)}) and text ({_show(units[text])} at {row(text)}); write every id "
+            "the same way (all as text or all as numbers)")
 
 
 def _strip_ids(units: pd.Series, column: str, where: str) -> pd.Series:

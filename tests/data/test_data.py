@@ -381,3 +381,54 @@ def test_a_varied_sample_where_a_regressor_is_constant_fails_only_its_variants(t
     assert all("regressor 'x' has the same value (2.5) in every row in sample 'late'"
                in out[v.id].reason for v in late)
     assert all(out[v.id].status == runner.OK for v in variants if v.spec.sample.name != "late")
+
+
+# -- column types: inferred from the whole column (issue 12 item 12) ---------------
+#: pandas parses a csv in chunks of 2**18 rows by default; a column whose kind
+#: changes after the first chunk is the case that used to leak a DtypeWarning.
+CHUNK_ROWS = 2 ** 18
+
+
+def _long_csv(path, tail: str):
+    """A csv longer than one parser chunk: numeric ids 1..N (5 periods each), then
+    the rows of ``tail`` (written raw)."""
+    n_units = CHUNK_ROWS // 5 + 10
+    ids = np.repeat(np.arange(1, n_units + 1), 5)
+    years = np.tile(np.arange(2000, 2005), n_units)
+    body = pd.DataFrame({"id": ids, "year": years, "y": 0.5 * (ids % 7) + years % 3,
+                         "x": (ids % 5) * 1.0 + (years % 2)})
+    path.write_text(body.to_csv(index=False) + tail)
+
+
+def test_a_long_csv_is_typed_by_whole_columns(tmp_path, recwarn):
+    # text ids only after the first chunk: the column is one kind (text), no warning
+    # reaches stderr, and id 7 written in the first chunk stays the unit "7"
+    _long_csv(tmp_path / "panel.csv", "".join(f"Z9,{2000 + t},1.0,{t % 2}.5\n" for t in range(5)))
+    got = read_frame(make_spec(tmp_path))
+    assert not [w for w in recwarn if issubclass(w.category, pd.errors.DtypeWarning)]
+    assert {type(v) for v in got["id"]} == {str}
+    assert (got["id"] == "7").sum() == 5 and (got["id"] == "Z9").sum() == 5
+
+
+def test_text_late_in_a_long_numeric_column_is_one_line(tmp_path, recwarn):
+    _long_csv(tmp_path / "panel.csv", "99999999,2000,1.0,abc\n")
+    with pytest.raises(InputError) as info:
+        read_frame(make_spec(tmp_path))
+    assert not [w for w in recwarn if issubclass(w.category, pd.errors.DtypeWarning)]
+    (line,) = info.value.problems
+    assert "panel.csv" in line and "column 'x' must be numeric: text 'abc'" in line
+    assert f"line {CHUNK_ROWS // 5 * 5 + 50 + 2}" in line
+
+
+def test_unit_ids_of_numbers_and_text_side_by_side_are_an_error(tmp_path):
+    # a spreadsheet column whose cells are typed differently (numbers, and text ids
+    # such as "C3"): whether 7 and "7" are one unit would depend on how they are
+    # compared, so robustgmm asks for one way of writing the ids
+    df = frame(n_units=3).astype({"id": object})
+    df.loc[df["id"] == 3, "id"] = "C3"
+    df.to_excel(tmp_path / "panel.xlsx", index=False)
+    with pytest.raises(InputError) as info:
+        read_frame(make_spec(tmp_path, file="panel.xlsx"))
+    (line,) = info.value.problems
+    assert "panel.xlsx" in line and "unit column 'id' holds both numbers (1 at row 2)" in line
+    assert "and text ('C3' at row 14)" in line and "the same way" in line

@@ -89,6 +89,8 @@ def data_case(name, mutate, *culprit, ext=".csv", model_edit=lambda m: m):
             (path.write_bytes if isinstance(frame, bytes) else path.write_text)(frame)
         elif ext == ".parquet":
             frame.to_parquet(path, index=False)
+        elif ext == ".xlsx":
+            frame.to_excel(path, index=False)
         else:
             frame.to_csv(path, index=False)
         model = model_edit(GOOD_MODEL).replace('"panel.csv"', f'"panel{ext}"')
@@ -274,6 +276,10 @@ DEGENERATE_CASES = [
               lambda d: d.assign(z=0.1 * (d["year"] - 2000) ** 2),
               "z[t] is an exact linear function of the constant and period effects",
               model_edit=add('[[model.regressors]]\nname = "z"\nlags = [0]\nrole = "exogenous"')),
+    data_case("unit ids of numbers and text side by side",
+              lambda d: at(d, "firm", 12, "F3"), "panel.xlsx",
+              "unit column 'firm' holds both numbers (1 at row 2) and text ('F3' at row 14)",
+              ext=".xlsx"),
     data_case("biennial periods", lambda d: d.assign(year=1990 + 2 * (d["year"] - 2001)),
               "period column 'year' holds periods spaced 2 apart (1990, 1992, 1994, ...)",
               "running period number"),
