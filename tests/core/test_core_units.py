@@ -94,3 +94,25 @@ def test_rescaling_a_column_changes_nothing_but_its_coefficients(name, column):
         scaled[column] = scaled[column] * c
         res = fit(spec, panel_from_frame(scaled, "unit", "period", ["y", "x", "w"]))
         _compare(res, ref, column, c)
+
+
+@pytest.mark.parametrize("name", sorted(SPECS))
+def test_rescaling_an_extra_instrument_changes_nothing(name):
+    # issue 12 item 1 names instruments as well as regressors: an extra exogenous
+    # instrument column z (correlated with x) rescaled by c changes no reported number
+    df = _frame().copy()
+    rng = np.random.default_rng(8)
+    df["z"] = df["x"] + rng.normal(size=len(df))
+    spec = sim_spec(**SPECS[name], extra_instruments=("z",))
+    columns = ["y", "x", "w", "z"]
+    ref = fit(spec, panel_from_frame(df, "unit", "period", columns))
+    assert any("z" in c.description for c in ref_design(spec, df, columns).z_columns)
+    for c in FACTORS:
+        scaled = df.copy()
+        scaled["z"] = scaled["z"] * c
+        _compare(fit(spec, panel_from_frame(scaled, "unit", "period", columns)), ref, "z", c)
+
+
+def ref_design(spec, df, columns):
+    from robustgmm.core.design import Design
+    return Design(spec, panel_from_frame(df, "unit", "period", columns))
