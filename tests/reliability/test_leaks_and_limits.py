@@ -270,3 +270,23 @@ def test_max_variants_must_be_a_whole_number(tmp_path, capsys):
         lines = capsys.readouterr().err.strip().splitlines()
         assert code == cli.EXIT_INPUT and len(lines) == 1, lines
         assert f"[audit] max_variants = {bad}" in lines[0], lines
+
+
+def test_the_plan_estimates_nothing(tmp_path, capsys, monkeypatch):
+    # item 12: counting instruments for --plan must not estimate anything (a 61,920
+    # variant grid would otherwise take hours to plan): every estimator is a trap
+    # (the count itself is the first pass of moment sums and the rank decisions)
+    from robustgmm import cli, core
+    from robustgmm.core import family
+
+    def trap(*a, **k):
+        raise AssertionError("--plan estimated a model")
+
+    for target, name in ((core, "fit"), (core, "fit_family"), (family, "_one_step_stage"),
+                         (family, "_solution_stage")):
+        monkeypatch.setattr(target, name, trap)
+    model = write_model(tmp_path / "project", {"steps": [1, 2], "form": ["per-period", "collapsed"],
+                                               "equations": ["difference", "system"]})
+    assert cli.main(["audit", str(model), "--plan"]) == 0
+    out = capsys.readouterr().out
+    assert "8 planned" in out, out
