@@ -19,6 +19,7 @@ import os
 import sys
 import traceback
 import warnings
+from collections import Counter
 from pathlib import Path
 from typing import Sequence
 
@@ -650,21 +651,30 @@ def _after_audit(result, out: Path, args) -> int:
               "and are recorded as failed; a rerun tries them again", file=sys.stderr)
     fragile = _fragile_terms(result.verdict)
     _out(_audit_summary(result, out, fragile))
-    _out(run_line(run))
+    _out(run_line(run, result.variants["status"]))
     if args.fail_on_fragile and fragile:
         return EXIT_FRAGILE
     return EXIT_OK
 
 
-def run_line(run: dict) -> str:
+def run_line(run: dict, statuses=None) -> str:
     """The one line that closes every audit (on stdout, with or without a bar on
-    stderr): '192 variants in 28.4 s: 180 estimated, 12 from the cache, 0 failed'."""
+    stderr): '192 variants in 28.4 s: 184 estimated (12 from the cache), 8 skipped,
+    0 failed'. ``statuses`` (the ``status`` column of variants.csv) gives the final
+    classes: the runner counts a not-identified variant as failed, the audit records
+    it as skipped, and the line must agree with the table."""
     n = run.get("variants", 0)
     wall = run.get("wall_seconds")
     took = f" in {wall:.1f} s" if isinstance(wall, (int, float)) else ""
-    return (f"{n} variant{'s' if n != 1 else ''}{took}: "
-            f"{run.get('computed', 0)} estimated, {run.get('cached', 0)} from the cache, "
-            f"{run.get('failed', 0)} failed")
+    if statuses is None:
+        return (f"{n} variant{'s' if n != 1 else ''}{took}: "
+                f"{run.get('computed', 0)} estimated, {run.get('cached', 0)} from the cache, "
+                f"{run.get('failed', 0)} failed")
+    counts = Counter(str(v) for v in statuses)
+    n = sum(counts.values())
+    return (f"{n} variant{'s' if n != 1 else ''}{took}: {counts.get('ok', 0)} estimated "
+            f"({run.get('cached', 0)} from the cache), {counts.get('skipped', 0)} skipped, "
+            f"{counts.get('failed', 0)} failed")
 
 
 def _fragile_terms(verdict) -> list[str]:

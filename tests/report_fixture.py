@@ -14,8 +14,8 @@ The folders:
   not acceptable), and a sample without the only bakeries where the noise regressor
   moves cannot be estimated (failed variants with a reason).
 - ``one``, ``two``: 1 and 2 variants; ``many``: 192 variants (above the figures'
-  per-variant tick limit); ``five``: five settings varied, two values each (32
-  variants, all estimated); ``slug``: two focus labels that share a file-name slug;
+  per-variant tick limit); ``tall``: four focus terms (48 variants); ``five``: five
+  settings varied, two values each (32 variants, all estimated); ``slug``: two focus labels that share a file-name slug;
   ``roles``: a regressor's role varied (8 variants); ``skips``: ``last_lag`` a
   settings column with one value; ``thresholds``: alpha and every verdict threshold
   changed from its default; ``all_failed``: every variant fails.
@@ -100,6 +100,10 @@ FOLDERS = {
     "three_hundred": _model({"equations": ["difference", "system"],
                              "transform": ["fd", "fod"], "steps": [1, 2, "iterated"],
                              "first_lag": [2, 3, 4, 5, 6], "last_lag": [3, 4, 5, 6, "all"]}),
+    # four focus terms: table.tex needs two floats to fit the page
+    "tall": _model({"equations": ["difference", "system"], "transform": ["fd", "fod"],
+                    "steps": [1, 2], "form": ["per-period", "collapsed"],
+                    "last_lag": [2, 3, 4]}, focus=(AR, FRAGILE, ROBUST, NOISE)),
     "five": _model({"equations": ["difference", "system"], "transform": ["fd", "fod"],
                     "steps": [1, 2], "form": ["per-period", "collapsed"],
                     "errors": ["robust", "conventional"]}),

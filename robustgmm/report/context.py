@@ -46,6 +46,14 @@ def _drivers(t) -> list[dict]:
              "shift": fmt(d.shift)} for d in t.drivers]
 
 
+DRIVERS_NOTE = ("For each varied setting and value: the judged variants that use it, their mean "
+                "estimate and share significant, and the shift, the change in the estimate "
+                "when that setting takes this value instead of the base model's with the other "
+                "settings held fixed (least squares of the estimates on the indicators of "
+                "every varied setting; Young & Holsteen 2017). The base model's values have "
+                "shift 0; the largest shift comes first.")
+
+
 def _closest(s: AuditSummary) -> dict | None:
     c = s.closest
     if not c or s.base_acceptable:
@@ -103,7 +111,7 @@ def _truth_rows(s: AuditSummary) -> list[dict]:
         if t.truth is None:
             continue
         inside = "n/a" if t.n == 0 else ("yes" if t.low <= t.truth <= t.high else "no")
-        rows.append({"term": t.term, "truth": fmt(t.truth), "base": fmt(t.base_estimate),
+        rows.append({"term": t.term, "label": t.label, "truth": fmt(t.truth), "base": fmt(t.base_estimate),
                      "low": fmt(t.low), "high": fmt(t.high), "inside": inside})
     return rows
 
@@ -173,7 +181,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
     terms = []
     for t in s.terms:
         terms.append({
-            "term": t.term, "verdict": t.verdict, "base": fmt(t.base_estimate),
+            "term": t.term, "label": t.label, "verdict": t.verdict, "base": fmt(t.base_estimate),
             "base_se": fmt(t.base_std_error), "base_p": fmt_p(t.base_p_value),
             "low": fmt(t.low), "high": fmt(t.high), "median": fmt(t.median), "n": t.n,
             "n_positive": t.n_positive, "n_negative": t.n_negative,
@@ -226,6 +234,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
                                                len(audit.focus)),
         "base_table": base_model_table(audit),
         "term_names": term_labels(audit),
+        "drivers_note": DRIVERS_NOTE,
         "bounds_headers": bounds_headers,
         "bounds_rows": bounds_rows,
         "bounds_note": bounds_note,

@@ -9,7 +9,10 @@ focus term's estimate with its standard error underneath, then diagnostics
 The file is a ``table`` environment to ``\\input`` into a document that loads
 ``booktabs`` and ``tabularx``; all user text is escaped for LaTeX. Terms are named by
 the model file's ``[labels]`` when it has them; ``[report] stars = true`` adds
-significance stars.
+significance stars. A table taller than a page (many focus terms or columns)
+continues in a second ``table`` float with the same number and "(continued)" in its
+caption (:func:`float_breaks`); a test row that is n/a in every shown column (Sargan
+when every column is system GMM) is left out, and so is its line in the note.
 """
 from __future__ import annotations
 
@@ -23,8 +26,10 @@ from .labels import report_option, term_labels, value_text
 from .inputs import AuditFolder
 from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
 
+# "$" becomes a math-mode dollar: the text-mode \$ comes from the text-companion
+# font, which a small TeX installation (no cm-super) can only draw as a bitmap.
 _LATEX_SPECIAL = {
-    "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#",
+    "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"$\$$", "#": r"\#",
     "_": r"\_", "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}",
     "^": r"\textasciicircum{}", "<": r"\textless{}", ">": r"\textgreater{}",
 }
@@ -129,14 +134,39 @@ def one_at_a_time(audit: AuditFolder) -> list[tuple[str, tuple[str, ...], tuple]
 #: convention (common practice): * p < 0.10, ** p < 0.05, *** p < 0.01.
 STARS = ((0.01, "***"), (0.05, "**"), (0.10, "*"))
 
+#: Lines of a float (in \\small rows) that fit a page of a standard article with
+#: room to spare: the default 10pt article holds about 46, the 12pt one fewer.
+FLOAT_LINES = 40
+
+
+def float_breaks(n_panels: int, n_terms: int, n_diag: int, note_lines: int = 9) -> set[int]:
+    """The panels that start a new ``table`` float, so that no float is taller than
+    :data:`FLOAT_LINES` (a float taller than the page is never placed well). A panel
+    takes about 4 lines of headers and rules, two per focus term and one per test
+    row; the note under the last panel about ``note_lines``; a caption two."""
+    panel = 4 + 2 * n_terms + n_diag
+    starts, used = {0}, 2
+    for p in range(n_panels):
+        need = panel + (note_lines if p == n_panels - 1 else 0)
+        if p and used + need > FLOAT_LINES:
+            starts.add(p)
+            used = 2
+        used += need + 1
+    return starts
+
+
 #: What each test row reports, for the table note.
-TEST_NOTE = ("Hansen \\textit{p}: the \\textit{J} test of the over-identifying restrictions with the "
-             "robust weight (Hansen 1982); Sargan \\textit{p}: the same restrictions with the "
-             "homoskedastic weight (Sargan 1958); AR(1), AR(2) \\textit{p}: tests for first- and "
-             "second-order serial correlation of the differenced errors (Arellano \\& Bond "
-             "1991), of which AR(2) must not reject")
-DIFF_NOTE = ("; difference-in-Hansen \\textit{p}: validity of the level-equation instruments of "
-             "system GMM (Blundell \\& Bond 1998)")
+TEST_NOTES = {  # test row column -> what the row reports
+    "hansen_p": "Hansen \\textit{p}: the \\textit{J} test of the over-identifying "
+                "restrictions with the robust weight (Hansen 1982)",
+    "sargan_p": "Sargan \\textit{p}: the same restrictions with the homoskedastic weight "
+                "(Sargan 1958)",
+    "ar2_p": "AR(1), AR(2) \\textit{p}: tests for first- and second-order serial correlation "
+             "of the differenced errors (Arellano \\& Bond 1991), of which AR(2) must not "
+             "reject",
+    "diff_hansen_level_p": "difference-in-Hansen \\textit{p}: validity of the level-equation "
+                           "instruments of system GMM (Blundell \\& Bond 1998)",
+}
 
 
 def stars(p) -> str:
@@ -228,15 +258,14 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
                  ("AR(1) $p$", "ar1_p", fmt_p), ("AR(2) $p$", "ar2_p", fmt_p)]
     if has_diff:
         diag_rows.append(("Diff.-in-Hansen $p$", "diff_hansen_level_p", fmt_p))
+    # a test row that is n/a in every shown column says nothing (Sargan in system GMM)
+    shown_ids = [vid for panel in panels for vid, _, _ in panel]
+    diag_rows = [r for r in diag_rows
+                 if any(r[2](vrow.loc[vid, r[1]]) != "n/a" for vid in shown_ids)]
+    breaks = float_breaks(len(panels), len(audit.focus), len(diag_rows))
     lines = [
         "% robustgmm: focus terms across the base model and one-setting departures.",
         "% Requires \\usepackage{booktabs} and \\usepackage{tabularx} in the preamble.",
-        "\\begin{table}[htbp]",
-        "\\centering",
-        "\\small",
-        "\\setlength{\\tabcolsep}{3pt}",
-        "\\caption{Robustness of the estimates to one change at a time}",
-        "\\label{tab:robustgmm}",
     ]
     spec_cols = ("{>{\\raggedright\\arraybackslash}p{0.25\\textwidth}"
                  + "*{" + str(width) + "}{>{\\centering\\arraybackslash}X}}")
@@ -245,7 +274,19 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
     for p, panel in enumerate(panels):
         k = len(panel)
         pad = [""] * (width - k)
-        if p:
+        if p in breaks:  # a new float: the first holds the caption and label
+            if p:
+                lines += ["\\end{table}", ""]
+            lines += ["\\begin{table}[htbp]", "\\centering", "\\small",
+                      "\\setlength{\\tabcolsep}{3pt}"]
+            if p:
+                lines += ["\\addtocounter{table}{-1}",
+                          "\\caption{Robustness of the estimates to one change at a time "
+                          "(continued)}"]
+            else:
+                lines += ["\\caption{Robustness of the estimates to one change at a time}",
+                          "\\label{tab:robustgmm}"]
+        else:
             lines.append("\\medskip")
             lines.append("")
         lines.append("\\begin{tabularx}{\\textwidth}" + spec_cols)
@@ -288,24 +329,44 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
               if row["status"] != "ok"]
     shown = [vid for panel in panels for vid, _, _ in panel]
     kinds = se_kinds(audit, shown)
-    se_text = (f"Standard errors in parentheses ({tex(', '.join(kinds))})." if kinds
-               else "Standard errors in parentheses.")
+    if len(kinds) > 1:  # say which columns use which kind
+        numbers = {audit.base_variant: 1}
+        for vid in shown:
+            numbers.setdefault(vid, len(numbers) + 1)
+        by_kind = {k: [] for k in kinds}
+        for vid, n in numbers.items():
+            kind = se_kinds(audit, [vid])
+            if kind:
+                by_kind[kind[0]].append(f"({n})")
+        se_text = ("Standard errors in parentheses: " + "; ".join(
+            f"{tex(k)} in {', '.join(cols)}" for k, cols in by_kind.items() if cols) + ".")
+    else:
+        se_text = (f"Standard errors in parentheses ({tex(kinds[0])})." if kinds
+                   else "Standard errors in parentheses.")
     note = (f"{se_text} Column (1) is the base model (variant "
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
-            f"{TEST_NOTE}{DIFF_NOTE if has_diff else ''}. ")
+            + "; ".join(TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows})
+            + ". ")
     if use_stars:
-        note += ("\\textsuperscript{*} \\textit{p} \\textless{} 0.10, \\textsuperscript{**} "
-                 "\\textit{p} \\textless{} 0.05, \\textsuperscript{***} \\textit{p} "
-                 "\\textless{} 0.01. ")
+        # math-mode signs: the text-mode < and dagger come from the text-companion
+        # font, which pdflatex renders as a bitmap (Type 3) font
+        note += ("$^{*}$ $p < 0.10$, $^{**}$ $p < 0.05$, $^{***}$ $p < 0.01$. ")
     if failing:
-        note += ("\\textsuperscript{\\dag} The variant fails one of its own specification tests "
+        note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
                  "(Hansen, AR(2) or difference-in-Hansen at the audit's level) and does "
                  "not count toward the verdicts. ")
     note += (f"Verdicts ({judged}): {verdicts}. "
              f"Statistical robustness does not establish instrument validity, which rests "
              f"on economic reasoning.")
-    if failed:
-        note += f" {len(failed)} variant{'s' if len(failed) != 1 else ''} could not be estimated."
+    n_failed = sum(1 for _, row in audit.variants.iterrows() if row["status"] == "failed")
+    n_skipped = len(failed) - n_failed
+    if n_failed:
+        note += (f" {n_failed} variant{'s' if n_failed != 1 else ''} could not be estimated "
+                 f"(reasons in variants.csv).")
+    if n_skipped:
+        note += (f" {n_skipped} combination{'s' if n_skipped != 1 else ''} of settings "
+                 f"{'was' if n_skipped == 1 else 'were'} skipped (not identified or the same "
+                 f"estimation as another; reasons in variants.csv).")
     lines += ["", "\\par\\smallskip",
               "\\begin{minipage}{\\textwidth}\\footnotesize", note, "\\end{minipage}",
               "\\end{table}", ""]

@@ -52,6 +52,46 @@ def _rule_lines(rule: dict) -> list[str]:
     return out
 
 
+def _term_heading(t: dict) -> str:
+    """'Leverage (`x[t]`)' for a term with a ``[labels]`` text, else '`x[t]`'."""
+    return f"{esc(t['label'])} ({code(t['term'])})" if t.get("label") else code(t["term"])
+
+
+def _base_model(ctx: dict) -> list[str]:
+    """The full base-model table: every term, then its tests and counts."""
+    b = ctx["base_table"]
+    names = ctx["term_names"]
+    md = [f"## Base model (variant {code(b['variant'])})", ""]
+    md += _table(["term", "estimate", "s.e.", "z", "p"],
+                 [[code(t["term"]) + (f" {esc(names[t['term']])}" if t["term"] in names else ""),
+                   esc(t["estimate"]), esc(t["std_error"]), esc(t["z"]), esc(t["p"])]
+                  for t in b["terms"]])
+    md.append("")
+    md += _table(["test", "p", "df"],
+                 [[esc(f"{group}: {name}"), esc(p), esc(df)] for group, name, p, df in b["tests"]])
+    md.append("")
+    md += _table(["count", "value"], [[esc(name), esc(value)] for name, value in b["counts"]])
+    if b["se_kind"]:
+        md += ["", f"Standard errors: {esc(b['se_kind'])}."]
+    return md + [""]
+
+
+def _drivers(ctx: dict) -> list[str]:
+    """What drives each estimate: one table per focus term that has drivers."""
+    terms = [t for t in ctx["terms"] if t["drivers"]]
+    if not terms:
+        return []
+    md = ["## What drives each estimate", "", esc(ctx["drivers_note"]), ""]
+    for t in terms:
+        md += [f"### {_term_heading(t)}", ""]
+        md += _table(["setting", "value", "variants", "mean estimate", "share significant",
+                      "shift"],
+                     [[esc(d["setting"]), esc(d["value"]), str(d["variants"]), esc(d["mean"]),
+                       esc(d["share"]), esc(d["shift"])] for d in t["drivers"]])
+        md.append("")
+    return md
+
+
 def render_markdown(ctx: dict) -> str:
     """The report as Markdown from :func:`robustgmm.report.context.build_context`."""
     md: list[str] = [f"# {esc(ctx['title'])}", "", esc(ctx["subtitle"]), ""]
@@ -67,7 +107,7 @@ def render_markdown(ctx: dict) -> str:
                "that make it the base:", ""]
         md += [f"    {line}" for line in c["lines"]] + [""]
     for t in ctx["terms"]:
-        md.append(f"### {code(t['term'])}: **{(t['verdict'] or 'no verdict').upper()}**")
+        md.append(f"### {_term_heading(t)}: **{(t['verdict'] or 'no verdict').upper()}**")
         md.append("")
         md.append(f"**Why:** {esc(t['reason'])}.")
         md.append("")
@@ -90,15 +130,6 @@ def render_markdown(ctx: dict) -> str:
         if t["truth"] is not None:
             md.append(f"- True value in the simulated data: {esc(t['truth'])}")
         md.append("")
-        if t["drivers"]:
-            md += ["What drives the estimate (shift: change in the estimate against the "
-                   "base model's value, least squares on the setting indicators):", ""]
-            md += _table(["setting", "value", "variants", "mean estimate",
-                          "share significant", "shift"],
-                         [[esc(d["setting"]), esc(d["value"]), str(d["variants"]),
-                           esc(d["mean"]), esc(d["share"]), esc(d["shift"])]
-                          for d in t["drivers"]])
-            md.append("")
         if t["rules"]:
             md.append("Rules that fired:")
             md.append("")
@@ -116,6 +147,8 @@ def render_markdown(ctx: dict) -> str:
         for rule in ctx["flags"]:
             md.extend(_rule_lines(rule))
         md.append("")
+    md += _base_model(ctx)
+    md += _drivers(ctx)
     md += ["## Paragraphs for a referee response", ""]
     for para in ctx["referee"]:
         md += [f"> {esc(para)}", ">"]
@@ -128,7 +161,7 @@ def render_markdown(ctx: dict) -> str:
                  "truth.", ""]
         md += _table(["term", "true value", "base estimate", "range over variants",
                       "truth inside range"],
-                     [[code(r["term"]), esc(r["truth"]), esc(r["base"]),
+                     [[_term_heading(r), esc(r["truth"]), esc(r["base"]),
                        f"{esc(r['low'])} to {esc(r['high'])}", esc(r["inside"])]
                       for r in ctx["truth"]])
         md.append("")
@@ -160,7 +193,8 @@ def render_markdown(ctx: dict) -> str:
     md += ["", f"**Thresholds in force:** {esc(ctx['thresholds'])}."]
     md += ["", "\"Common practice\" marks a rule of thumb with no single published source.",
            "", "## Provenance", ""]
-    md += _table(["item", "value"], [[esc(k), esc(v)] for k, v in ctx["provenance"]])
+    md += _table(["item", "value"], [[esc(k), esc(v)] for k, v in ctx["provenance_short"]])
+    md += ["", "The settings, the grid and the timings are in `manifest.json`."]
     md += ["", "---", "", f"**What this report does not show.** {esc(ctx['caution'])}", "",
            f"Written by robustgmm {esc(ctx['version'])} from the files in this folder; "
            f"rebuild with `robustgmm report FOLDER`.", ""]

@@ -49,7 +49,8 @@ def _join(parts: list[str]) -> str:
 
 
 def value_phrase(setting: str, value: str) -> str:
-    """'per-period instruments', 'system GMM', 'last_lag = 3', 'x exogenous'."""
+    """'per-period instruments', 'system GMM', 'the last instrument lag at 3',
+    'x exogenous'."""
     kinds = {"equations": Equations, "transform": Transform, "form": Form, "errors": Errors,
              "steps": Steps}
     if setting in kinds:
@@ -71,6 +72,10 @@ def value_phrase(setting: str, value: str) -> str:
         return "no regressor left out" if value == "[]" else f"{value} left out"
     if setting == "sample":
         return f"the sample {value}"
+    if setting == "last_lag" and value == "all":
+        return "every available lag as instrument"
+    if setting in ("first_lag", "last_lag"):
+        return f"the {setting.split('_')[0]} instrument lag at {value}"
     return f"{setting} = {value}"
 
 
@@ -124,15 +129,15 @@ def term_paragraph(term: TermSummary, s: AuditSummary) -> str:
     if term.n == 0:
         if term.n_ok:
             text = (f"No specification that passes its tests estimates the coefficient on "
-                    f"{term.term}; over all {term.n_ok} estimated specifications it ranges "
+                    f"{term.named}; over all {term.n_ok} estimated specifications it ranges "
                     f"from {fmt(term.ok_low)} to {fmt(term.ok_high)}. It is "
                     f"{term.verdict}: {term.reason}.")
         else:
-            text = (f"The coefficient on {term.term} could not be estimated in any "
+            text = (f"The coefficient on {term.named} could not be estimated in any "
                     f"specification; it is {term.verdict}.")
         return text
     spec_word = "specification" if term.n == 1 else "specifications"
-    head = f"The coefficient on {term.term} is {term.verdict} across the {term.n} {judged} {spec_word}"
+    head = f"The coefficient on {term.named} is {term.verdict} across the {term.n} {judged} {spec_word}"
     if term.n == 1:
         core = (f"{head}: it is {fmt(term.low)} (standard error "
                 f"{fmt(term.base_std_error)}, {_p_phrase(term.base_p_value)})")
@@ -195,7 +200,7 @@ def _base_paragraph(s: AuditSummary) -> str:
         changed = c.get("changed") or {}
         how = _join([f"{value_phrase(k, str(v))}" for k, v in changed.items()]) \
             if changed else "the same settings"
-        ests = _join([f"{t} at {fmt(v)}" for t, v in (c.get("estimates") or {}).items()])
+        ests = _join([f"{s.named(t)} at {fmt(v)}" for t, v in (c.get("estimates") or {}).items()])
         text += (f" The closest specification that passes its tests is variant "
                  f"{c['variant']} ({how}), which estimates {ests}")
         lines = c.get("model_file_lines") or []
@@ -236,7 +241,7 @@ def _evidence_paragraph(s: AuditSummary) -> str:
     sentences = [text]
     for band in s.bands:
         sentences.append(
-            f"The autoregressive coefficient {band.term} lies between the within "
+            f"The autoregressive coefficient {s.named(band.term)} lies between the within "
             f"(fixed-effects) estimate of {fmt(band.fe)} and the pooled OLS estimate of "
             f"{fmt(band.ols)} in {_of(band.n_inside, band.n)}"
             f"{' specifications' if band.n > 2 else ''}; a consistent "

@@ -14,7 +14,7 @@ import numpy as np
 import pandas as pd
 
 from ..options import LABELS, Steps, Transform
-from .labels import band_arrays, setting_name, value_text
+from .labels import band_arrays, setting_name, term_labels, value_text
 from ..audit.verdicts import Driver, Firing, Influence, TermVerdict
 from ..audit.verdicts import Rule as CatalogueRule
 from ..options import Effect
@@ -138,6 +138,13 @@ class TermSummary:
     key_driver: Mapping[str, Any] | None = None
     influence: Influence | None = None
     not_evaluated: tuple[str, ...] = ()
+    #: the model file's ``[labels]`` text for the term ("" when it has none)
+    label: str = ""
+
+    @property
+    def named(self) -> str:
+        """How running text names the term: 'Leverage (x[t])', or the term itself."""
+        return f"{self.label} ({self.term})" if self.label else self.term
 
     @property
     def sign_stable(self) -> bool:
@@ -199,6 +206,13 @@ class AuditSummary:
     closest: Mapping[str, Any] | None = None
     thresholds: Mapping[str, Any] = field(default_factory=dict)
     rule_counts: Mapping[str, int] = field(default_factory=dict)
+    #: the model file's ``[labels]`` (term -> text)
+    labels: Mapping[str, str] = field(default_factory=dict)
+
+    def named(self, term: str) -> str:
+        """'Leverage (x[t])' for a labelled term, else the term itself."""
+        text = self.labels.get(term)
+        return f"{text} ({term})" if text else term
 
     def term(self, label: str) -> TermSummary:
         for t in self.terms:
@@ -232,7 +246,8 @@ def _term_summary(tv: TermVerdict, audit: AuditFolder) -> TermSummary:
         n_duplicates=int(f.get("duplicates", 0)),
         n_insignificant_opposite=int(f.get("insignificant_opposite", 0)),
         uninformative=tuple(f.get("uninformative_ids") or ()), drivers=tv.drivers,
-        key_driver=tv.key_driver, influence=tv.influence, not_evaluated=tv.not_evaluated)
+        key_driver=tv.key_driver, influence=tv.influence, not_evaluated=tv.not_evaluated,
+        label=term_labels(audit).get(tv.term, ""))
 
 
 def summarize(audit: AuditFolder) -> AuditSummary:
@@ -286,7 +301,7 @@ def summarize(audit: AuditFolder) -> AuditSummary:
         count_untestable=bool(counts.get("count_untestable", False)),
         base_acceptable=verdict.base_acceptable, base_statement=verdict.base_statement,
         closest=verdict.closest_acceptable, thresholds=dict(verdict.thresholds),
-        rule_counts=rule_counts)
+        rule_counts=rule_counts, labels=term_labels(audit))
 
 
 def varied_text(summary: AuditSummary) -> str:
@@ -319,6 +334,8 @@ def figure_value(value, limit: int = 8) -> str:
     if isinstance(value, float):
         return fmt(value)
     if isinstance(value, (list, tuple)):
+        if not value:  # "uninformative ids = " with nothing after it reads as a cut
+            return "none"
         items = [figure_value(x, limit) for x in value[:limit]]
         more = f", … ({len(value)} in all)" if len(value) > limit else ""
         return ", ".join(items) + more

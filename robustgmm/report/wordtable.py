@@ -24,6 +24,7 @@ FONT = "font-family:'Times New Roman',serif;font-size:10pt"
 RULE = "border-top:1px solid #000"
 THICK = "border-top:1.5px solid #000"
 CELL = "padding:1pt 6pt"
+TABLE_PX, LABEL_PX = 640, 160  # table and label-column widths (a quarter, as in table.tex)
 
 
 def _td(text: str, *, left=False, style="") -> str:
@@ -73,7 +74,11 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
         marks = ["<sup>&#8224;</sup>" if vid in failing else "" for vid, _, _ in panel]
         heads = ["base"] + [escape(", ".join(departure_label(c, x) for c, x in zip(cols, vals)))
                             for _, cols, vals in panel[1:]]
-        out.append(f'<table style="border-collapse:collapse;{FONT};margin-bottom:8pt">')
+        # fixed widths in HTML attributes (the word processors ignore CSS widths), the
+        # same for every panel, so the panels line up as in table.tex
+        out.append(f'<table width="{TABLE_PX}" style="border-collapse:collapse;{FONT};'
+                   f'margin-bottom:8pt">' + f'<col width="{LABEL_PX}">' + "".join(
+                       f'<col width="{(TABLE_PX - LABEL_PX) // width}">' for _ in range(width)))
         out.append("<tr>" + _td("", left=True, style=THICK) + "".join(
             _td(n + m, style=THICK) for n, m in zip(nums + pad, marks + pad)) + "</tr>")
         out.append("<tr>" + _td("", left=True) + "".join(_td(h) for h in heads + pad) + "</tr>")

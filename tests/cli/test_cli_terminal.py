@@ -152,3 +152,25 @@ def test_an_audit_that_varies_nothing_says_so(tmp_path, capsys):
     assert "  [audit.vary]\n" in err
     assert '  equations = ["system", "difference"]' in err
     assert '  form = ["per-period", "collapsed"]' in err
+
+
+def test_the_closing_line_counts_as_variants_csv_does(tmp_path, capsys):
+    # One combination is not identified (first lag 3 with last lag 3 leaves fewer
+    # instruments than parameters); variants.csv records it as skipped, and the
+    # closing line once called every planned variant "estimated" and such a variant
+    # "failed". Now its counts are those of the table.
+    write_panel(tmp_path, n_units=60, n_periods=7)
+    d = model_dict({"equations": ["difference", "system"], "first_lag": [2, 3],
+                    "last_lag": [3, "all"]})
+    d["model"]["outcome_lags"] = [1, 2]
+    for reg in d["model"]["regressors"]:
+        reg["lags"] = [0, 1]
+    d["instruments"] = {"form": "collapsed", "last_lag": 3}
+    (tmp_path / "model.toml").write_text(dumps_toml(d))
+    assert main(["audit", str(tmp_path / "model.toml"), "--out", str(tmp_path / "out")]) == 0
+    last = capsys.readouterr().out.strip().splitlines()[-1]
+    status = pd.read_csv(tmp_path / "out" / "variants.csv")["status"].value_counts()
+    assert status.get("skipped", 0) >= 1
+    assert last.startswith(f"{int(status.sum())} variants in ")
+    assert (f": {status.get('ok', 0)} estimated (0 from the cache), "
+            f"{status.get('skipped', 0)} skipped, {status.get('failed', 0)} failed") in last

@@ -2,16 +2,26 @@
 
 Checked: it parses, holds nothing a word processor cannot read (no script, no style
 sheet, no classes, no external reference), escapes user text, and shows the same
-columns, estimates, standard errors, labels, stars and note as table.tex.
+columns, estimates, standard errors, labels, stars and note as table.tex; and, where
+LibreOffice is installed (.ci/run installs its Writer), LibreOffice opens it as one
+real table per panel, of one width, with every number in its cell.
 """
 from __future__ import annotations
 
 import json
+import re
+import shutil
+import subprocess
+import zipfile
+from html import unescape
 from html.parser import HTMLParser
+
+import pytest
 
 from report_fixture import FRAGILE, ROBUST
 from robustgmm.report import build_report, read_audit_folder
 from robustgmm.report.latex import table_panels
+from robustgmm.report.wordtable import render_word_table
 from robustgmm.report.summary import fmt
 
 
@@ -53,3 +63,42 @@ def test_word_table_is_plain_and_complete(writable_folder):
     assert "Standard errors in parentheses" in text and "Hansen p" in text
     assert "* p < 0.10" in text
     assert "does not establish instrument validity" in text
+
+
+SOFFICE = next((shutil.which(n) for n in ("soffice", "libreoffice") if shutil.which(n)), None)
+
+
+@pytest.mark.skipif(SOFFICE is None, reason="LibreOffice is not installed")
+def test_libreoffice_opens_the_word_table_as_real_tables(audit_folder, tmp_path):
+    # Opened in LibreOffice Writer (its HTML import) and saved as .docx, as a user who
+    # pastes the table into a Word document would: one Word table per panel, every
+    # row with the label column plus one cell per column, panels of one width, and
+    # every shown estimate and standard error in its cell.
+    folder = tmp_path / "many"
+    shutil.copytree(audit_folder("many"), folder)
+    audit = read_audit_folder(folder)
+    (folder / "table.html").write_text(render_word_table(audit), encoding="utf-8")
+    subprocess.run([SOFFICE, "--headless", f"-env:UserInstallation={(tmp_path / 'lo').as_uri()}",
+                    "--infilter=HTML (StarWriter)", "--convert-to", "docx:MS Word 2007 XML",
+                    "--outdir", str(tmp_path), str(folder / "table.html")],
+                   check=True, capture_output=True, timeout=300)
+    xml = zipfile.ZipFile(tmp_path / "table.docx").read("word/document.xml").decode("utf-8")
+    tables = re.findall(r"<w:tbl>.*?</w:tbl>", xml, re.S)
+    panels, _ = table_panels(audit)
+    assert len(tables) == len(panels)
+    width = max(len(p) for p in panels)
+    widths = []
+    est = audit.estimates.set_index(["variant", "term"])
+    for table, panel in zip(tables, panels):
+        rows = [[unescape("".join(re.findall(r"<w:t(?: [^>]*)?>([^<]*)</w:t>", cell)))
+                 for cell in re.findall(r"<w:tc>.*?</w:tc>", row, re.S)]
+                for row in re.findall(r"<w:tr[ >].*?</w:tr>", table, re.S)]
+        assert all(len(r) == width + 1 for r in rows[:-1]), [len(r) for r in rows]
+        widths.append(sum(int(w) for w in re.findall(r'<w:gridCol w:w="(\d+)"', table)))
+        for term in audit.focus:
+            label = next(i for i, r in enumerate(rows) if r[0] == term)
+            for k, (vid, _, _) in enumerate(panel, start=1):
+                e = est.loc[(vid, term)]
+                assert rows[label][k].startswith(fmt(e["estimate"])), (vid, term, rows[label])
+                assert rows[label + 1][k] == f"({fmt(e['std_error'])})", (vid, term)
+    assert max(widths) - min(widths) <= 0.01 * max(widths), widths
