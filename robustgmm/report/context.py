@@ -6,6 +6,7 @@ Markdown writer through its own escaping. Both therefore print identical text.
 from __future__ import annotations
 
 import base64
+import re
 from pathlib import Path
 
 import numpy as np
@@ -17,17 +18,38 @@ from ..audit.verdicts import Rule as CatalogueRule
 from .inputs import AuditFolder
 from .referee import CAUTION, referee_paragraphs
 from .labels import term_labels
-from .sections import base_model_table, short_provenance, split_variants_table
+from .sections import anchor, base_model_table, short_provenance, split_variants_table
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
                       rule_figures_text, summarize, threshold_text, variants_table)
 
 
-def _rule(rule: Firing) -> dict:
-    """A rule that fired, with its figures and the threshold it used."""
+def link_ids(text: str, ids) -> list[tuple[str, str]]:
+    """``text`` in pieces ``(text, anchor)``: each variant id of ``ids`` that the text
+    cites becomes a piece with the anchor of its row in the variants table (HTML
+    links it), the rest pieces with no anchor."""
+    if not ids or not text:
+        return [(text, "")]
+    pattern = re.compile(r"\b(" + "|".join(re.escape(i) for i in sorted(ids, key=len,
+                                                                        reverse=True)) + r")\b")
+    out, pos = [], 0
+    for m in pattern.finditer(text):
+        if m.start() > pos:
+            out.append((text[pos:m.start()], ""))
+        out.append((m.group(), anchor(m.group())))
+        pos = m.end()
+    if pos < len(text):
+        out.append((text[pos:], ""))
+    return out
+
+
+def _rule(rule: Firing, ids=()) -> dict:
+    """A rule that fired, with its figures (variant ids in them linked to their rows)
+    and the threshold it used."""
     threshold = ({rule.threshold_name: rule.threshold} if rule.threshold_name
                  and rule.threshold is not None else None)
+    figures = rule_figures_text(rule)
     return {"id": rule.id, "description": rule.description, "effect": str(rule.effect),
-            "figures": rule_figures_text(rule), "source": rule.source,
+            "figures": figures, "figures_parts": link_ids(figures, ids), "source": rule.source,
             "threshold": threshold_text(threshold) if threshold else ""}
 
 
@@ -59,7 +81,7 @@ def _closest(s: AuditSummary) -> dict | None:
     if not c or s.base_acceptable:
         return None
     changed = c.get("changed") or {}
-    return {"variant": c["variant"],
+    return {"variant": c["variant"], "anchor": anchor(str(c["variant"])),
             "changed": ", ".join(f"{k} = {v}" for k, v in changed.items()) or "nothing",
             "estimates": ", ".join(f"{k} {fmt(v)}" for k, v in (c.get("estimates") or {}).items()),
             "lines": list(c.get("model_file_lines") or [])}
@@ -178,6 +200,7 @@ def numerical_warnings(audit: AuditFolder, limit: int = 25) -> list[dict]:
 def build_context(audit: AuditFolder, figures: list[FigureFile],
                   summary: AuditSummary | None = None, *, inline_png: bool = True) -> dict:
     s = summary or summarize(audit)
+    ids = [str(v) for v in audit.variants["variant"]]
     terms = []
     for t in s.terms:
         terms.append({
@@ -198,7 +221,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
                 "sampling": fmt(t.influence.sampling_sd),
                 "ratio": fmt(t.influence.robustness_ratio, 2)},
             "truth": fmt(t.truth) if t.truth is not None else None,
-            "rules": [_rule(r) for r in t.fired],
+            "rules": [_rule(r, ids) for r in t.fired],
         })
     figs = []
     for f in figures:
@@ -219,7 +242,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "caution": CAUTION,
         "alpha": f"{audit.alpha:g}",
         "terms": terms,
-        "flags": [_rule(r) for r in s.model_flags],
+        "flags": [_rule(r, ids) for r in s.model_flags],
         "referee": referee_paragraphs(audit, s),
         "base_statement": "" if s.base_acceptable else s.base_statement,
         "closest": _closest(s),

@@ -126,6 +126,15 @@ def test_svg_marks_carry_the_variant_and_its_settings(audit_folder, tmp_path):
     import xml.etree.ElementTree as ET
     ET.fromstring(svg)
     assert all("equations" in t and "last lag" in t for t in titles)
+    # the diagnostics matrix: one tooltip per column (variant), with the state of
+    # each check, so a variant a rule cites is found there too
+    diag = next(f for f in made if f.kind == "diagnostics").paths[0].read_text()
+    ET.fromstring(diag)
+    tips = re.findall(r"<title>(.*?)</title>", diag)
+    assert len(tips) == len(audit.variants)
+    assert tips[0].startswith(f"variant {audit.base_variant} (base): ")
+    assert {t.split(":")[0].split()[1] for t in tips} == set(audit.variants["variant"])
+    assert all("Hansen does not reject: " in t and "last lag" in t for t in tips)
 
 
 def test_zero_only_when_near_the_data():

@@ -52,7 +52,8 @@ CAPTIONS = {
         "estimated, light grey a check that does not apply (e.g. no level-equation "
         "instruments in difference GMM) or was not reported. A column full of green is "
         "a variant with clean diagnostics; a row with many failures points to a "
-        "problem shared by the model."),
+        "problem shared by the model. In the SVG file, hovering over a column shows its "
+        "variant id, settings and the state of each check."),
 }
 
 

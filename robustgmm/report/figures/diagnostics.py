@@ -8,7 +8,10 @@ from matplotlib.patches import Patch
 
 from ..labels import band_arrays
 from ..inputs import AuditFolder
-from .common import LIGHT, MAX_TICK_LABELS, VERMILLION, YELLOW, GREEN, style, variant_ticks
+from matplotlib.collections import PolyCollection
+
+from .common import (LIGHT, MAX_TICK_LABELS, VERMILLION, YELLOW, GREEN, attach_tooltips, style,
+                     variant_ticks)
 
 
 PASS, WARN, FAIL, NOT_ESTIMATED = 0, 1, 2, 3
@@ -103,6 +106,24 @@ def _in_bounds(audit: AuditFolder) -> np.ndarray | None:
     return v["variant"].map(inside).to_numpy(float)
 
 
+def _column_tips(audit: AuditFolder, table: pd.DataFrame) -> list[str]:
+    """'variant 1a2b (base): equations system; ...; AR(2) does not reject: passes; ...'
+    for each column of the matrix."""
+    from ..labels import setting_name, value_text
+    rows = audit.variants.set_index("variant")
+    cols = [c for c in audit.setting_columns if c in rows.columns]
+    out = []
+    for vid, states in table.iterrows():
+        r = rows.loc[vid]
+        settings = "; ".join(f"{setting_name(c)} {value_text(r[c])}" for c in cols)
+        checks = "; ".join(f"{name}: {STATE_NAMES.get(int(x), 'n/a') if x == x else 'n/a'}"
+                           for name, x in states.items())
+        base = " (base)" if vid == audit.base_variant else ""
+        status = "" if r["status"] == "ok" else f"; {r['status']}: {r['reason']}"
+        out.append(f"variant {vid}{base}: {settings}{status}; {checks}")
+    return out
+
+
 def plot_diagnostics_matrix(ax, audit: AuditFolder, *, max_tick_labels: int = MAX_TICK_LABELS):
     """Variants (columns, base first) x checks (rows); colour and legend give the state."""
     style(ax)
@@ -123,6 +144,15 @@ def plot_diagnostics_matrix(ax, audit: AuditFolder, *, max_tick_labels: int = MA
         ax.tick_params(which="minor", length=0)
     ax.spines["left"].set_visible(False)
     ax.spines["bottom"].set_visible(False)
+    # one invisible rectangle over each column: in the SVG it carries a tooltip with
+    # the variant id, its settings and the state of each check, so a variant a rule
+    # cites can be found among hundreds of columns (the PNG is unchanged)
+    rows = table.shape[1]
+    columns = PolyCollection([[(i - 0.5, -0.5), (i + 0.5, -0.5), (i + 0.5, rows - 0.5),
+                               (i - 0.5, rows - 0.5)] for i in range(n)],
+                             facecolors=(0, 0, 0, 0), edgecolors="none", linewidths=0)
+    ax.add_collection(columns, autolim=False)
+    attach_tooltips(ax, columns, _column_tips(audit, table))
     variant_ticks(ax, table.index, max_tick_labels, "variants (base first)")
     handles = [Patch(facecolor=c, label=STATE_NAMES[s]) for s, c in
                ((PASS, GREEN), (WARN, YELLOW), (FAIL, VERMILLION), (NOT_ESTIMATED, "#595959"))]
