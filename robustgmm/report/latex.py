@@ -26,10 +26,11 @@ from .labels import report_option, term_labels, value_text
 from .inputs import AuditFolder
 from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
 
-# "$" becomes a math-mode dollar: the text-mode \$ comes from the text-companion
-# font, which a small TeX installation (no cm-super) can only draw as a bitmap.
+# "$" becomes a math-mode dollar (\ensuremath, so no bare "$" reaches the file): the
+# text-mode \$ comes from the text-companion font, which a small TeX installation
+# (no cm-super) can only draw as a bitmap (Type 3) font.
 _LATEX_SPECIAL = {
-    "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"$\$$", "#": r"\#",
+    "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\ensuremath{\$}", "#": r"\#",
     "_": r"\_", "{": r"\{", "}": r"\}", "~": r"\textasciitilde{}",
     "^": r"\textasciicircum{}", "<": r"\textless{}", ">": r"\textgreater{}",
 }

@@ -264,7 +264,14 @@ def test_latex_structure(built):
     # break points inside long identifiers (zero width) are not part of the text
     text = (out / "table.tex").read_text().replace("\\allowbreak{}", "")
     audit = read_audit_folder(out)
-    assert text.count("\\begin{table}") == 1 and text.count("\\end{table}") == 1
+    # one float, or (when taller than a page) a float and its continuations, each
+    # opened and closed; only the first carries the label, the others say
+    # "(continued)" under the same number
+    floats = re.findall(r"\\begin\{table\}(.*?)\\end\{table\}", text, flags=re.S)
+    assert floats and text.count("\\begin{table}") == text.count("\\end{table}") == len(floats)
+    assert "\\label{tab:robustgmm}" in floats[0] and text.count("\\label{") == 1
+    for later in floats[1:]:
+        assert "\\addtocounter{table}{-1}" in later and "(continued)}" in later
     # every panel is one tabularx exactly \textwidth wide: a label column and k columns
     specs = re.findall(r"\\begin\{tabularx\}\{\\textwidth\}\{.*?\*\{(\d+)\}", text)
     bodies = re.findall(r"\\begin\{tabularx\}\{\\textwidth\}[^\n]*\n(.*?)\\end\{tabularx\}",
