@@ -62,6 +62,7 @@ import joblib
 import numpy as np
 
 from ..errors import EstimationError
+from ..options import Equations, Form
 from . import parallel
 from .cache import CACHE_FORMAT, Cache  # noqa: F401  (re-exported)
 from .grid import PLANNED, Variant, sample_key
@@ -530,8 +531,8 @@ def _group_weight(group, panel) -> float:
     unit (per-period instruments grow with the periods, collapsed ones do not)."""
     spec = group[0].spec
     periods = max(getattr(panel, "n_periods", 1), 1)
-    width = periods * periods if spec.form == "per-period" else periods
-    return len(group) * (2 if spec.equations == "system" else 1) * width
+    width = periods * periods if spec.form == Form.PER_PERIOD else periods
+    return len(group) * (2 if spec.equations == Equations.SYSTEM else 1) * width
 
 
 def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = None,

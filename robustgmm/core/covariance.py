@@ -1,11 +1,11 @@
-"""Variance estimators of the coefficients, one small class each, chosen from a
-registry keyed by (steps, errors).
+"""Variance estimators of the coefficients, one small :class:`Covariance` each (its
+kind and formula), chosen from a registry keyed by (steps, errors).
 
 | steps \\ errors | robust | conventional |
 |---|---|---|
-| one-step | :class:`ClusterRobust` ``B₁ X'ZA S A Z'X B₁`` | :class:`ConventionalOneStep` ``σ̂² B₁`` (difference GMM only) |
-| two-step | :class:`Windmeijer` ``V₂ + D V₂ + V₂ D' + D V₁ D'`` (Windmeijer 2005, eq. (3.4)) | :class:`ConventionalEfficient` ``B₂ = (X'ZWZ'X)⁻¹`` |
-| iterated | :class:`WindmeijerIterated` ``(I − D)⁻¹ V₂ (I − D)⁻ᵀ`` | :class:`ConventionalEfficient` |
+| one-step | ``ClusterRobust`` ``B₁ X'ZA S A Z'X B₁`` | ``ConventionalOneStep`` ``σ̂² B₁`` (difference GMM only) |
+| two-step | ``Windmeijer`` ``V₂ + D V₂ + V₂ D' + D V₁ D'`` (Windmeijer 2005, eq. (3.4)) | ``ConventionalEfficient`` ``B₂ = (X'ZWZ'X)⁻¹`` |
+| iterated | ``WindmeijerIterated`` ``(I − D)⁻¹ V₂ (I − D)⁻ᵀ`` | ``ConventionalEfficient`` |
 
 ``B₁ = (X'ZAZ'X)⁻¹``. The conventional one-step variance assumes that ``A`` is
 proportional to the inverse covariance of the moments, which fails in system GMM
@@ -25,11 +25,12 @@ of the Moore–Penrose inverse is (Golub & Pereyra 1973, Theorem 4.3)
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
 from ..options import CovarianceKind, Errors, Steps
-from .linalg import scaled_pinv_parts
+from .linalg import rescale, scaled_pinv_parts
 
 
 def windmeijer_vectors(prob, sol) -> list:
@@ -54,9 +55,7 @@ def windmeijer_d(prob, sol) -> np.ndarray:
     if len(T) > 1:
         d = prob.z_scale
         pinv, null = sol.pinv_parts
-        pinv2 = (d[:, None] * (pinv @ pinv)) * d[None, :]
-        nullp = (d[:, None] * null) * d[None, :]
-        inner = inner - pinv2 @ T[1] - nullp @ T[2]
+        inner = inner - rescale(pinv @ pinv, d) @ T[1] - rescale(null, d) @ T[2]
     return sol.bread @ (prob.zx.T @ inner)
 
 
@@ -77,59 +76,60 @@ class Inputs:
         return self._d
 
 
+@dataclass(frozen=True)
 class Covariance:
+    """A variance estimator: the kind of standard errors it reports and its formula,
+    a function of the :class:`Inputs` (the formula's docstring gives its source)."""
+
+    name: str
     kind: CovarianceKind
+    formula: Callable[[Inputs], np.ndarray]
 
     def __call__(self, inp: Inputs) -> np.ndarray:
-        raise NotImplementedError
+        return self.formula(inp)
 
 
-class ClusterRobust(Covariance):
+def _cluster_robust(inp):
     """One-step, clustered by unit: ``B₁ X'ZA S A Z'X B₁`` (Arellano & Bond 1991)."""
-    kind = CovarianceKind.CLUSTER_ROBUST
-
-    def __call__(self, inp):
-        return inp.one.v_robust
+    return inp.one.v_robust
 
 
-class ConventionalOneStep(Covariance):
+def _conventional_one_step(inp):
     """One-step under homoskedasticity: ``σ̂² B₁`` (Arellano & Bond 1991)."""
-    kind = CovarianceKind.CONVENTIONAL
-
-    def __call__(self, inp):
-        return inp.one.sigma2 * inp.one.bread
+    return inp.one.sigma2 * inp.one.bread
 
 
-class ConventionalEfficient(Covariance):
+def _conventional_efficient(inp):
     """Two-step or iterated, uncorrected: ``(X'Z W Z'X)⁻¹`` (Hansen 1982)."""
-    kind = CovarianceKind.CONVENTIONAL
-
-    def __call__(self, inp):
-        return inp.sol.bread
+    return inp.sol.bread
 
 
-class Windmeijer(Covariance):
+def _windmeijer(inp):
     """Two-step, Windmeijer (2005, eq. (3.4)): ``V₂ + D V₂ + V₂ D' + D V₁ D'``."""
-    kind = CovarianceKind.WINDMEIJER
-
-    def __call__(self, inp):
-        v2, D = inp.sol.bread, inp.D
-        dv = D @ v2
-        return v2 + dv + dv.T + D @ inp.one.v_robust @ D.T
+    v2, D = inp.sol.bread, inp.D
+    dv = D @ v2
+    return v2 + dv + dv.T + D @ inp.one.v_robust @ D.T
 
 
-class WindmeijerIterated(Covariance):
+def _windmeijer_iterated(inp):
     """Iterated GMM: at the fixed point ``b = f(b)``, ``b − β ≈ (I − D)⁻¹ M Z'u``, so
     ``(I − D)⁻¹ V₂ (I − D)⁻ᵀ`` (Windmeijer's expansion applied to the limit of the
     iteration; our derivation, docs/method.md)."""
-    kind = CovarianceKind.WINDMEIJER_ITERATED
-
-    def __call__(self, inp):
-        inv = np.linalg.inv(np.eye(inp.prob.K) - inp.D)
-        return inv @ inp.sol.bread @ inv.T
+    inv = np.linalg.inv(np.eye(inp.prob.K) - inp.D)
+    return inv @ inp.sol.bread @ inv.T
 
 
-REGISTRY: dict[tuple[Steps, Errors], type[Covariance]] = {
+ClusterRobust = Covariance("ClusterRobust", CovarianceKind.CLUSTER_ROBUST, _cluster_robust)
+ConventionalOneStep = Covariance("ConventionalOneStep", CovarianceKind.CONVENTIONAL,
+                                 _conventional_one_step)
+ConventionalEfficient = Covariance("ConventionalEfficient", CovarianceKind.CONVENTIONAL,
+                                   _conventional_efficient)
+Windmeijer = Covariance("Windmeijer", CovarianceKind.WINDMEIJER, _windmeijer)
+WindmeijerIterated = Covariance("WindmeijerIterated", CovarianceKind.WINDMEIJER_ITERATED,
+                                _windmeijer_iterated)
+
+
+REGISTRY: dict[tuple[Steps, Errors], Covariance] = {
     (Steps.ONE, Errors.ROBUST): ClusterRobust,
     (Steps.ONE, Errors.CONVENTIONAL): ConventionalOneStep,
     (Steps.TWO, Errors.ROBUST): Windmeijer,
@@ -142,7 +142,7 @@ REGISTRY: dict[tuple[Steps, Errors], type[Covariance]] = {
 def estimator(steps: Steps, errors: Errors) -> Covariance:
     """The variance estimator of (steps, errors)."""
     try:
-        return REGISTRY[(steps, errors)]()
+        return REGISTRY[(steps, errors)]
     except KeyError:
         raise ValueError(f"no variance estimator for steps {steps!r} with errors {errors!r}") from None
 

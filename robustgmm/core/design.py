@@ -114,33 +114,27 @@ class Chunk:
     complete: np.ndarray
 
 
+def _either(kind, value, yes, no) -> bool:
+    """Whether the option ``value`` of the two-word vocabulary ``kind`` is ``yes``
+    (True) or ``no`` (False); anything else raises."""
+    match parse(kind, value):
+        case member if member is yes:
+            return True
+        case member if member is no:
+            return False
+        case other:
+            raise ValueError(f"unknown {kind.__name__.lower()} {other!r}")
+
+
 class Design:
     """Everything about a model that does not depend on the coefficients."""
 
     def __init__(self, spec: Spec, panel: Panel):
         self.spec = spec
         self.panel = panel
-        match parse(Equations, spec.equations):
-            case Equations.SYSTEM:
-                self.system = True
-            case Equations.DIFFERENCE:
-                self.system = False
-            case other:
-                raise ValueError(f"unknown equations {other!r}")
-        match parse(Transform, spec.transform):
-            case Transform.FOD:
-                self.fod = True
-            case Transform.FD:
-                self.fod = False
-            case other:
-                raise ValueError(f"unknown transform {other!r}")
-        match parse(Form, spec.form):
-            case Form.COLLAPSED:
-                self.collapsed = True
-            case Form.PER_PERIOD:
-                self.collapsed = False
-            case other:
-                raise ValueError(f"unknown form {other!r}")
+        self.system = _either(Equations, spec.equations, Equations.SYSTEM, Equations.DIFFERENCE)
+        self.fod = _either(Transform, spec.transform, Transform.FOD, Transform.FD)
+        self.collapsed = _either(Form, spec.form, Form.COLLAPSED, Form.PER_PERIOD)
         missing = [c for c in spec.used_columns() if c not in panel.values]
         if missing:
             raise EstimationError(f"columns missing from the panel: {', '.join(missing)}")

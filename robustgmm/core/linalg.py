@@ -62,21 +62,15 @@ def sym_pinv(matrix: np.ndarray, rtol: float | None = None,
     diag = np.diag(m).copy()
     if scale is None:
         scale = _unit_diagonal_scale(diag)
-    scaled = m * scale[:, None] * scale[None, :]
-    scaled = 0.5 * (scaled + scaled.T)
-    if rtol is None:
-        rtol = size * np.finfo(float).eps * 10
+    scaled = _symmetric(rescale(m, scale))
+    rtol = _default_rtol(size) if rtol is None else rtol
     if np.all(diag > 0):
         inv_scaled = _cholesky_inverse(scaled, CHOLESKY_MARGIN * size * rtol)
         if inv_scaled is not None:
-            inv = inv_scaled * scale[:, None] * scale[None, :]
-            return 0.5 * (inv + inv.T), size
-    vals, vecs = np.linalg.eigh(scaled)
-    top = vals.max() if vals.size else 0.0
-    keep = vals > rtol * top if top > 0 else np.zeros_like(vals, dtype=bool)
+            return _symmetric(rescale(inv_scaled, scale)), size
+    vals, vecs, keep = _eigen_cut(scaled, rtol)
     inv_scaled = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T
-    inv = inv_scaled * scale[:, None] * scale[None, :]
-    return 0.5 * (inv + inv.T), int(keep.sum())
+    return _symmetric(rescale(inv_scaled, scale)), int(keep.sum())
 
 
 def scaled_pinv_parts(matrix: np.ndarray, scale: np.ndarray, rtol: float | None = None):
@@ -85,16 +79,35 @@ def scaled_pinv_parts(matrix: np.ndarray, scale: np.ndarray, rtol: float | None 
     projector on its null space, ``I − M̂ M̂⁺``."""
     m = np.asarray(matrix, dtype=float)
     size = m.shape[0]
-    scaled = m * scale[:, None] * scale[None, :]
-    scaled = 0.5 * (scaled + scaled.T)
-    if rtol is None:
-        rtol = size * np.finfo(float).eps * 10
+    vals, vecs, keep = _eigen_cut(_symmetric(rescale(m, scale)),
+                                  _default_rtol(size) if rtol is None else rtol)
+    pinv = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T
+    null = vecs[:, ~keep] @ vecs[:, ~keep].T
+    return _symmetric(pinv), _symmetric(null)
+
+
+def rescale(m: np.ndarray, scale: np.ndarray) -> np.ndarray:
+    """``d M d`` with ``d = diag(scale)``, elementwise (``M_ij d_i d_j``)."""
+    return m * scale[:, None] * scale[None, :]
+
+
+def _symmetric(m: np.ndarray) -> np.ndarray:
+    """``(M + M')/2``: rounding can leave a computed symmetric matrix slightly not."""
+    return 0.5 * (m + m.T)
+
+
+def _default_rtol(size: int) -> float:
+    """The eigenvalue cut of the pseudo-inverses: ``10 · size · machine epsilon``."""
+    return size * np.finfo(float).eps * 10
+
+
+def _eigen_cut(scaled: np.ndarray, rtol: float):
+    """Eigenvalues, eigenvectors and which eigenvalues count as non-zero (above
+    ``rtol`` times the largest) of a symmetric matrix."""
     vals, vecs = np.linalg.eigh(scaled)
     top = vals.max() if vals.size else 0.0
     keep = vals > rtol * top if top > 0 else np.zeros_like(vals, dtype=bool)
-    pinv = (vecs[:, keep] / vals[keep]) @ vecs[:, keep].T
-    null = vecs[:, ~keep] @ vecs[:, ~keep].T
-    return 0.5 * (pinv + pinv.T), 0.5 * (null + null.T)
+    return vals, vecs, keep
 
 
 def _unit_diagonal_scale(diag: np.ndarray) -> np.ndarray:
@@ -115,7 +128,7 @@ def independent_columns(gram: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
     """
     gram = np.asarray(gram, dtype=float)
     scale = _unit_diagonal_scale(np.diag(gram).copy())
-    unit = gram * scale[:, None] * scale[None, :]
+    unit = rescale(gram, scale)
     kept: list[int] = []
     for j in range(unit.shape[0]):
         if not scale[j] > 0:
@@ -184,16 +197,15 @@ def inverse_or_pinv(matrix: np.ndarray) -> np.ndarray:
     size = m.shape[0]
     if size == 0:
         return np.zeros((0, 0))
-    rtol = size * np.finfo(float).eps * 10
+    rtol = _default_rtol(size)
     diag = np.diag(m).copy()
     if not np.all(diag > 0):
         return sym_pinv(m)[0]
     scale = 1.0 / np.sqrt(diag)
-    scaled = m * scale[:, None] * scale[None, :]
-    scaled = 0.5 * (scaled + scaled.T)
+    scaled = _symmetric(rescale(m, scale))
     inv = _cholesky_inverse(scaled, CHOLESKY_MARGIN * size * rtol)
     if inv is None:
         if np.linalg.matrix_rank(scaled) < size:
             return sym_pinv(m)[0]
         inv = np.linalg.inv(scaled)
-    return inv * scale[:, None] * scale[None, :]
+    return rescale(inv, scale)

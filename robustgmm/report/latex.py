@@ -181,6 +181,34 @@ def stars(p) -> str:
     return ""
 
 
+def estimate_cells(est: pd.DataFrame, vid, term, use_stars: bool, text, superscript
+                   ) -> tuple[str, str]:
+    """The two cells of ``term`` in variant ``vid``: the estimate (with its stars when
+    ``use_stars``) and its standard error in parentheses; empty where the variant has
+    no such estimate. ``est`` is estimates.csv indexed by (variant, term); ``text``
+    escapes a formatted number for the document, ``superscript`` sets the stars."""
+    if (vid, term) not in est.index:
+        return "", ""
+    e = est.loc[(vid, term)]
+    if isinstance(e, pd.DataFrame):
+        e = e.iloc[0]
+    mark = stars(e["p_value"]) if use_stars else ""
+    return (text(fmt(e["estimate"])) + (superscript(mark) if mark else ""),
+            "(" + text(fmt(e["std_error"])) + ")")
+
+
+def diagnostic_rows(has_diff: bool, p: str) -> list[tuple[str, str, object]]:
+    """The rows under the estimates: (label, variants.csv column, formatter); ``p``
+    is how the document writes the letter p."""
+    rows = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
+            ("Observations", "observations", fmt_int), (f"Hansen {p}", "hansen_p", fmt_p),
+            (f"Sargan {p}", "sargan_p", fmt_p), (f"AR(1) {p}", "ar1_p", fmt_p),
+            (f"AR(2) {p}", "ar2_p", fmt_p)]
+    if has_diff:
+        rows.append((f"Diff.-in-Hansen {p}", "diff_hansen_level_p", fmt_p))
+    return rows
+
+
 def fails(row) -> bool:
     """True when the audit marks this estimated variant as failing its own tests
     (read from variants.csv: ``evidence`` when written, else ``acceptable``)."""
@@ -239,26 +267,14 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
     names = term_labels(audit)
 
     def cell_est(vid, term):
-        if (vid, term) not in est.index:
-            return "", ""
-        e = est.loc[(vid, term)]
-        if isinstance(e, pd.DataFrame):
-            e = e.iloc[0]
-        mark = stars(e["p_value"]) if use_stars else ""
-        value = num(fmt(e["estimate"])) + (f"$^{{{mark}}}$" if mark else "")
-        return value, "(" + num(fmt(e["std_error"])) + ")"
+        return estimate_cells(est, vid, term, use_stars, num, lambda m: f"$^{{{m}}}$")
 
     def row_name(term):
         return (tex_breakable(names[term]) if term in names
                 else f"\\texttt{{{tex_breakable(term, long=14)}}}")
 
     has_diff = "diff_hansen_level_p" in vrow.columns
-    diag_rows = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
-                 ("Observations", "observations", fmt_int), ("Hansen $p$", "hansen_p", fmt_p),
-                 ("Sargan $p$", "sargan_p", fmt_p),
-                 ("AR(1) $p$", "ar1_p", fmt_p), ("AR(2) $p$", "ar2_p", fmt_p)]
-    if has_diff:
-        diag_rows.append(("Diff.-in-Hansen $p$", "diff_hansen_level_p", fmt_p))
+    diag_rows = diagnostic_rows(has_diff, "$p$")
     # a test row that is n/a in every shown column says nothing (Sargan in system GMM)
     shown_ids = [vid for panel in panels for vid, _, _ in panel]
     diag_rows = [r for r in diag_rows

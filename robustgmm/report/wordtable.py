@@ -13,12 +13,11 @@ from __future__ import annotations
 
 from html import escape
 
-import pandas as pd
-
 from .inputs import AuditFolder
 from .labels import report_option, term_labels
-from .latex import departure_label, fails, se_kinds, stars, table_panels
-from .summary import AuditSummary, fmt, fmt_int, fmt_p, summarize
+from .latex import (departure_label, diagnostic_rows, estimate_cells, fails, se_kinds,
+                    table_panels)
+from .summary import AuditSummary, summarize
 
 FONT = "font-family:'Times New Roman',serif;font-size:10pt"
 RULE = "border-top:1px solid #000"
@@ -42,22 +41,10 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
     names = term_labels(audit)
     use_stars = bool(report_option(audit, "stars", False))
     has_diff = "diff_hansen_level_p" in vrow.columns
-    diag = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
-            ("Observations", "observations", fmt_int), ("Hansen p", "hansen_p", fmt_p),
-            ("Sargan p", "sargan_p", fmt_p), ("AR(1) p", "ar1_p", fmt_p),
-            ("AR(2) p", "ar2_p", fmt_p)]
-    if has_diff:
-        diag.append(("Diff.-in-Hansen p", "diff_hansen_level_p", fmt_p))
+    diag = diagnostic_rows(has_diff, "p")
 
     def cells(vid, term):
-        if (vid, term) not in est.index:
-            return "", ""
-        e = est.loc[(vid, term)]
-        if isinstance(e, pd.DataFrame):
-            e = e.iloc[0]
-        mark = stars(e["p_value"]) if use_stars else ""
-        return (escape(fmt(e["estimate"])) + (f"<sup>{mark}</sup>" if mark else ""),
-                "(" + escape(fmt(e["std_error"])) + ")")
+        return estimate_cells(est, vid, term, use_stars, escape, lambda m: f"<sup>{m}</sup>")
 
     out = ['<!DOCTYPE html>', '<html lang="en"><head><meta charset="utf-8">',
            '<title>Robustness of the estimates to one change at a time</title></head>',
