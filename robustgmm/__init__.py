@@ -8,6 +8,8 @@ fit or audit → audit folder → report)::
     result = rg.fit(spec, rg.load_panel(spec))
     folder = rg.write_audit(rg.audit(spec, jobs=2), "audit_out")
     rg.build_report(folder)
+    sim = rg.run_simulation(spec, reps=200, jobs=2)   # the grid in a calibrated world
+    rg.write_simulation(sim, "simulation_out")
 
 Names are imported on first use, so ``import robustgmm`` stays cheap (the command
 line imports only what a command needs).
@@ -43,13 +45,18 @@ def _load(name: str):
         from . import report as module
     elif name == "run_demo":
         from . import demo as module
+    elif name in ("run_simulation", "write_simulation", "Simulation"):
+        from .montecarlo import replicate as module
+        if name == "run_simulation":
+            return module.simulate
     else:
         raise AttributeError(f"module 'robustgmm' has no attribute {name!r}")
     return getattr(module, name)
 
 
 __all__ = ["read_model", "spec_from_dict", "Spec", "load_panel", "fit", "FitResult",
-           "audit", "AuditResult", "write_audit", "build_report", "run_demo"]
+           "audit", "AuditResult", "write_audit", "build_report", "run_demo",
+           "run_simulation", "write_simulation", "Simulation"]
 
 
 def __getattr__(name: str):

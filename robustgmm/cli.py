@@ -61,6 +61,15 @@ def _jobs(text: str) -> int:
     return value
 
 
+def _whole(text: str) -> int:
+    """--reps, --seed, --simulate: a whole number (the range is checked with the
+    other inputs, by robustgmm.montecarlo.replicate.check_reps)."""
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number (got {text!r})") from None
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="robustgmm",
                      description="Audit how robust a dynamic panel GMM result is.")
@@ -91,6 +100,32 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--force", action="store_true",
                    help="write into an existing non-empty folder that robustgmm did not create")
     add_scheduler_option(p)
+
+    p.add_argument("--simulate", type=_whole, default=None, metavar="R",
+                   help="also run R replications of the whole grid in a world calibrated to "
+                        "the data (simulation.csv, calibration.json)")
+    p.add_argument("--seed", type=_whole, default=0, metavar="S",
+                   help="seed of the simulation (default 0)")
+
+    p = sub.add_parser("simulate", help="how every variant behaves at this sample size: the "
+                       "grid on panels simulated to look like the data")
+    p.add_argument("model", metavar="MODEL.toml", help="model file")
+    p.add_argument("--out", metavar="DIR", required=True, help="output folder")
+    p.add_argument("--reps", type=_whole, default=200, metavar="R",
+                   help="replications (default 200, at least 10)")
+    p.add_argument("--seed", type=_whole, default=0, metavar="S", help="seed (default 0)")
+    p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
+                   help="parallel workers (-1 = every core)")
+    p.add_argument("--initial", choices=("stationary", "data"), default="stationary",
+                   help="initial conditions: stationary (default) or the data's first-period "
+                        "deviations from the unit means")
+    p.add_argument("--no-cache", action="store_true",
+                   help="do not reuse or keep cached replications")
+    p.add_argument("--yes", action="store_true",
+                   help=f"run a grid of more than {LARGE_GRID:,} variants")
+    p.set_defaults(plan=False)
+    p.add_argument("--force", action="store_true",
+                   help="write into an existing non-empty folder that robustgmm did not create")
 
     p = sub.add_parser("report", help="rebuild the report of an audit output folder")
     p.add_argument("dir", metavar="DIR", help="an audit output folder")
@@ -593,6 +628,9 @@ def cmd_audit(args) -> int:
         check_name_length(args.out, "--out")
     spec = read_model(check_model_path(args.model))
     check_grid_size(spec, args)
+    if args.simulate is not None and not args.plan:
+        from .montecarlo.replicate import check_reps
+        check_reps(args.simulate, args.seed)
     if args.plan:
         if spec.vary.is_empty():
             print(nothing_varied_note(spec), file=sys.stderr, flush=True)
@@ -628,7 +666,9 @@ def _run_audit(spec, out: Path, args, backend):
         kw = {} if backend is None else {"backend": backend}
         result = run_audit(spec, jobs=args.jobs,
                            cache_dir=None if args.no_cache else out / ".cache",
-                           progress=sys.stderr.isatty(), **kw)
+                           progress=sys.stderr.isatty(), **kw,
+                           **({} if args.simulate is None else
+                              {"simulate": args.simulate, "seed": args.seed}))
         try:
             write_audit(result, out, model_file=Path(args.model), report=_report_builder())
         except OSError as exc:
@@ -655,6 +695,45 @@ def _after_audit(result, out: Path, args) -> int:
     if args.fail_on_fragile and fragile:
         return EXIT_FRAGILE
     return EXIT_OK
+
+
+def cmd_simulate(args) -> int:
+    from .modelfile import read_model
+    from .montecarlo.replicate import check_reps, simulate, write_simulation
+    from .output import FolderLock
+
+    check_name_length(args.out, "--out")
+    spec = read_model(check_model_path(args.model))
+    check_reps(args.reps, args.seed)
+    check_grid_size(spec, args)
+    check_audit_inputs(Path(args.out), spec, Path(args.model))
+    out = check_output_folder(args.out, args.force)
+    with FolderLock(out, "simulate"):
+        sim = simulate(spec, reps=args.reps, seed=args.seed, jobs=args.jobs,
+                       cache_dir=None if args.no_cache else out / ".cache",
+                       progress=sys.stderr.isatty(), initial=args.initial)
+        try:
+            write_simulation(sim, out, model_file=Path(args.model))
+        except OSError as exc:
+            raise _cannot_write(args.out, exc) from None
+    _out(simulation_summary(sim, out))
+    return EXIT_OK
+
+
+def simulation_summary(sim, out: Path) -> str:
+    """The closing lines of ``robustgmm simulate``: the base model's behaviour per
+    focus term and the run figures."""
+    run = sim.run
+    s = sim.summary
+    lines = []
+    for _, r in s[s["is_base"].astype(bool)].iterrows():
+        lines.append(f"base model, {r['term']}: bias {r['bias']:+.3g} (sd {r['sd']:.3g}), "
+                     f"coverage {r['coverage']:.0%}, {int(r['reps_ok'])}/{int(r['reps'])} "
+                     "replications estimated")
+    lines.append(f"{run['reps']} replications in {run['wall_seconds']:.1f} s: "
+                 f"{run['computed']} run, {run['cached']} from the cache")
+    lines.append(f"Wrote the simulation to {out}")
+    return "\n".join(lines)
 
 
 def run_line(run: dict, statuses=None) -> str:
@@ -769,7 +848,7 @@ def cmd_bench(args) -> int:
     return EXIT_OK
 
 
-COMMANDS = {"fit": cmd_fit, "audit": cmd_audit, "report": cmd_report,
+COMMANDS = {"fit": cmd_fit, "audit": cmd_audit, "simulate": cmd_simulate, "report": cmd_report,
             "demo": cmd_demo, "bench": cmd_bench}
 
 

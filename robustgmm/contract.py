@@ -159,6 +159,48 @@ BOUNDS = Table("bounds.csv", (
 ))
 
 TABLES = (VARIANTS, ESTIMATES, BOUNDS)
+
+#: The Monte Carlo of the grid (``robustgmm simulate``, ``audit --simulate``;
+#: :mod:`robustgmm.montecarlo.replicate`): one row per planned variant × focus term.
+SIMULATION = Table("simulation.csv", (
+    Column("variant", "text", "variant id (as in variants.csv)"),
+    Column("order", "int", "position in the plan, 1 = the base model"),
+    Column("is_base", "bool", "True on the base model's rows"),
+    Column("term", "text", "a focus term"),
+    Column("true_value", "float",
+           "its value in the simulated world (the base model's estimate, or the given truth)"),
+    Column("mean", "float", "mean estimate over the replications where the variant was estimated"),
+    Column("median", "float", "median estimate"),
+    Column("bias", "float", "mean - true_value"),
+    Column("relative_bias", "float", "bias / abs(true_value) (empty when the truth is 0)"),
+    Column("sd", "float", "standard deviation of the estimates (the simulation SD, ddof 1)"),
+    Column("rmse", "float", "root mean squared error about the truth"),
+    Column("mean_std_error", "float", "mean reported standard error"),
+    Column("se_ratio", "float", "mean_std_error / sd (below 1: reported errors too small)"),
+    Column("coverage", "float", "share of 1 - alpha intervals (estimate +- z se) containing the truth"),
+    Column("size", "float",
+           "rejection rate of the true null H0: term = true_value at alpha (1 - coverage)"),
+    Column("bias_mc_se", "float", "Monte Carlo standard error of the mean: sd / sqrt(reps_ok)"),
+    Column("coverage_mc_se", "float",
+           "Monte Carlo standard error of the coverage: sqrt(c (1 - c) / reps_ok)"),
+    Column("reps_ok", "int", "replications in which the variant was estimated"),
+    Column("reps", "int", "replications run"),
+    Column("hansen_rejection", "float",
+           "share of replications whose Hansen test rejects at alpha (a true null: its size)"),
+    Column("ar2_rejection", "float",
+           "share whose AR(2) test rejects at alpha (a true null: its size)"),
+    Column("diff_hansen_level_rejection", "float",
+           "share whose level-equation difference-in-Hansen test rejects at alpha (system "
+           "GMM; a true null under mean stationarity)"),
+), settings_after="is_base")
+#: The CSV tables of a simulation.
+SIMULATION_TABLES = (SIMULATION,)
+CALIBRATION_FILE = "calibration.json"
+#: Top-level keys of calibration.json (:func:`robustgmm.montecarlo.replicate.simulate`).
+CALIBRATION_KEYS = ("format_version", "seed", "reps", "alpha", "truth", "truth_source",
+                    "world", "fit", "failed")
+#: The files a simulation adds to an audit folder (or writes alone, with a manifest).
+SIMULATION_FILES = ("simulation.csv", CALIBRATION_FILE)
 #: Columns of variants.csv filled by the verdicts (robustgmm.audit.verdicts), not by
 #: the tables of the audit.
 VERDICT_COLUMNS = ("evidence", "acceptable", "duplicate_of", "flags")

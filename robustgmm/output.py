@@ -48,7 +48,8 @@ CONTRACT_FILES = contract.FILES
 #: The report documents written beside them (figures go in ``figures/``).
 REPORT_FILES = ("report.html", "report.md", "table.tex", "referee.txt")
 #: Every name an audit may write at the top of its folder (inputs must not be there).
-OUTPUT_NAMES = frozenset(CONTRACT_FILES + REPORT_FILES + (MARKER, LOCK))
+OUTPUT_NAMES = frozenset(CONTRACT_FILES + contract.SIMULATION_FILES + REPORT_FILES
+                         + (MARKER, LOCK))
 #: A lock file without readable content (its writer died between creating and
 #: writing it, microseconds apart) counts as stale after this many seconds.
 UNREADABLE_LOCK_SECONDS = 10.0

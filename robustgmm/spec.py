@@ -251,6 +251,11 @@ class Thresholds:
     #: ``weak_instruments`` fires below this conditional F (Staiger & Stock 1997's
     #: rule of thumb; common practice)
     weak_f: float = 10.0
+    #: ``unreliable_at_this_size`` (a Monte Carlo of the grid): simulated coverage of
+    #: the 1 - alpha intervals below this ...
+    min_coverage: float = 0.85
+    #: ... or |mean bias| above this many simulation standard deviations
+    max_bias_sd: float = 0.5
 
     def __post_init__(self):
         from .modelfile import checks as c

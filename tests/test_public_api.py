@@ -9,7 +9,8 @@ from pathlib import Path
 import robustgmm
 
 PUBLIC = ["read_model", "spec_from_dict", "Spec", "load_panel", "fit", "FitResult",
-          "audit", "AuditResult", "write_audit", "build_report", "run_demo"]
+          "audit", "AuditResult", "write_audit", "build_report", "run_demo",
+          "run_simulation", "write_simulation", "Simulation"]
 
 
 def test_all_is_pinned_and_every_name_resolves():
@@ -21,11 +22,13 @@ def test_all_is_pinned_and_every_name_resolves():
     from robustgmm.modelfile import read_model, spec_from_dict
     from robustgmm.report import build_report
     from robustgmm.spec import Spec
+    from robustgmm.montecarlo import Simulation, simulate, write_simulation
     for name, obj in [("read_model", read_model), ("spec_from_dict", spec_from_dict),
                       ("Spec", Spec), ("load_panel", load_panel), ("fit", fit),
                       ("FitResult", FitResult), ("audit", audit), ("AuditResult", AuditResult),
                       ("write_audit", write_audit), ("build_report", build_report),
-                      ("run_demo", run_demo)]:
+                      ("run_demo", run_demo), ("run_simulation", simulate),
+                      ("write_simulation", write_simulation), ("Simulation", Simulation)]:
         assert getattr(robustgmm, name) is obj, name
     assert set(PUBLIC) <= set(dir(robustgmm))
 

@@ -43,6 +43,8 @@ class AuditResult:
     verdict: Mapping[str, Any]
     manifest: Mapping[str, Any]
     spec: Spec | None = field(default=None, repr=False, compare=False)
+    #: the Monte Carlo of the grid (``audit(..., simulate=R)``), else None
+    simulation: Any = field(default=None, repr=False, compare=False)
 
     def term_verdicts(self) -> dict[str, str]:
         return {t: v["verdict"] for t, v in self.verdict["terms"].items()}
@@ -55,7 +57,8 @@ def default_cache_dir(out_dir) -> Path:
 
 
 def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool | None = False,
-          backend: str | None = None, on_error: str = "raise") -> AuditResult:
+          backend: str | None = None, on_error: str = "raise", simulate: int | None = None,
+          seed: int = 0) -> AuditResult:
     """Estimate every variant of ``spec`` and judge the focus terms.
 
     ``jobs``: workers (None: every core). ``cache_dir``: folder of the variant cache
@@ -82,8 +85,16 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
                                           progress=progress, backend=backend,
                                           on_error=on_error)
     t_run = time.perf_counter()
+    simulation = None
+    if simulate is not None:
+        from ..montecarlo.replicate import simulate as run_simulation
+        simulation = run_simulation(spec, reps=simulate, seed=seed, jobs=jobs,
+                                    cache_dir=cache_dir, progress=progress, backend=backend,
+                                    planned=planned, panels=panels)
+    t_sim = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
-    evaluation = verdicts.evaluate(spec, variants, estimates, bounds)  # every rule, once
+    evaluation = verdicts.evaluate(spec, variants, estimates, bounds,  # every rule, once
+                                   None if simulation is None else simulation.summary)
     verdict = evaluation.verdict.to_dict()
     extra = evaluation.columns
     variants = contract.frame_in_order(
@@ -119,15 +130,18 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
             "load_seconds": t_load - t0,
             "plan_seconds": t_plan - t_load,
             "run_seconds": t_run - t_plan,
-            "verdict_seconds": t_end - t_run,
+            "simulation_seconds": t_sim - t_run,
+            "verdict_seconds": t_end - t_sim,
             "total_seconds": t_end - t0,
         },
         "environment": {"python": platform.python_version(), "numpy": np.__version__,
                         "pandas": pd.__version__, "platform": platform.platform()},
         "disclaimer": verdicts.DISCLAIMER,
     }
+    if simulation is not None:
+        manifest["simulation"] = dict(simulation.run)
     return AuditResult(variants=variants, estimates=estimates, bounds=bounds,
-                       verdict=verdict, manifest=manifest, spec=spec)
+                       verdict=verdict, manifest=manifest, spec=spec, simulation=simulation)
 
 
 def _spec_dict(spec: Spec) -> dict | None:
@@ -289,12 +303,13 @@ def write_audit(result: AuditResult, out_dir, *, model_file=None, report=None) -
                                                   result.bounds)):
             atomic_write_csv(stage / table.file, contract.frame_in_order(table, frame, settings))
         atomic_write_json(stage / "verdict.json", result.verdict)
+        extra = result.simulation.write(stage) if result.simulation is not None else []
         manifest = dict(result.manifest)
         if model_file is not None:
             manifest["model_file"] = str(model_file)
-        manifest["files"] = list(contract.FILES)
+        manifest["files"] = list(contract.FILES) + extra
         atomic_write_json(stage / "manifest.json", manifest)
-        names = list(contract.FILES)
+        names = list(contract.FILES) + extra
         if report is not None:
             names += [str(Path(p).relative_to(stage)) for p in report(stage)]
         return names

@@ -318,7 +318,7 @@ def v_scalar_list(v):
 def threshold_check(name: str) -> Callable:
     if name == "count_untestable":
         return v_bool
-    if name.endswith("share"):
+    if name.endswith("share") or name == "min_coverage":
         return v_share
     if name.endswith(("reject", "high")):
         return v_prob

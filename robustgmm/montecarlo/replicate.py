@@ -79,7 +79,25 @@ class Simulation:
     summary: pd.DataFrame
     calibration: Mapping[str, Any]
     run: Mapping[str, Any]
+    settings: tuple[str, ...] = ()
     records: Sequence[dict] = field(default=(), repr=False, compare=False)
+
+    def frame(self) -> pd.DataFrame:
+        """simulation.csv: the summary in the contract's column order."""
+        from .. import contract
+        return contract.frame_in_order(contract.SIMULATION, self.summary, self.settings)
+
+    def write(self, stage) -> list[str]:
+        """Write simulation.csv and calibration.json (atomically) into ``stage``;
+        return their names. Both are identical whatever the jobs count and the cache
+        (the run figures go into the manifest)."""
+        from pathlib import Path
+        from .. import contract
+        from ..atomic import atomic_write_csv, atomic_write_json
+        stage = Path(stage)
+        atomic_write_csv(stage / contract.SIMULATION.file, self.frame())
+        atomic_write_json(stage / contract.CALIBRATION_FILE, dict(self.calibration))
+        return list(contract.SIMULATION_FILES)
 
 
 # ---------------------------------------------------------------------------
@@ -451,8 +469,15 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
                                     level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
                                     cache_dir=cache_dir, progress=progress, backend=backend)
     summary = summarise(records, variants, focus, truth_terms, spec.alpha)
+    settings = tuple(grid.setting_columns(spec))
+    shown = {v.id: v.settings_dict() for v in variants}
+    for col in settings:
+        summary.insert(summary.columns.get_loc("term"), col,
+                       [shown[vid].get(col) for vid in summary["variant"]])
     columns = (spec.outcome,) + world.regressors
+    from .. import contract
     calibration = {
+        "format_version": contract.FORMAT_VERSION,
         "seed": seed, "reps": reps, "alpha": spec.alpha,
         "truth": {t: truth_terms[t] for t in focus if t in truth_terms},
         "truth_source": "given" if truth is not None else "base model estimate",
@@ -462,4 +487,34 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
         "failed": {v.id: sum(1 for r in records if r["variants"][v.id]["status"] != "ok")
                    for v in variants},
     }
-    return Simulation(summary=summary, calibration=calibration, run=run, records=records)
+    return Simulation(summary=summary, calibration=calibration, run=run, settings=settings,
+                      records=records)
+
+
+def write_simulation(sim: Simulation, out_dir, *, model_file=None) -> "Path":
+    """Write a simulation on its own (``robustgmm simulate``): simulation.csv,
+    calibration.json and a manifest.json (provenance and run figures), through a
+    staging folder swapped in as one unit (:func:`robustgmm.output.publish`)."""
+    import datetime as _dt
+    from pathlib import Path
+
+    from .. import __version__, contract
+    from .. import output as folder
+    from ..atomic import atomic_write_json
+
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+
+    def write(stage: Path) -> list[str]:
+        names = sim.write(stage)
+        atomic_write_json(stage / "manifest.json", {
+            "package": "robustgmm", "version": __version__,
+            "format_version": contract.FORMAT_VERSION, "command": "simulate",
+            "created_utc": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+            "model_file": None if model_file is None else str(model_file),
+            "settings": list(sim.settings), "run": dict(sim.run),
+            "files": names + ["manifest.json"]})
+        return names + ["manifest.json"]
+
+    folder.publish(out, write)
+    return out

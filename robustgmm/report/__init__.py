@@ -45,9 +45,35 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     figures = render_figures(audit, out / "figures", formats=formats)
     context = build_context(audit, figures, summary)
     written = [p for f in figures for p in f.paths]
+    sim_section, sim_md, sim_referee = _simulation_section(audit, out, formats, written)
+    context["simulation"] = sim_section
     written.append(atomic_write_text(out / "report.html", render_html(context)))
-    written.append(atomic_write_text(out / "report.md", render_markdown(context)))
+    written.append(atomic_write_text(out / "report.md", render_markdown(context) + sim_md))
     written.append(atomic_write_text(out / "table.tex", render_latex(audit, summary)))
     written.append(atomic_write_text(out / "table.html", render_word_table(audit, summary)))
-    written.append(atomic_write_text(out / "referee.txt", referee_text(audit, summary)))
+    written.append(atomic_write_text(out / "referee.txt",
+                                     referee_text(audit, summary) + sim_referee))
     return written
+
+
+def _simulation_section(audit, out: Path, formats, written: list):
+    """The optional section "How these estimators behave at this sample size"
+    (:mod:`.simulation`): its context, its Markdown and its referee sentences; empty
+    when the folder holds no simulation.csv."""
+    from . import simulation as sim_mod
+    settings = list(audit.manifest.get("vary") or [])
+    sim = sim_mod.read_simulation(out, settings, getattr(audit, "thresholds", None))
+    if sim is None:
+        return None, "", ""
+    figs = sim_mod.render_simulation_figures(sim, out / "figures", audit.focus, formats=formats)
+    written.extend(p for f in figs for p in f.paths)
+    try:
+        units = int(audit.base_row()["units"])
+    except (KeyError, TypeError, ValueError, IndexError):
+        units = None
+    ctx = sim_mod.section_context(sim, figs, audit.focus, units)
+    import textwrap
+    text = sim_mod.referee_sentences(sim, audit.focus, units)
+    referee = ("\n\n" + textwrap.fill(text, width=88, break_long_words=False,
+                                      break_on_hyphens=False)) if text else ""
+    return ctx, "\n" + sim_mod.markdown_section(ctx), referee

@@ -37,7 +37,7 @@ def _diagnostics(variants, flags, th) -> dict:
     return out
 
 
-def _model_flags(variants, flags, th, base_pos, ids) -> tuple[Firing, ...]:
+def _model_flags(variants, flags, th, base_pos, ids, unreliable=None) -> tuple[Firing, ...]:
     out = []
     ok = variants["status"].astype(str).eq("ok").to_numpy()
     n_ok = int(ok.sum())
@@ -46,7 +46,8 @@ def _model_flags(variants, flags, th, base_pos, ids) -> tuple[Firing, ...]:
                  "hansen_p_high": "hansen_p", "hansen_p_near_one": "hansen_p",
                  "instruments_exceed_units": "instruments_per_unit",
                  "tests_unavailable": None, "duplicate_estimate": None,
-                 "underidentified": "underid_p", "weak_instruments": "weak_f_min"}
+                 "underidentified": "underid_p", "weak_instruments": "weak_f_min",
+                 "unreliable_at_this_size": None}
     for rule in RULES:
         if rule.level != "variant":
             continue
@@ -65,6 +66,8 @@ def _model_flags(variants, flags, th, base_pos, ids) -> tuple[Firing, ...]:
             fig["of_available"] = int(avail.sum())
             fig["base_value"] = vals[base_pos] if base_pos is not None else None
             fig["range"] = [float(np.nanmin(vals[hit])), float(np.nanmax(vals[hit]))]
+        if rule.id == "unreliable_at_this_size":
+            fig["terms"] = {vid: items for vid, items in (unreliable or {}).items()}
         if rule.id == "duplicate_estimate":
             fig["pairs"] = {str(i): str(d) for i, d in zip(ids[hit], flags["duplicate_of"].to_numpy()[hit])}
         out.append(_fired(rule.id, th, fig))

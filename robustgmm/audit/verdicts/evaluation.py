@@ -13,7 +13,8 @@ from ...options import Effect, Evidence, Verdict
 from ..records import (AuditVerdict, BaseEstimate, Driver, Evaluation, Firing, Influence,
                        Rule, TermVerdict, _clean, _num)
 from ...spec import Spec, Thresholds
-from .rules import COMBINATION, DISCLAIMER, RULES, VARIANT_RULES, threshold_values
+from .rules import (COMBINATION, DISCLAIMER, RULES, VARIANT_RULES, threshold_values,
+                    unreliable_at_this_size)
 from .flags import find_duplicates, variant_flags
 from .context import _Context
 from .base import _base_statement, closest_acceptable
@@ -25,14 +26,17 @@ from .caution import _diagnostics, _model_flags
 # the evaluation
 # ---------------------------------------------------------------------------
 def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
-             bounds: pd.DataFrame | None = None) -> Evaluation:
+             bounds: pd.DataFrame | None = None,
+             simulation: pd.DataFrame | None = None) -> Evaluation:
     """Every rule, once: the variant columns and the verdict.
 
     ``variants``: one row per variant (``variant``, ``is_base``, ``status``, ``reason``,
     the varied settings and the diagnostics ``hansen_p``, ``ar2_p``,
     ``diff_hansen_level_p``, ``instruments``, ``units``; ``duplicate_of`` when the plan
     found a duplicate); ``estimates``: ``variant``, ``term``, ``estimate``,
-    ``std_error``, ``p_value``; ``bounds``: ``variant``, ``term``, ``ols``, ``fe``.
+    ``std_error``, ``p_value``; ``bounds``: ``variant``, ``term``, ``ols``, ``fe``;
+    ``simulation``: the rows of simulation.csv, when the audit ran a Monte Carlo
+    (the rule ``unreliable_at_this_size``).
     """
     th = threshold_values(spec)
     alpha = float(spec.alpha)
@@ -45,6 +49,8 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
     duplicate_of = np.array([dups.get(i, planned_dup[k] if planned_dup[k] != "nan" else "")
                              for k, i in enumerate(ids)], dtype=object)
     flags["duplicate_estimate"] = np.array([i in dups for i in ids])
+    unreliable = unreliable_at_this_size(simulation, th)
+    flags["unreliable_at_this_size"] = np.array([i in unreliable for i in ids])
     flags["duplicate_of"] = duplicate_of
     flag_text = flags[list(VARIANT_RULES)].apply(
         lambda row: ";".join(n for n in VARIANT_RULES if row[n]), axis=1)
@@ -94,7 +100,7 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
         alpha=alpha, base_variant=base_id, base_acceptable=base_acceptable,
         base_evidence=base_evidence, base_statement=statement, closest_acceptable=closest,
         thresholds=th, variants=counts, diagnostics=_diagnostics(variants, flags, th),
-        terms=terms, model=_model_flags(variants, flags, th, base_pos, ids),
+        terms=terms, model=_model_flags(variants, flags, th, base_pos, ids, unreliable),
         rules=RULES, combination=COMBINATION, disclaimer=DISCLAIMER)
     return Evaluation(columns=columns, verdict=verdict)
 

@@ -61,6 +61,7 @@ def variant_flags(variants: pd.DataFrame, thresholds: Mapping[str, Any],
     missing = ~np.isfinite(hansen) | ~np.isfinite(ar2) | (system & ~np.isfinite(dh))
     flags["tests_unavailable"] = ok & ~rejected & missing
     flags["duplicate_estimate"] = False
+    flags["unreliable_at_this_size"] = False  # filled by evaluate() from a simulation
     flags = flags[list(VARIANT_RULES)]
     evidence = np.where(status == "failed", Evidence.FAILED.value, Evidence.SKIPPED.value)
     evidence = np.where(ok & rejected, Evidence.REJECTED.value, evidence)

@@ -75,6 +75,14 @@ RULES: tuple[Rule, ...] = (
     Rule("instruments_exceed_units", "variant",
          "more instruments per unit than the threshold",
          "common practice; Roodman (2009)", "instruments_per_unit", Effect.CAUTION),
+    Rule("unreliable_at_this_size", "variant",
+         "in the Monte Carlo calibrated to these data (simulation.csv), the variant's "
+         "1 - alpha intervals for a focus term cover the truth less often than min_coverage, "
+         "or its mean bias exceeds max_bias_sd simulation standard deviations, each by more "
+         "than two Monte Carlo standard errors: at this sample size its estimate or its "
+         "inference cannot be trusted, if the model is true",
+         "Blundell & Bond (1998); Windmeijer (2005); Bun & Windmeijer (2010); the 0.85 and "
+         "0.5 lines are robustgmm defaults", "min_coverage", Effect.CAUTION),
     Rule("duplicate_estimate", "variant",
          "the estimates equal those of an earlier variant (column duplicate_of); it casts "
          "no vote",
@@ -142,6 +150,38 @@ def threshold_values(spec: Spec) -> dict[str, Any]:
     out["hansen_near_one"] = HANSEN_NEAR_ONE
     out["min_acceptable"] = MIN_ACCEPTABLE
     out["alpha"] = float(spec.alpha)
+    return out
+
+
+#: ``unreliable_at_this_size`` fires only when a simulated rate is beyond its line by
+#: more than this many Monte Carlo standard errors, so that noise from a small number
+#: of replications does not fire it (about a 2.5% one-sided chance per term at the line).
+MC_MARGIN = 2.0
+
+
+def unreliable_at_this_size(summary: pd.DataFrame | None,
+                            thresholds: Mapping[str, Any]) -> dict[str, list[dict]]:
+    """``{variant id: [{term, coverage, bias, sd, bias_sd}, ...]}`` for the variants
+    whose simulated coverage of a focus term is below ``min_coverage`` or whose
+    ``|bias| / sd`` exceeds ``max_bias_sd`` (the rule ``unreliable_at_this_size``;
+    ``summary``: the rows of simulation.csv), each by more than :data:`MC_MARGIN`
+    Monte Carlo standard errors (``coverage_mc_se``; ``bias_mc_se = sd / sqrt(R)``).
+    A rate from no replication fires nothing."""
+    out: dict[str, list[dict]] = {}
+    if summary is None or len(summary) == 0:
+        return out
+    lo, hi = float(thresholds["min_coverage"]), float(thresholds["max_bias_sd"])
+    for row in summary.to_dict("records"):
+        cov, bias, sd, cse, bse = (_num(row.get(k)) for k in (
+            "coverage", "bias", "sd", "coverage_mc_se", "bias_mc_se"))
+        ok_sd = math.isfinite(bias) and math.isfinite(sd) and sd > 0
+        ratio = abs(bias) / sd if ok_sd else math.nan
+        low_cover = math.isfinite(cov) and cov + MC_MARGIN * (cse if math.isfinite(cse) else 0.0) < lo
+        biased = ok_sd and math.isfinite(bse) and abs(bias) - MC_MARGIN * bse > hi * sd
+        if low_cover or biased:
+            out.setdefault(str(row["variant"]), []).append(
+                {"term": str(row["term"]), "coverage": cov, "bias": bias, "sd": sd,
+                 "bias_sd": ratio, "low_coverage": bool(low_cover), "biased": bool(biased)})
     return out
 
 
