@@ -17,7 +17,8 @@ def test_bench_quick_writes_every_workload(tmp_path, monkeypatch, capsys):
     assert main(["bench", "--quick", "--out", str(out)]) == 0
     text = (out / "bench.md").read_text(encoding="utf-8")
     printed = capsys.readouterr().out
-    for title in ("1. Marginal cost", "2. Scale", "3. Audit throughput", "4. Against linearmodels"):
+    for title in ("1. Marginal cost", "2. Scale", "3. Audit throughput", "4. Against linearmodels",
+                  "5. Calibrated Monte Carlo"):
         assert f"## {title}" in text
         assert title in printed
     assert "failed:" not in text, text
@@ -26,7 +27,8 @@ def test_bench_quick_writes_every_workload(tmp_path, monkeypatch, capsys):
     names = [r.split("|")[2].strip() for r in rows]
     for expected in ("extra fit time / extra dense Z'Z time", "peak memory at N = 160 / 3 GB",
                      "core shared work / one by one", "audit jobs = 2 / jobs = 1",
-                     "robustgmm / linearmodels"):
+                     "robustgmm / linearmodels", "one replication / audit estimation time",
+                     "replications jobs = 2 / jobs = 1"):
         assert expected in names, names
     for r in rows:  # a number (nan only where tiny timings drown in noise)
         value = r.split("|")[3].strip()
