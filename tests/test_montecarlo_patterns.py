@@ -107,12 +107,11 @@ def test_roodman_hansen_rejections_fall_with_many_instruments(tmp_path):
     """System GMM, rho = 0.5, N = 60, T = 10 (Roodman 2009, section 4): with collapsed
     lag-2 instruments Hansen rejects near its nominal 5% and its p-values spread over
     (0, 1) (median near 0.5); with every lag per period (45 instruments for 60 units)
-    it almost never rejects: the robust J is at most N (Windmeijer-style bound of an
-    uncentred weight), and the 5% critical value of its degrees of freedom is close
-    to N. Roodman's p-values of 1.000 arise when the degrees of freedom exceed N; the
-    core counts them as rank(weight) - rank(Z'X) (docs/method.md), which removes that
-    drift, so it is not asserted (measured at R = 40: median p 0.48 with collapsed,
-    0.40 with every lag)."""
+    it almost never rejects: with the robust weight (sum g_i g_i')^-1 the criterion is
+    a projection of the unit sums and cannot exceed about N, while the 5% critical
+    value of its degrees of freedom is close to N. The p-values did not drift towards
+    1 in this design (measured at R = 40: median p 0.48 with collapsed, 0.40 with every
+    lag), so that is not asserted."""
     proc = PanelProcess(rho=0.5, beta=0.0, gamma=0.0, tau=0.0, theta=0.0)
     frame = simulate_panel(60, 10, proc, seed=23)[["unit", "period", "y"]]
     spec = _spec(tmp_path, frame, {"outcome": "y", "outcome_lags": [1], "time_effects": False},
