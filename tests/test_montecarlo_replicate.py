@@ -105,3 +105,18 @@ def test_base_model_not_estimable(tmp_path):
         rp.simulate(spec, reps=10)
     assert len(err.value.problems) == 1
     assert "base model cannot be estimated" in err.value.problems[0]
+
+
+def test_estimate_group_without_bounds_gives_the_same_fits(spec):
+    """The replications skip the OLS/within bounds (runner.estimate_group(bounds=False));
+    the fits are those of the audit's own call."""
+    from robustgmm import core
+    from robustgmm.audit import runner
+    from robustgmm.data import load_panel
+    panel = load_panel(spec)
+    specs = [spec, __import__("dataclasses").replace(spec, steps=1)]
+    assert core.share_key(specs[0]) == core.share_key(specs[1])
+    full = runner.estimate_group(specs, panel)
+    lean = runner.estimate_group(specs, panel, bounds=False)
+    assert all(e["bounds"] is None for e in lean) and all(e["bounds"] for e in full)
+    assert [e["fit"] for e in lean] == [e["fit"] for e in full]

@@ -160,7 +160,8 @@ def _unexpected(exc: BaseException, on_error: str) -> dict:
 
 
 def estimate_group(specs, panel, fit: Callable | None = None,
-                   sample: Callable | None = None, on_error: str = "raise") -> list[dict]:
+                   sample: Callable | None = None, on_error: str = "raise",
+                   bounds: bool = True) -> list[dict]:
     """Estimate a share group of variants and their OLS/within bounds.
 
     A variant that cannot be estimated (:class:`EstimationError` and its subclasses,
@@ -172,7 +173,8 @@ def estimate_group(specs, panel, fit: Callable | None = None,
     reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
     (tests) replaces it by one call per member; ``sample`` replaces
     :func:`robustgmm.core.estimation_sample`. Bounds are computed once per distinct
-    estimation sample and model (members of a share group normally have one).
+    estimation sample and model (members of a share group normally have one);
+    ``bounds=False`` leaves them out (``bounds`` None: the Monte Carlo needs only the fits).
     """
     from . import bounds as bounds_mod
     from .. import core
@@ -206,6 +208,9 @@ def estimate_group(specs, panel, fit: Callable | None = None,
             entry["fit"] = fit_record(res, spec)
         except Exception as exc:  # noqa: BLE001
             out.append({"fit": None, "bounds": None, **_unexpected(exc, on_error)})
+            continue
+        if not bounds:
+            out.append(entry)
             continue
         try:
             # members of a share group differ only in steps, errors and last_lag,

@@ -201,7 +201,8 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
             for v in members:
                 out[v.id] = {"status": runner.FAILED, "reason": panel}
             continue
-        for v, entry in zip(members, runner.estimate_group([m.spec for m in members], panel)):
+        for v, entry in zip(members, runner.estimate_group([m.spec for m in members], panel,
+                                                                bounds=False)):
             if entry["status"] != runner.OK:
                 out[v.id] = {"status": entry["status"], "reason": entry["reason"]}
                 continue
