@@ -271,4 +271,7 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "provenance_short": short_provenance(provenance_items(dict(audit.manifest))),
         "version": __version__,
         "fmt_int": fmt_int,
+        # Filled by build_report when the folder holds simulation.csv (report.simulation);
+        # present here so every caller of build_context can render the templates.
+        "simulation": None,
     }
