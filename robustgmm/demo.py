@@ -229,7 +229,8 @@ CLINICS_MODEL = """\
 # Example: invented scenario (fictional rural clinics) with a known data-generating
 # process; see robustgmm/demo.py and truth.json.
 # Shows: a predetermined regressor, forward orthogonal deviations and the lag
-# structure in the audit (a second lag of the outcome, a lag of the regressor).
+# structure in the audit (a second lag of the outcome, a lag of the regressor) and
+# the long-run effect of the regressor as a focus term.
 
 [data]
 file = "clinics.csv"
@@ -262,7 +263,7 @@ last_lag = 4
 form = "collapsed"
 
 [audit]
-focus = ["wait_days[t-1]", "nurses[t]"]
+focus = ["wait_days[t-1]", "nurses[t]", "nurses[long-run]"]   # and the long-run effect of staffing
 
 [audit.vary]
 transform = ["fd", "fod"]

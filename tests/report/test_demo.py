@@ -83,6 +83,22 @@ def test_examples_recover_the_truth(name, terms):
         assert abs(t.estimate - truth[term]) < 4 * t.std_error, (term, t.estimate, truth[term])
 
 
+def test_clinics_recovers_the_long_run_effect_of_staffing():
+    # Simulation with known truth: the long-run multiplier of an autoregressive
+    # distributed-lag model, sum of the regressor's coefficients over 1 - the sum of
+    # the AR coefficients (docs/method.md), is -0.25 / (1 - 0.6) = -0.625 in the
+    # clinics process. Same 4-SE band as above, with the delta-method SE.
+    scenario = demo.EXAMPLES["clinics"]
+    spec = read_model(EXAMPLES / "clinics" / scenario.model_name)
+    assert "nurses[long-run]" in spec.focus
+    result = fit(spec, load_panel(spec))
+    truth = json.loads((EXAMPLES / "clinics" / demo.TRUTH_NAME).read_text())["parameters"]
+    true_long_run = truth["nurses[t]"] / (1 - truth["wait_days[t-1]"])
+    t = result.term("nurses[long-run]")
+    assert np.isfinite(t.std_error) and t.std_error > 0
+    assert abs(t.estimate - true_long_run) < 4 * t.std_error, (t.estimate, true_long_run)
+
+
 def test_example_models_use_the_features_they_show():
     clinics = read_model(EXAMPLES / "clinics" / "clinics.toml")
     assert clinics.transform == "fod"
