@@ -74,7 +74,8 @@ class CountingFit:
 
 def outcome_text(outcomes) -> str:
     """Outcomes as canonical JSON without timings (for exact comparisons)."""
-    return canonical_json({vid: {"status": o.status, "reason": o.reason, "fit": o.fit,
+    return canonical_json({vid: {"status": o.status, "reason": o.reason,
+                                 "fit": None if o.fit is None else o.fit.to_dict(),
                                  "bounds": o.bounds} for vid, o in outcomes.items()})
 
 

@@ -155,37 +155,55 @@ def _spec_dict(spec: Spec) -> dict | None:
 
 
 def _p(test) -> float:
-    return np.nan if not test or test.get("p_value") is None else float(test["p_value"])
+    return np.nan if test is None else float(test.p_value)
 
 
-def _unavailable(fit: dict) -> str:
+def _unavailable(fit) -> str:
     """The tests of a fit that are not reported, each with its reason ("name: reason",
     joined by " | "): e.g. Sargan in system GMM, a difference-in-Hansen group whose
     removal leaves the model unidentified."""
-    items = [(name, t) for name, t in fit["tests"].items() if t]
-    items += [(f"difference-in-Hansen {g}", t) for g, t in fit["difference_hansen"].items() if t]
+    items = [(name, t) for name, t in fit.tests.items() if t is not None]
+    items += [(f"difference-in-Hansen {g}", t) for g, t in fit.difference_hansen.items()]
     names = {"rank_lm": "rank test", "conditional_f": "conditional F"}
-    for kind, tests in (fit.get("strength") or {}).items():
+    for kind, tests in fit.strength.items():
         if kind in names:  # the Wald form shares the LM form's reason
-            items += [(f"{names[kind]} {n}", t) for n, t in tests.items() if t]
-    return " | ".join(f"{name}: {t['reason']}" for name, t in items if t.get("reason"))
+            items += [(f"{names[kind]} {n}", t) for n, t in tests.items() if t is not None]
+    return " | ".join(f"{name}: {t.reason}" for name, t in items if t.reason)
 
 
-def _strength_columns(fit: dict) -> dict:
-    """The instrument-strength columns of variants.csv from a fit record: the rank
-    test p-values (LM form) of the whole system and of each equation, the rank
-    Wald F of the system and the smallest conditional F with its term."""
-    st = fit.get("strength") or {}
+def _bounds_warning(text: str) -> str:
+    """A note about a variant's OLS/within bounds, as written in variants.csv: the one
+    place that adds the "bounds:" prefix (the bounds' own errors come without it)."""
+    return "bounds: " + text
+
+
+def _gmm_estimates(spec: Spec, fit) -> dict[str, float]:
+    """The GMM estimate of each term (coefficients, then long-run effects), and of the
+    sum of the AR coefficients (the persistence the bounds check when the outcome has
+    several lags)."""
+    gmm = {t.label: t.estimate for t in fit.terms + fit.long_run}
+    ar = list(spec.ar_terms())
+    if len(ar) > 1 and all(a in gmm for a in ar):
+        from .bounds import sum_label
+        gmm[sum_label(spec)] = float(sum(gmm[a] for a in ar))
+    return gmm
+
+
+def _strength_columns(fit) -> dict:
+    """The instrument-strength columns of variants.csv from a fit: the rank test
+    p-values (LM form) of the whole system and of each equation, the rank Wald F of
+    the system and the smallest conditional F with its term."""
+    st = fit.strength
     lm, wald, cond = st.get("rank_lm", {}), st.get("rank_wald", {}), st.get("conditional_f", {})
     out = {"underid_p": _p(lm.get("system")),
            "underid_p_transformed": _p(lm.get("transformed", lm.get("system") if
                                               "level" not in lm else None)),
            "underid_p_level": _p(lm.get("level"))}
-    w = wald.get("system") or {}
-    out["rk_f"] = (w["statistic"] / w["df"] if w.get("statistic") is not None
-                   and np.isfinite(w["statistic"]) and w.get("df") else np.nan)
-    fs = {term: t["statistic"] for term, t in cond.items()
-          if t and t.get("statistic") is not None and np.isfinite(t["statistic"])}
+    w = wald.get("system")
+    out["rk_f"] = (w.statistic / w.df if w is not None and np.isfinite(w.statistic)
+                   and w.df else np.nan)
+    fs = {term: t.statistic for term, t in cond.items()
+          if t is not None and np.isfinite(t.statistic)}
     term = min(fs, key=fs.get) if fs else None
     out["weak_f_min"] = fs[term] if term else np.nan
     out["weak_f_term"] = term
@@ -215,26 +233,23 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                    ar_coefficient=np.nan, ar_ols=np.nan, ar_fe=np.nan, in_bounds=None,
                    unavailable_tests="", warnings="")
         if fit is not None:
-            c = fit["counts"]
-            tests = fit["tests"]
-            row.update(instruments=c.get("instruments"), parameters=c.get("parameters"),
-                       units=c.get("units"), observations=c.get("observations"),
-                       hansen_p=_p(tests.get("hansen")),
-                       hansen_df=(tests.get("hansen") or {}).get("df"),
+            c = fit.counts
+            tests = fit.tests
+            hansen = tests.get("hansen")
+            row.update(instruments=c.instruments, parameters=c.parameters, units=c.units,
+                       observations=c.observations, hansen_p=_p(hansen),
+                       hansen_df=None if hansen is None else hansen.df,
                        sargan_p=_p(tests.get("sargan")), ar1_p=_p(tests.get("ar1")),
                        ar2_p=_p(tests.get("ar2")),
-                       diff_hansen_level_p=_p(fit["difference_hansen"].get(verdicts.LEVEL_GROUP)),
-                       std_error_kind=fit["std_error_kind"],
+                       diff_hansen_level_p=_p(fit.difference_hansen.get(verdicts.LEVEL_GROUP)),
+                       std_error_kind=fit.std_error_kind,
                        **_strength_columns(fit),
                        unavailable_tests=_unavailable(fit),
-                       warnings=" | ".join(fit.get("warnings", [])))
-            gmm = {t["term"]: t["estimate"] for t in fit["terms"]}
-            for t in fit["terms"]:
-                erows.append({"variant": v.id, "term": t["term"], "estimate": t["estimate"],
-                              "std_error": t["std_error"], "z": t["z"], "p_value": t["p_value"]})
-            if "ar_sum" in fit:
-                from .bounds import sum_label
-                gmm[sum_label(v.spec)] = fit["ar_sum"]["estimate"]  # the variant's own lags
+                       warnings=" | ".join(fit.warnings))
+            for t in fit.terms + fit.long_run:  # the long-run effects follow the coefficients
+                erows.append({"variant": v.id, "term": t.label, "estimate": t.estimate,
+                              "std_error": t.std_error, "z": t.z, "p_value": t.p_value})
+            gmm = _gmm_estimates(v.spec, fit)  # the variant's own lags
             if bnd is not None and "terms" in bnd:
                 for b in bnd["terms"]:
                     est = gmm.get(b["term"], np.nan)
@@ -249,13 +264,12 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                            ar_fe=pers["fe"], in_bounds=_inside(est, pers["ols"], pers["fe"]))
                 if bnd.get("dropped"):
                     row["warnings"] = " | ".join(filter(None, [
-                        row["warnings"], "bounds: the within estimator drops the time-invariant "
-                        "term(s) " + ", ".join(bnd["dropped"]) + " (absorbed by the unit effect)"]))
+                        row["warnings"], _bounds_warning(
+                            "the within estimator drops the time-invariant term(s) "
+                            + ", ".join(bnd["dropped"]) + " (absorbed by the unit effect)")]))
             elif bnd is not None:
-                err = bnd.get("error", "")
-                # the bounds' own errors already start with "bounds:"
-                err = err if err.startswith("bounds:") else "bounds: " + err
-                row["warnings"] = " | ".join(filter(None, [row["warnings"], err]))
+                row["warnings"] = " | ".join(filter(None, [row["warnings"],
+                                                           _bounds_warning(bnd.get("error", ""))]))
         row["instruments_per_unit"] = (row["instruments"] / row["units"]
                                        if row["instruments"] is not None and row["units"] else np.nan)
         vrows.append(row)

@@ -106,6 +106,12 @@ def _design(spec: Spec, panel, mask: np.ndarray):
     return y, X, labels, sample
 
 
+def _on_sample(arr: np.ndarray, sample: np.ndarray) -> np.ndarray:
+    """(N,P,K) ``arr`` with every cell outside ``sample`` (N,P) set to zero, so that
+    sums over units and periods are plain batched sums (those cells may be NaN)."""
+    return np.where(sample[:, :, None], arr, 0.0)
+
+
 def _period_dummies(sample: np.ndarray) -> np.ndarray:
     """(N,P,D) dummies for the periods that have observations, without the first."""
     present = np.flatnonzero(sample.any(axis=0))
@@ -144,22 +150,22 @@ def cluster_ols(y: np.ndarray, X: np.ndarray, sample: np.ndarray
     unit effects are not in ``k`` because they are nested in the clusters.
     """
     w = sample.astype(float)
-    Xs = np.where(sample[:, :, None], X, 0.0)
+    Xs = _on_sample(X, sample)
     ys = np.where(sample, y, 0.0)
     n = int(sample.sum())
     G = int(sample.any(axis=1).sum())
     K = X.shape[2]
     if G < 2:
-        raise EstimationError("bounds: fewer than two units in the sample")
+        raise EstimationError("fewer than two units in the sample")
     if n <= K:
-        raise EstimationError(f"bounds: {n} observations for {K} coefficients")
+        raise EstimationError(f"{n} observations for {K} coefficients")
     flat_X = Xs.reshape(-1, K)
     xtx = flat_X.T @ flat_X
     xty = flat_X.T @ ys.reshape(-1)
     try:
         chol = np.linalg.cholesky(xtx)
     except np.linalg.LinAlgError:
-        raise EstimationError("bounds: the regressors are collinear on the sample") from None
+        raise EstimationError("the regressors are collinear on the sample") from None
     beta = _chol_solve(chol, xty)
     resid = (ys - Xs @ beta) * w
     scores = np.einsum("npk,np->nk", Xs, resid)  # s_i = Σ_t x_it e_it, one row per unit
@@ -181,11 +187,10 @@ def _demean(arr: np.ndarray, sample: np.ndarray) -> np.ndarray:
     Group means over the (N,P) layout as masked sums / counts (cells outside the
     sample, which may be NaN, never enter), one batched operation for all units.
     """
-    s = sample[:, :, None]
-    vals = np.where(s, arr, 0.0)
+    vals = _on_sample(arr, sample)
     count = np.maximum(sample.sum(axis=1), 1)[:, None, None]
     means = vals.sum(axis=1, keepdims=True) / count
-    return np.where(s, vals - means, 0.0)
+    return _on_sample(vals - means, sample)
 
 
 def ols_and_within(spec: Spec, panel, mask: np.ndarray):
@@ -202,7 +207,7 @@ def ols_and_within(spec: Spec, panel, mask: np.ndarray):
     y, X, labels, sample = _design(spec, panel, mask)
     K = len(labels)
     if K == 0:
-        raise EstimationError("bounds: the model has no regressors")
+        raise EstimationError("the model has no regressors")
     D = _period_dummies(sample) if spec.time_effects else np.zeros(y.shape + (0,))
     # pooled OLS: terms, constant, period dummies (all but the first period)
     Xo = np.concatenate([X, np.ones(y.shape + (1,)), D], axis=2)
@@ -231,15 +236,13 @@ def _varies_within(X: np.ndarray, Xw: np.ndarray, sample: np.ndarray) -> np.ndar
     its total sum of squares (relative 1e-20, i.e. only rounding left after the
     demeaning), or it is zero everywhere on the sample.
     """
-    s = sample[:, :, None]
-    total = np.where(s, X, 0.0)
-    ss_total = (total ** 2).sum(axis=(0, 1))
+    ss_total = (_on_sample(X, sample) ** 2).sum(axis=(0, 1))
     ss_within = (Xw ** 2).sum(axis=(0, 1))
     return ss_within > 1e-20 * np.maximum(ss_total, 1e-300)
 
 
 def _keep_columns(X: np.ndarray, sample: np.ndarray, n_keep: int) -> np.ndarray:
-    Xs = np.where(sample[:, :, None], X, 0.0).reshape(-1, X.shape[2])
+    Xs = _on_sample(X, sample).reshape(-1, X.shape[2])
     return _independent_tail(Xs.T @ Xs, n_keep)
 
 

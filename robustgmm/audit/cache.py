@@ -6,9 +6,11 @@ variant's canonical estimation settings, the instrument windows of its share gro
 the cache format, and the versions of robustgmm, numpy and scipy: a rerun after an
 upgrade of any of them recomputes (the numerical libraries move results in the last
 digits). Each entry also carries those inputs, so it says what it was computed
-from. The file stores the result with a sha256 of its canonical text; an entry that
-does not parse, whose key or checksum does not match, is treated as missing and
-recomputed (and counted as corrupted). The cache is a convenience for resuming, not
+from. The file stores the variant's payload (the fit's one record,
+``FitResult.to_dict()``, and its bounds, or its ``FitFailure`` record; written by
+:mod:`robustgmm.audit.runner`, documented in ``docs/formats.md``) with a sha256 of
+its canonical text; an entry that does not parse, whose key or checksum does not
+match, is treated as missing and recomputed (and counted as corrupted). The cache is a convenience for resuming, not
 a security boundary: an entry edited with a recomputed checksum is not detected.
 Entries are written atomically; a write that fails (full disk, read-only folder) is
 counted and skipped, the result itself is kept.
@@ -27,7 +29,10 @@ from .. import __version__
 from ..atomic import atomic_write_text
 from .grid import canonical_json, canonical_settings
 
-CACHE_FORMAT = 3  # 3: records hold the long-run effects
+#: 3: records hold the long-run effects; 4: the payload holds ``FitResult.to_dict()``
+#: (the one record of a fit) or a ``FitFailure`` record (docs/formats.md, "The variant
+#: cache")
+CACHE_FORMAT = 4
 
 
 def environment() -> dict:

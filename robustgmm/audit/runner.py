@@ -19,16 +19,20 @@
   (:func:`robustgmm.core.share_key`), estimated together by
   :func:`robustgmm.core.fit_family`, which sums the moment matrices once for the
   group and lets each two-step variant reuse its one-step sibling.
-* **Cache**: one JSON file per variant under ``cache_dir``, named by a key that
-  hashes the data (the panel's content hash), the variant's canonical estimation
-  settings, the package version and its share group's instrument windows. The file stores the result with a sha256 of its
-  canonical text; an entry that does not parse or whose checksum does not match is
+* **Cache**: one JSON file per variant under ``cache_dir``
+  (:class:`~robustgmm.audit.cache.Cache`), named by a key that hashes the data (the
+  panel's content hash), the variant's canonical estimation settings, the package
+  version and its share group's instrument windows. It stores the variant's payload:
+  the one record of its fit (:meth:`~robustgmm.core.results.FitResult.to_dict`) and
+  its bounds, or its :class:`~robustgmm.core.results.FitFailure`, with a sha256 of
+  its canonical text; an entry that does not parse or whose checksum does not match is
   treated as missing and recomputed (and counted as corrupted). Entries are written
   atomically by the parent process as soon as each result arrives, so an interrupted
   audit (Ctrl-C, a killed worker) resumes where it stopped (a group with a missing
-  member runs whole again) and an unchanged rerun estimates nothing. Variants that fail with :class:`EstimationError` (a property of
-  the model and data) are cached as failed; unexpected errors are not cached, so a
-  rerun tries them again.
+  member runs whole again) and an unchanged rerun estimates nothing. Fresh and cached
+  results alike are read back through the record, so they are identical. Variants
+  that fail with :class:`EstimationError` (a property of the model and data) are
+  cached as failed; unexpected errors are not cached, so a rerun tries them again.
 * **Failure policy**: a variant that cannot be estimated (:class:`EstimationError`)
   is marked ``failed`` with a one-line reason and the other variants go on; any
   other exception is a bug and stops the run with its traceback, unless
@@ -50,13 +54,12 @@
 from __future__ import annotations
 
 import hashlib
-import math
 import shutil
 import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Mapping, Sequence
+from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence
 
 import joblib
 import numpy as np
@@ -69,73 +72,31 @@ from .grid import PLANNED, Variant, sample_key
 from .parallel import (BLAS_THREADS, LOST_REASON, WORKER_DEATHS,  # noqa: F401  (re-exported)
                        WORKER_STARTUP_SECONDS, _worker_died)
 
+if TYPE_CHECKING:  # the core is imported when a variant is estimated, not before
+    from ..core.results import FitFailure, FitResult
+
 OK, FAILED = "ok", "failed"
+#: ``error_type`` of a variant whose worker process died twice
+LOST_ERROR_TYPE = "LostWorker"
 
 
 # ---------------------------------------------------------------------------
-# results of one variant as plain JSON-able records
+# the payload of one variant: what a task returns and the cache stores
 # ---------------------------------------------------------------------------
-def _num(x) -> float | None:
-    """A float for a record (NaN stays NaN, written as JSON ``NaN``); None stays None."""
-    if x is None:
-        return None
-    return float(x)
+# An estimated variant: {"status": "ok", "fit": FitResult.to_dict(), "bounds":
+# Bounds.to_dict() or {"error": reason}, "seconds": s}; a failed one: {"status":
+# "failed", "failure": FitFailure.to_dict(), "seconds": s}. A task adds "cacheable"
+# (False for what a rerun should try again), which the parent removes before storing.
 
-
-def _test(t) -> dict | None:
-    if t is None:
-        return None
-    out = {"statistic": _num(t.statistic), "p_value": _num(t.p_value),
-           "df": None if getattr(t, "df", None) is None else int(t.df)}
-    if getattr(t, "reason", None):
-        out["reason"] = t.reason  # a test that cannot be computed validly, and why
-    return out
-
-
-def fit_record(result, spec) -> dict:
-    """The parts of a :class:`~robustgmm.core.FitResult` an audit keeps, as plain values.
-
-    Adds the sum of the autoregressive coefficients with its standard error
-    ``sqrt(1' V 1)`` from the variant's covariance when the outcome has several lags.
-    The long-run effects (``NAME[long-run]``) follow the coefficients in ``terms``
-    (so estimates.csv has them for every variant); one that is not defined has NaN
-    values, and its reason is among the fit's warnings.
-    """
-    terms = [{"term": t.label, "estimate": _num(t.estimate), "std_error": _num(t.std_error),
-              "z": _num(t.z), "p_value": _num(t.p_value)}
-             for t in tuple(result.terms) + tuple(getattr(result, "long_run", ()))]
-    counts = result.counts
-    record = {
-        "terms": terms,
-        "std_error_kind": result.std_error_kind,
-        "tests": {name: _test(result.tests.get(name)) for name in ("ar1", "ar2", "sargan", "hansen")},
-        "difference_hansen": {g: _test(t) for g, t in result.difference_hansen.items()},
-        "counts": {k: int(getattr(counts, k)) for k in
-                   ("observations", "units", "instruments", "periods", "parameters")
-                   if hasattr(counts, k)},
-        "warnings": list(result.warnings),
-        # instrument strength (robustgmm.core.strength): kind → block or term → test
-        "strength": {kind: {name: _test(t) for name, t in tests.items()}
-                     for kind, tests in getattr(result, "strength", {}).items()},
-    }
-    ar = list(spec.ar_terms())
-    labels = [t.label for t in result.terms]
-    if len(ar) > 1 and all(a in labels for a in ar):
-        idx = [labels.index(a) for a in ar]
-        vcov = np.asarray(result.vcov, dtype=float)
-        est = float(sum(result.terms[i].estimate for i in idx))
-        var = float(vcov[np.ix_(idx, idx)].sum())
-        record["ar_sum"] = {"estimate": est, "std_error": math.sqrt(var) if var >= 0 else math.nan}
-    return record
-
-
-def _failure(exc: BaseException) -> dict:
+def _failure(exc: BaseException, variant: str = "") -> dict:
+    """The payload of a variant that failed with ``exc``."""
+    from ..core.results import FitFailure
     if isinstance(exc, EstimationError):  # a property of the model and data: cacheable
-        return {"status": FAILED, "reason": one_line(exc), "cacheable": True,
-                "error_type": type(exc).__name__}
+        failure = FitFailure.from_exception(exc, variant)
+        return {"status": FAILED, "failure": failure.to_dict(), "cacheable": True}
     # a bug or a numerical breakdown: isolate it, and do not cache it
-    return {"status": FAILED, "reason": f"{type(exc).__name__}: {one_line(exc)}",
-            "cacheable": False, "error_type": type(exc).__name__}
+    failure = FitFailure.from_exception(exc, variant, name_type=True)
+    return {"status": FAILED, "failure": failure.to_dict(), "cacheable": False}
 
 
 #: Failure policies (``on_error``) for an exception that is not an
@@ -151,90 +112,106 @@ def check_on_error(on_error: str) -> str:
     return on_error
 
 
-def _unexpected(exc: BaseException, on_error: str) -> dict:
+def _unexpected(exc: BaseException, on_error: str, variant: str) -> dict:
     """An exception that is not an EstimationError: raised again (its traceback
-    kept) under ``on_error="raise"``, a non-cacheable failure record otherwise."""
+    kept) under ``on_error="raise"``, a non-cacheable failure payload otherwise."""
     if on_error == "raise" and not isinstance(exc, EstimationError):
         raise exc
-    return _failure(exc)
+    return _failure(exc, variant)
 
 
-def estimate_group(specs, panel, fit: Callable | None = None,
-                   sample: Callable | None = None, on_error: str = "raise",
-                   bounds: bool = True) -> list[dict]:
-    """Estimate a share group of variants and their OLS/within bounds.
+class _BoundsOnce:
+    """The OLS/within bounds of a share group's members, computed once per distinct
+    estimation sample and model (members normally share one)."""
 
-    A variant that cannot be estimated (:class:`EstimationError` and its subclasses,
-    e.g. :class:`~robustgmm.errors.UnderidentifiedError`) gets a failure record; any
-    other exception is a bug and is raised, unless ``on_error="record"`` (see
-    :data:`ON_ERROR`). Each member gets ``{"status", "reason", "fit",
-    "bounds", "seconds", "cacheable"}``. By default the group goes to
-    :func:`robustgmm.core.fit_family`, which sums the moments once for the group and
-    reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
-    (tests) replaces it by one call per member; ``sample`` replaces
-    :func:`robustgmm.core.estimation_sample`. Bounds are computed once per distinct
-    estimation sample and model (members of a share group normally have one);
-    ``bounds=False`` leaves them out (``bounds`` None: the Monte Carlo needs only the fits).
-    """
-    from . import bounds as bounds_mod
-    from .. import core
+    def __init__(self, panel, sample: Callable, on_error: str):
+        self.panel, self.sample, self.on_error = panel, sample, on_error
+        self.masks: dict = {}
+        self.memo: dict = {}
 
-    sample = sample or core.estimation_sample
-    start = time.perf_counter()
-    degenerate = getattr(panel, "degenerate", ())
-    if degenerate:  # a column with no information in this sample: not estimable
-        reason = "; ".join(degenerate)
-        return [{"status": FAILED, "reason": reason, "cacheable": True, "fit": None,
-                 "bounds": None, "seconds": 0.0, "error_type": "EstimationError"}
-                for _ in specs]
-    if fit is None:
-        results = core.fit_family(list(specs), panel)
-    else:
-        results = []
-        for spec in specs:
-            try:
-                results.append(fit(spec, panel))
-            except Exception as exc:  # noqa: BLE001 - judged below by the policy
-                results.append(exc)
-    memo: dict = {}
-    masks: dict = {}
-    out = []
-    for spec, res in zip(specs, results):
-        if isinstance(res, BaseException):
-            out.append({"fit": None, "bounds": None, **_unexpected(res, on_error)})
-            continue
-        entry = {"status": OK, "reason": "", "fit": None, "bounds": None, "cacheable": True}
-        try:
-            entry["fit"] = fit_record(res, spec)
-        except Exception as exc:  # noqa: BLE001
-            out.append({"fit": None, "bounds": None, **_unexpected(exc, on_error)})
-            continue
-        if not bounds:
-            out.append(entry)
-            continue
+    def __call__(self, spec) -> dict:
+        """``Bounds.to_dict()``, or ``{"error": reason}`` when they cannot be computed
+        (the reason without the "bounds:" prefix the tables add)."""
+        from . import bounds as bounds_mod
         try:
             # members of a share group differ only in steps, errors and last_lag,
             # none of which moves the estimation sample: build it once
             skey = (spec.outcome, spec.equations, spec.transform, spec.regressor_terms(),
                     spec.extra_instruments)
-            if skey not in masks:
-                mask = sample(spec, panel)
-                masks[skey] = (mask, hashlib.sha256(np.packbits(mask).tobytes()).hexdigest())
-            mask, digest = masks[skey]
+            if skey not in self.masks:
+                mask = self.sample(spec, self.panel)
+                self.masks[skey] = (mask, hashlib.sha256(np.packbits(mask).tobytes()).hexdigest())
+            mask, digest = self.masks[skey]
             key = (digest, mask.shape, spec.time_effects, spec.regressor_terms())
-            if key not in memo:
-                memo[key] = bounds_mod.ar_bounds(spec, panel, mask).to_dict()
-            entry["bounds"] = memo[key]
+            if key not in self.memo:
+                self.memo[key] = bounds_mod.ar_bounds(spec, self.panel, mask).to_dict()
+            return self.memo[key]
         except EstimationError as exc:
-            entry["bounds"] = {"error": one_line(exc)}
+            return {"error": one_line(exc)}
         except Exception as exc:  # noqa: BLE001
-            if on_error == "raise":
+            if self.on_error == "raise":
                 raise
-            entry["bounds"] = {"error": f"{type(exc).__name__}: {one_line(exc)}"}
-        out.append(entry)
+            return {"error": f"{type(exc).__name__}: {one_line(exc)}"}
+
+
+def _fits(specs, panel, fit: Callable | None) -> list:
+    """The group's results (an exception in place of a member that raised): one
+    :func:`robustgmm.core.fit_family` call, or ``fit`` member by member (tests)."""
+    from .. import core
+    if fit is None:
+        return core.fit_family(list(specs), panel)
+    results = []
+    for spec in specs:
+        try:
+            results.append(fit(spec, panel))
+        except Exception as exc:  # noqa: BLE001 - judged by the policy
+            results.append(exc)
+    return results
+
+
+def estimate_group(specs, panel, fit: Callable | None = None,
+                   sample: Callable | None = None, on_error: str = "raise",
+                   ids: Sequence[str] | None = None, bounds: bool = True) -> list[dict]:
+    """Estimate a share group of variants and their OLS/within bounds; one payload
+    per member (the comment above :func:`_failure`).
+
+    A variant that cannot be estimated (:class:`EstimationError` and its subclasses,
+    e.g. :class:`~robustgmm.errors.UnderidentifiedError`) gets a failure payload; any
+    other exception is a bug and is raised, unless ``on_error="record"`` (see
+    :data:`ON_ERROR`). By default the group goes to
+    :func:`robustgmm.core.fit_family`, which sums the moments once for the group and
+    reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
+    (tests) replaces it by one call per member; ``sample`` replaces
+    :func:`robustgmm.core.estimation_sample`. ``ids``: the variant ids, named in the
+    failure records. ``bounds=False`` leaves the bounds out (``bounds`` None: the
+    Monte Carlo needs only the fits).
+    """
+    from .. import core
+
+    ids = list(ids) if ids is not None else [""] * len(specs)
+    start = time.perf_counter()
+    degenerate = getattr(panel, "degenerate", ())
+    if degenerate:  # a column with no information in this sample: not estimable
+        exc = EstimationError("; ".join(degenerate))
+        out = [_failure(exc, vid) for vid in ids]
+    else:
+        of = (_BoundsOnce(panel, sample or core.estimation_sample, on_error) if bounds
+              else (lambda spec: None))
+        out = []
+        for vid, spec, res in zip(ids, specs, _fits(specs, panel, fit)):
+            if isinstance(res, BaseException):
+                out.append(_unexpected(res, on_error, vid))
+            else:
+                try:
+                    record = res.to_dict()
+                except Exception as exc:  # noqa: BLE001
+                    out.append(_unexpected(exc, on_error, vid))
+                    continue
+                out.append({"status": OK, "fit": record, "bounds": of(spec),
+                            "cacheable": True})
     per_variant = (time.perf_counter() - start) / max(len(out), 1)
     for entry in out:
-        entry["seconds"] = per_variant
+        entry["seconds"] = 0.0 if degenerate else per_variant
     return out
 
 
@@ -254,17 +231,26 @@ def one_line(exc: BaseException) -> str:
 # ---------------------------------------------------------------------------
 @dataclass(frozen=True)
 class Outcome:
-    """What happened to one planned variant."""
+    """What happened to one planned variant: its fit (the one record,
+    :class:`~robustgmm.core.results.FitResult`) and bounds, or its failure."""
 
     variant: str
     status: str
-    reason: str
-    fit: dict | None
+    fit: FitResult | None
     bounds: dict | None
     seconds: float
     cached: bool
-    #: the exception type of a failure (``UnderidentifiedError``, ...), "" otherwise
-    error_type: str = ""
+    failure: FitFailure | None = None
+
+    @property
+    def reason(self) -> str:
+        """Why the variant failed ("" when estimated)."""
+        return "" if self.failure is None else self.failure.reason
+
+    @property
+    def error_type(self) -> str:
+        """The exception type of a failure (``UnderidentifiedError``, ...), "" otherwise."""
+        return "" if self.failure is None else self.failure.error_type
 
 
 @dataclass(frozen=True)
@@ -445,8 +431,9 @@ class _Outcomes:
             if v.id in self.by_id:
                 continue
             self.deaths["lost"] += 1
-            self.by_id[v.id] = Outcome(variant=v.id, status=FAILED, reason=LOST_REASON,
-                                       fit=None, bounds=None, seconds=0.0, cached=False)
+            self.by_id[v.id] = Outcome(variant=v.id, status=FAILED, fit=None, bounds=None,
+                                       seconds=0.0, cached=False,
+                                       failure=_lost(v.id))
             self._advance()
 
     def _advance(self) -> None:
@@ -548,11 +535,21 @@ def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = 
         except OSError:  # e.g. a remote worker without the parent's folder
             pass
     parallel.in_worker(parent_pid)
-    return list(zip(ids, estimate_group(specs, panel, fit, sample, on_error)))
+    return list(zip(ids, estimate_group(specs, panel, fit, sample, on_error, ids)))
+
+
+def _lost(vid: str) -> "FitFailure":
+    from ..core.results import FitFailure
+    return FitFailure(vid, LOST_ERROR_TYPE, LOST_REASON)
 
 
 def _outcome(vid: str, payload: dict, cached: bool) -> Outcome:
-    return Outcome(variant=vid, status=payload["status"], reason=payload["reason"],
-                   fit=payload.get("fit"), bounds=payload.get("bounds"),
+    """The outcome of a payload; fresh and cached results both come through the
+    record (``FitResult.from_dict``), so they are identical."""
+    from ..core.results import FitFailure, FitResult
+    ok = payload["status"] == OK
+    return Outcome(variant=vid, status=payload["status"],
+                   fit=FitResult.from_dict(payload["fit"]) if ok else None,
+                   bounds=payload.get("bounds") if ok else None,
                    seconds=float(payload.get("seconds", 0.0)), cached=cached,
-                   error_type=str(payload.get("error_type", "")))
+                   failure=None if ok else FitFailure.from_dict(payload["failure"]))

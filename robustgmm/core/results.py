@@ -5,7 +5,8 @@
 cache stores; :meth:`FitResult.from_dict` reads it back. The round trip is exact for
 every finite number and for NaN (JSON has no NaN: it is written ``null`` and read
 back as NaN; an infinity, which no fit produces, would come back as NaN too).
-:class:`FitFailure` is the record of a variant that could not be estimated.
+:class:`FitFailure` is the record of a variant that could not be estimated, with the
+same conversions (``to_dict``/``from_dict``, ``to_frame``).
 """
 from __future__ import annotations
 
@@ -253,21 +254,32 @@ class FitResult:
 
 @dataclass(frozen=True)
 class FitFailure:
-    """The record of a variant that could not be estimated: ``error_type`` is the
-    exception's class name (``EstimationError``, ``UnderidentifiedError``, ...),
-    ``reason`` its one-line message."""
+    """The record of a variant that could not be estimated: ``variant`` its id (empty
+    outside an audit), ``error_type`` the exception's class name
+    (``EstimationError``, ``UnderidentifiedError``, ...), ``reason`` one line."""
 
+    variant: str
     error_type: str
     reason: str
 
     @classmethod
-    def from_exception(cls, exc: BaseException) -> "FitFailure":
+    def from_exception(cls, exc: BaseException, variant: str = "", *,
+                       name_type: bool = False) -> "FitFailure":
+        """The failure of ``exc``; ``name_type`` starts the reason with the exception's
+        class name (for an exception that is not an estimation failure)."""
         text = " ".join(str(exc).split()) or type(exc).__name__
-        return cls(type(exc).__name__, text)
+        if name_type:
+            text = f"{type(exc).__name__}: {text}"
+        return cls(variant, type(exc).__name__, text)
 
     def to_dict(self) -> dict:
-        return {"error_type": self.error_type, "reason": self.reason}
+        return {"variant": self.variant, "error_type": self.error_type, "reason": self.reason}
 
     @classmethod
     def from_dict(cls, d: Mapping) -> "FitFailure":
-        return cls(d["error_type"], d["reason"])
+        return cls(d["variant"], d["error_type"], d["reason"])
+
+    def to_frame(self) -> pd.DataFrame:
+        """The failure as a one-row table indexed by ``variant``."""
+        return pd.DataFrame([self.to_dict()], columns=["variant", "error_type", "reason"]
+                            ).set_index("variant")

@@ -171,7 +171,7 @@ def simulated_frame(world: World, template: pd.DataFrame, seed: int, rep: int,
 # one replication (runs in a worker)
 # ---------------------------------------------------------------------------
 def _p(test) -> float | None:
-    return None if not test or test.get("p_value") is None else float(test["p_value"])
+    return None if test is None else float(test.p_value)
 
 
 def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: int,
@@ -182,6 +182,7 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
     from .. import core, data
     from ..audit import runner
     from ..audit.grid import sample_key
+    from ..core.results import FitResult
     spec0 = variants[0].spec
     frame = simulated_frame(world, template, seed, rep, (spec0.outcome,) + world.regressors)
     panels: dict[str, Any] = {}
@@ -204,15 +205,15 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
         for v, entry in zip(members, runner.estimate_group([m.spec for m in members], panel,
                                                                 bounds=False)):
             if entry["status"] != runner.OK:
-                out[v.id] = {"status": entry["status"], "reason": entry["reason"]}
+                out[v.id] = {"status": entry["status"], "reason": entry["failure"]["reason"]}
                 continue
-            fit = entry["fit"]
-            terms = {t["term"]: [t["estimate"], t["std_error"]] for t in fit["terms"]
-                     if t["term"] in focus}
+            fit = FitResult.from_dict(entry["fit"])  # the fit's one record, read back
+            terms = {t.label: [t.estimate, t.std_error] for t in fit.terms + fit.long_run
+                     if t.label in focus}
             out[v.id] = {"status": runner.OK, "terms": terms,
-                         "hansen": _p(fit["tests"].get("hansen")),
-                         "ar2": _p(fit["tests"].get("ar2")),
-                         "dh_level": _p(fit["difference_hansen"].get(level_group))}
+                         "hansen": _p(fit.tests.get("hansen")),
+                         "ar2": _p(fit.tests.get("ar2")),
+                         "dh_level": _p(fit.difference_hansen.get(level_group))}
     return {"rep": int(rep), "variants": {v.id: out[v.id] for v in variants}}
 
 

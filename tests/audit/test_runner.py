@@ -4,9 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import math
 
-import numpy as np
 import pytest
 
 from robustgmm import core
@@ -57,7 +55,7 @@ def test_cache_rerun_computes_nothing_and_detects_corruption(planned, tmp_path, 
         by_group.setdefault(core.share_key(v.spec), []).append(v.id)
     g1, g2 = list(by_group.values())[:2]
     entry = json.loads(entries[g1[0]].read_text())
-    entry["payload"]["fit"]["terms"][0]["estimate"] += 1e-9
+    next(iter(entry["payload"]["fit"]["terms"].values()))["estimate"] += 1e-9
     entries[g1[0]].write_text(json.dumps(entry))
     entries[g2[1]].write_text(entries[g2[1]].read_text()[:50])
     counter = _count(monkeypatch)
@@ -120,16 +118,17 @@ def test_shared_work_gives_the_results_of_separate_fits(tmp_path):
             assert v.id not in shared and v.id not in alone
             continue
         a, b = shared[v.id].fit, alone[v.id].fit
-        for ta, tb in zip(a["terms"], b["terms"]):
-            assert ta["estimate"] == pytest.approx(tb["estimate"], rel=1e-9, abs=1e-12)
-            assert ta["std_error"] == pytest.approx(tb["std_error"], rel=1e-9, abs=1e-12)
-        assert a["tests"]["hansen"]["p_value"] == pytest.approx(
-            b["tests"]["hansen"]["p_value"], rel=1e-8, abs=1e-12)
+        assert a.labels == b.labels
+        for ta, tb in zip(a.terms, b.terms):
+            assert ta.estimate == pytest.approx(tb.estimate, rel=1e-9, abs=1e-12)
+            assert ta.std_error == pytest.approx(tb.std_error, rel=1e-9, abs=1e-12)
+        assert a.tests["hansen"].p_value == pytest.approx(
+            b.tests["hansen"].p_value, rel=1e-8, abs=1e-12)
         assert shared[v.id].bounds == alone[v.id].bounds
     same_window = [v for v in variants if v.spec.last_lag is None and v.status != grid.SKIPPED]
     only, _ = runner.run_variants(same_window, panels, jobs=1)
     for v in same_window:  # a group of one window: bit-identical to separate fits
-        assert canonical(only[v.id].fit) == canonical(alone[v.id].fit)
+        assert canonical(only[v.id].fit.to_dict()) == canonical(alone[v.id].fit.to_dict())
 
 
 def test_a_failing_member_of_a_share_group_is_isolated(planned, monkeypatch):
@@ -253,17 +252,39 @@ def test_skipped_variants_are_not_run(planned):
     assert fit.calls == 1 and list(out) == [variants[0].id] and stats.variants == 1
 
 
-def test_record_of_several_ar_lags_carries_their_sum(tmp_path):
+def test_payload_is_the_fit_record_and_the_sum_of_the_lags_is_checked(tmp_path):
+    """A variant's payload (what the cache stores) is the fit's one record,
+    FitResult.to_dict(); with two outcome lags the bounds cover each lag and their
+    sum, and bounds.csv compares the sum with the sum of the GMM estimates."""
+    from robustgmm.audit import _tables
+    from robustgmm.core.results import FitResult
+
     spec = make_spec(tmp_path, model={"outcome_lags": [1, 2]})
     panel = grid.load_panels(spec)[grid.sample_key(spec.sample)]
     result = core.fit(spec, panel)
-    record = runner.fit_record(result, spec)
-    i, j = result.labels.index("y[t-1]"), result.labels.index("y[t-2]")
-    V = np.asarray(result.vcov)
-    assert record["ar_sum"]["estimate"] == pytest.approx(result.params[i] + result.params[j])
-    assert record["ar_sum"]["std_error"] == pytest.approx(
-        math.sqrt(V[i, i] + V[j, j] + 2 * V[i, j]))
     out = runner.estimate_variant(spec, panel)
     assert out["status"] == runner.OK
+    assert canonical(out["fit"]) == canonical(result.to_dict())
+    assert FitResult.from_dict(json.loads(json.dumps(out["fit"]))).labels == result.labels
     assert [b["term"] for b in out["bounds"]["terms"]] == ["y[t-1]", "y[t-2]",
                                                           "sum(y[t-1], y[t-2])"]
+    variants = grid.plan(spec, {grid.sample_key(spec.sample): panel})
+    outcomes, _ = runner.run_variants(variants, {grid.sample_key(spec.sample): panel}, jobs=1)
+    _, _, bounds = _tables(spec, variants, outcomes)
+    row = bounds[(bounds["term"] == "sum(y[t-1], y[t-2])") & bounds["is_base"]].iloc[0]
+    i, j = result.labels.index("y[t-1]"), result.labels.index("y[t-2]")
+    assert row["gmm"] == pytest.approx(result.params[i] + result.params[j], rel=1e-12)
+
+
+def test_failures_name_the_variant_and_convert_like_a_fit(planned):
+    spec, panels, variants = planned
+    fit = CountingFit(fail=[(lambda s: s.transform == "fod",
+                             EstimationError("the weight matrix\nis singular"))])
+    out, _ = runner.run_variants(variants, panels, jobs=1, fit=fit)
+    failed = [o for o in out.values() if o.status == runner.FAILED]
+    assert len(failed) == 4
+    for o in failed:
+        assert o.fit is None and o.failure.variant == o.variant
+        assert o.reason == "the weight matrix is singular" and o.error_type == "EstimationError"
+        frame = o.failure.to_frame()
+        assert list(frame.index) == [o.variant] and frame.loc[o.variant, "reason"] == o.reason

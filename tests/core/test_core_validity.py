@@ -79,10 +79,11 @@ def test_a_term_no_instrument_moves_raises_naming_it():
 
     with pytest.raises(RankConditionError) as info:
         fit(spec, panel)
-    record = runner._failure(info.value)
-    assert record["error_type"] == "RankConditionError"
+    record = runner._failure(info.value, "x")["failure"]
+    assert record["error_type"] == "RankConditionError" and record["variant"] == "x"
     assert not grid.is_underidentified(record["error_type"])
-    assert grid.is_underidentified(runner._failure(UnderidentifiedError("fewer"))["error_type"])
+    assert grid.is_underidentified(
+        runner._failure(UnderidentifiedError("fewer"))["failure"]["error_type"])
     variant = grid.Variant(id="x", order=1, spec=spec, settings=())
     planned = grid._with_counts(variant, panel)
     assert planned.status == grid.PLANNED and "x[t-1] is not identified" in planned.reason
