@@ -149,6 +149,13 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
             changes[field] = value
         return apply
 
+    def per_name(key, name):
+        # settings held per variable (lags, instrument windows, roles) are collected
+        # under one key and applied together by _apply
+        def apply(changes, value):
+            changes.setdefault(key, {})[name] = value
+        return apply
+
     names = [r.name for r in spec.regressors]
 
     def known(where, name):
@@ -161,9 +168,7 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
     for name, lists in vary.lags:
         known("[audit.vary.lags]", name)
 
-        def apply_lags(changes, value, name=name):
-            changes.setdefault("_lags", {})[name] = value
-        dims.append((f"lags:{name}", list(lists), apply_lags))
+        dims.append((f"lags:{name}", list(lists), per_name("_lags", name)))
     if vary.drop:
         for dropped in vary.drop:
             for name in dropped:
@@ -180,15 +185,11 @@ def _dimensions(spec: Spec) -> list[tuple[str, list[Any], Callable[[dict, Any], 
         if name != spec.outcome and name not in [g.name for g in spec.gmm_instruments]:
             known("[audit.vary.instrument_lags]", name)
 
-        def apply_window(changes, value, name=name):
-            changes.setdefault("_windows", {})[name] = value
-        dims.append((f"instrument_lags:{name}", list(windows), apply_window))
+        dims.append((f"instrument_lags:{name}", list(windows), per_name("_windows", name)))
     for name, roles in vary.roles:
         known("[audit.vary.roles]", name)
 
-        def apply_role(changes, value, name=name):
-            changes.setdefault("_roles", {})[name] = value
-        dims.append((f"role:{name}", list(roles), apply_role))
+        dims.append((f"role:{name}", list(roles), per_name("_roles", name)))
     if vary.samples:
         samples = [spec.sample] + [s for s in vary.samples]
 

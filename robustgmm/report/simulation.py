@@ -161,23 +161,30 @@ def unreliable_count(sim: SimulationFolder) -> tuple[int, int]:
 # ---------------------------------------------------------------------------
 # figures
 # ---------------------------------------------------------------------------
+def _points_with_base(ax, rows, y, yerr, label):
+    """One point per variant in ``rows``' order with its bar, the base model ringed,
+    the variant ids as ticks (shared by the bias and coverage figures)."""
+    from .figures.common import BLUE, GREY, VERMILLION, sizes, variant_ticks
+    x = np.arange(len(rows))
+    area, width = sizes(len(rows))
+    ax.errorbar(x, y, yerr=yerr, fmt="none", ecolor=GREY, elinewidth=width)
+    ax.scatter(x, y, s=area, color=BLUE, zorder=3, label=label)
+    base = rows["is_base"].to_numpy(bool)
+    if base.any():
+        ax.scatter(x[base], y[base], s=area * 4, facecolors="none", edgecolors=VERMILLION,
+                   linewidths=1.5, zorder=4, label="base model")
+    variant_ticks(ax, rows["variant"].astype(str).tolist())
+
+
 def plot_bias(ax, sim: SimulationFolder, term: str):
     """Bias ± one simulation SD per variant, sorted by bias; base ringed; the truth
     is the zero line."""
-    from .figures.common import BLACK, BLUE, GREY, VERMILLION, sizes, style, variant_ticks
+    from .figures.common import BLACK, style
     rows = sim.summary[(sim.summary["term"] == term) & sim.summary["bias"].notna()]
     rows = rows.sort_values(["bias", "order"], kind="mergesort")
-    x = np.arange(len(rows))
     bias, sd = rows["bias"].to_numpy(float), rows["sd"].to_numpy(float)
-    area, width = sizes(len(rows))
     ax.axhline(0.0, color=BLACK, lw=0.8, ls="--", label="truth (zero bias)")
-    ax.errorbar(x, bias, yerr=np.nan_to_num(sd), fmt="none", ecolor=GREY, elinewidth=width)
-    ax.scatter(x, bias, s=area, color=BLUE, zorder=3, label="mean bias ± 1 simulation SD")
-    base = rows["is_base"].to_numpy(bool)
-    if base.any():
-        ax.scatter(x[base], bias[base], s=area * 4, facecolors="none", edgecolors=VERMILLION,
-                   linewidths=1.5, zorder=4, label="base model")
-    variant_ticks(ax, rows["variant"].astype(str).tolist())
+    _points_with_base(ax, rows, bias, np.nan_to_num(sd), "mean bias ± 1 simulation SD")
     ax.set_ylabel(f"bias of {term}")
     ax.legend(fontsize=7, loc="best", frameon=False)
     style(ax)
@@ -187,24 +194,16 @@ def plot_bias(ax, sim: SimulationFolder, term: str):
 def plot_coverage(ax, sim: SimulationFolder, term: str):
     """Coverage of the 1 − alpha intervals per variant (sorted), with the nominal line
     and the ``min_coverage`` line; two binomial Monte Carlo SEs as bars."""
-    from .figures.common import BLACK, BLUE, GREY, VERMILLION, sizes, style, variant_ticks
+    from .figures.common import BLACK, VERMILLION, style
     alpha = float(sim.calibration.get("alpha", 0.05))
     low = float(sim.thresholds.get("min_coverage", 0.85))
     rows = sim.summary[(sim.summary["term"] == term) & sim.summary["coverage"].notna()]
     rows = rows.sort_values(["coverage", "order"], kind="mergesort")
-    x = np.arange(len(rows))
     cov = rows["coverage"].to_numpy(float)
     err = 2 * np.nan_to_num(rows["coverage_mc_se"].to_numpy(float))
-    area, width = sizes(len(rows))
     ax.axhline(1 - alpha, color=BLACK, lw=0.8, ls="--", label=f"nominal {1 - alpha:.0%}")
     ax.axhline(low, color=VERMILLION, lw=0.8, ls=":", label=f"min_coverage {low:.0%}")
-    ax.errorbar(x, cov, yerr=err, fmt="none", ecolor=GREY, elinewidth=width)
-    ax.scatter(x, cov, s=area, color=BLUE, zorder=3, label="coverage ± 2 Monte Carlo SE")
-    base = rows["is_base"].to_numpy(bool)
-    if base.any():
-        ax.scatter(x[base], cov[base], s=area * 4, facecolors="none", edgecolors=VERMILLION,
-                   linewidths=1.5, zorder=4, label="base model")
-    variant_ticks(ax, rows["variant"].astype(str).tolist())
+    _points_with_base(ax, rows, cov, err, "coverage ± 2 Monte Carlo SE")
     ax.set_ylim(min(0.0, float(np.nanmin(cov)) if len(cov) else 0.0) - 0.02, 1.02)
     ax.set_ylabel(f"coverage for {term}")
     ax.legend(fontsize=7, loc="lower right", frameon=False)
