@@ -126,6 +126,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.set_defaults(plan=False)
     p.add_argument("--force", action="store_true",
                    help="write into an existing non-empty folder that robustgmm did not create")
+    add_scheduler_option(p)
 
     p = sub.add_parser("report", help="rebuild the report of an audit output folder")
     p.add_argument("dir", metavar="DIR", help="an audit output folder")
@@ -144,8 +145,8 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def add_scheduler_option(p) -> None:
-    """``--scheduler`` of the commands that run many estimations (audit; the hook
-    for other such commands: add this option and open :func:`cluster_backend`)."""
+    """``--scheduler`` of the commands that run many estimations (audit, simulate;
+    another such command adds this option and opens :func:`cluster_backend`)."""
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
                    help="run the estimations on the dask.distributed cluster of this "
                         "scheduler (tcp://HOST:PORT; default: the DASK_SCHEDULER_ADDRESS "
@@ -707,11 +708,14 @@ def cmd_simulate(args) -> int:
     check_reps(args.reps, args.seed)
     check_grid_size(spec, args)
     check_audit_inputs(Path(args.out), spec, Path(args.model))
-    out = check_output_folder(args.out, args.force)
-    with FolderLock(out, "simulate"):
+    with contextlib.ExitStack() as stack:
+        # the cluster first: an unreachable scheduler leaves no output folder behind
+        backend = stack.enter_context(cluster_backend(args, Path(args.model)))
+        out = check_output_folder(args.out, args.force)
+        stack.enter_context(FolderLock(out, "simulate"))
         sim = simulate(spec, reps=args.reps, seed=args.seed, jobs=args.jobs,
                        cache_dir=None if args.no_cache else out / ".cache",
-                       progress=sys.stderr.isatty(), initial=args.initial)
+                       progress=sys.stderr.isatty(), initial=args.initial, backend=backend)
         try:
             write_simulation(sim, out, model_file=Path(args.model))
         except OSError as exc:

@@ -109,6 +109,22 @@ def test_unreachable_scheduler_is_one_line_exit_2(tmp_path, capsys, monkeypatch)
     assert not out.exists()  # nothing written before the cluster answered
 
 
+def test_simulate_with_unreachable_scheduler_is_one_line_exit_2(tmp_path, capsys,
+                                                                 monkeypatch):
+    pytest.importorskip("distributed")
+    monkeypatch.setattr(cluster, "CONNECT_SECONDS", 1.0)
+    model = write_model(tmp_path / "p", VARY, panel_kw=PANEL)
+    address = f"tcp://127.0.0.1:{_refused_port()}"
+    out = tmp_path / "out"
+    code = cli.main(["simulate", str(model), "--out", str(out), "--reps", "10",
+                     "--scheduler", address])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and err[0].startswith(f"robustgmm: error: --scheduler {address}: "
+                                               "cannot reach the dask scheduler")
+    assert not out.exists()  # nothing written before the cluster answered
+
+
 def test_model_file_scheduler_is_used_and_named(tmp_path, capsys, monkeypatch):
     pytest.importorskip("distributed")
     monkeypatch.setattr(cluster, "CONNECT_SECONDS", 1.0)
@@ -262,6 +278,20 @@ def test_cluster_run_is_byte_identical_to_a_local_run(dask_cluster, project, loc
     outcomes, stats = runner.run_variants(grid.plan(spec, panels, counts=False), panels,
                                           jobs=1, cache_dir=out / ".cache")
     assert stats.computed == 0 and stats.cached == 16
+
+
+@pytest.mark.slow  # a scheduler, two workers and two command-line simulations
+def test_cluster_simulation_is_byte_identical_to_a_local_one(dask_cluster, project, harness,
+                                                             tmp_path):
+    local, remote = tmp_path / "local", tmp_path / "remote"
+    assert cli.main(["simulate", str(project), "--out", str(local), "--reps", "10",
+                     "--jobs", "1"]) == 0
+    proc = run_cli("simulate", project, "--out", remote, "--reps", "10",
+                   "--scheduler", dask_cluster.address, env=_cluster_env(harness))
+    assert proc.returncode == 0, proc.stderr
+    manifest = json.loads((remote / "manifest.json").read_text())
+    assert manifest["run"]["backend"] == "dask"
+    assert output_files(remote) == output_files(local)
 
 
 @pytest.mark.slow  # kills a worker while it estimates; its group runs again elsewhere
