@@ -331,16 +331,7 @@ class Reader:
                      "must be a list of [[model.regressors]] tables with name, lags and role",
                      value, path)
             return MISSING
-        out = []
-        for i, table in enumerate(value, start=1):
-            label = table.get("name")
-            header = (f"[[model.regressors]] #{i} ({key_text(label)})" if isinstance(label, str)
-                      else f"[[model.regressors]] #{i}")
-            self.unknown_keys(table, tuple(REGRESSOR), "model.regressors", header)
-            got = self.fields(table, REGRESSOR, header, path + (i,))
-            if "name" in got:
-                out.append(Regressor(**got))
-        return tuple(out)
+        return self.named_tables(value, "model.regressors", REGRESSOR, Regressor, path)
 
     def gmm_instruments(self, value) -> Any:
         path = ("instruments", "gmm")
@@ -348,15 +339,21 @@ class Reader:
             self.add("[instruments] gmm", "must be a list of [[instruments.gmm]] tables with "
                      'name (and lags = [first, last], form)', value, path)
             return MISSING
+        return self.named_tables(value, "instruments.gmm", GMM_INSTRUMENT, GmmInstrument, path)
+
+    def named_tables(self, value: list, table: str, schema, make, path: Path_) -> tuple:
+        """Each ``[[table]]`` entry checked against ``schema`` (its problems named by
+        position and name) and built with ``make``; entries without a name are left out
+        (the missing name is reported by the field check)."""
         out = []
-        for i, table in enumerate(value, start=1):
-            label = table.get("name")
-            header = (f"[[instruments.gmm]] #{i} ({key_text(label)})" if isinstance(label, str)
-                      else f"[[instruments.gmm]] #{i}")
-            self.unknown_keys(table, tuple(GMM_INSTRUMENT), "instruments.gmm", header)
-            got = self.fields(table, GMM_INSTRUMENT, header, path + (i,))
+        for i, entry in enumerate(value, start=1):
+            label = entry.get("name")
+            header = (f"[[{table}]] #{i} ({key_text(label)})" if isinstance(label, str)
+                      else f"[[{table}]] #{i}")
+            self.unknown_keys(entry, tuple(schema), table, header)
+            got = self.fields(entry, schema, header, path + (i,))
             if "name" in got:
-                out.append(GmmInstrument(**got))
+                out.append(make(**got))
         return tuple(out)
 
     def sample(self, table: dict, header: str, where: str, path: Path_) -> SampleFilter:
