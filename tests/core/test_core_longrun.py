@@ -121,7 +121,7 @@ def test_long_run_coverage_and_se_against_spread():
 
 
 def test_fit_summary_shows_long_run_effects():
-    from robustgmm.cli import format_fit_summary
+    from robustgmm.terminal import format_fit_summary
 
     _, panel = sim_panel(300, 7, seed=2, process=TRUE)
     res = fit(sim_spec(form="collapsed"), panel)

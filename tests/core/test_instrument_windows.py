@@ -176,7 +176,7 @@ def test_an_own_window_from_lag_1_for_the_outcome_is_refused(folder):
 
 
 def test_the_fit_summary_names_own_windows_and_external_instruments(folder):
-    from robustgmm.cli import own_windows_text
+    from robustgmm.terminal import own_windows_text
     spec = _spec(folder, x={"instrument_lags": [3, "all"], "instrument_form": "collapsed"},
                  model={"instrument_lags": [2, 4]}, instruments={"gmm": [{"name": "z"}]})
     assert own_windows_text(spec) == (" (y: lags 2-4; x: lags 3-all, collapsed; "

@@ -472,7 +472,7 @@ def test_every_document_agrees_with_the_verdict(writable_folder, name):
     # ar2_reject and named alpha. Folder "thresholds" changes alpha and every
     # threshold; every document must give verdict.json's verdicts, reasons, counts and
     # thresholds, and the counts must be those of the p-values in variants.csv.
-    from robustgmm.cli import _audit_summary
+    from robustgmm.terminal import audit_summary
     out = writable_folder(name)
     build_report(out, formats=("png",))
     v = json.loads((out / "verdict.json").read_text())
@@ -502,7 +502,7 @@ def test_every_document_agrees_with_the_verdict(writable_folder, name):
     ev = (f"{v['variants']['ok']} estimated: {v['variants']['acceptable']} acceptable, "
           f"{v['variants']['untestable']} untestable, {v['variants']['rejected']} rejected "
           f"by their tests")
-    terminal = _audit_summary(type("R", (), {"verdict": v})(), out, [])
+    terminal = audit_summary(type("R", (), {"verdict": v})(), out, [])
     for doc in (md, html, terminal):
         assert ev in doc
 
