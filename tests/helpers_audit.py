@@ -72,6 +72,16 @@ class CountingFit:
         return core.fit(spec, panel)
 
 
+def run_each(fit, variants, panels, **kw):
+    """``runner.run_variants`` with every variant estimated on its own by ``fit``
+    (``spec, panel -> FitResult``): the runner's test seam ``FIT_EACH``, which the
+    tasks carry to worker processes, set for this one run."""
+    from unittest import mock
+    from robustgmm.audit import runner
+    with mock.patch.object(runner, "FIT_EACH", fit):
+        return runner.run_variants(variants, panels, **kw)
+
+
 def outcome_text(outcomes) -> str:
     """Outcomes as canonical JSON without timings (for exact comparisons)."""
     return canonical_json({vid: {"status": o.status, "reason": o.reason,

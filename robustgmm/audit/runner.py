@@ -154,9 +154,19 @@ class _BoundsOnce:
             return {"error": f"{type(exc).__name__}: {one_line(exc)}"}
 
 
+#: The seam of the fault and resumption tests, never set by the package: a callable
+#: ``(spec, panel) -> FitResult`` that estimates every variant on its own in place of
+#: :func:`robustgmm.core.fit_family` (it can count calls, raise, or kill its worker).
+#: :func:`run_variants` reads it once when it starts and sends it with each task, so
+#: it reaches worker processes, which monkeypatching the core in this process does
+#: not. Tests set it with ``monkeypatch.setattr(runner, "FIT_EACH", ...)``.
+FIT_EACH: Callable | None = None
+
+
 def _fits(specs, panel, fit: Callable | None) -> list:
     """The group's results (an exception in place of a member that raised): one
-    :func:`robustgmm.core.fit_family` call, or ``fit`` member by member (tests)."""
+    :func:`robustgmm.core.fit_family` call, or ``fit`` member by member
+    (:data:`FIT_EACH`)."""
     from .. import core
     if fit is None:
         return core.fit_family(list(specs), panel)
@@ -169,8 +179,7 @@ def _fits(specs, panel, fit: Callable | None) -> list:
     return results
 
 
-def estimate_group(specs, panel, fit: Callable | None = None,
-                   sample: Callable | None = None, on_error: str = "raise",
+def estimate_group(specs, panel, fit: Callable | None = None, on_error: str = "raise",
                    ids: Sequence[str] | None = None, bounds: bool = True) -> list[dict]:
     """Estimate a share group of variants and their OLS/within bounds; one payload
     per member (the comment above :func:`_failure`).
@@ -181,8 +190,8 @@ def estimate_group(specs, panel, fit: Callable | None = None,
     :data:`ON_ERROR`). By default the group goes to
     :func:`robustgmm.core.fit_family`, which sums the moments once for the group and
     reuses each instrument set's one-step estimate for its two-step siblings. ``fit``
-    (tests) replaces it by one call per member; ``sample`` replaces
-    :func:`robustgmm.core.estimation_sample`. ``ids``: the variant ids, named in the
+    (:data:`FIT_EACH`, tests) replaces it by one call per member. ``ids``: the variant
+    ids, named in the
     failure records. ``bounds=False`` leaves the bounds out (``bounds`` None: the
     Monte Carlo needs only the fits).
     """
@@ -195,7 +204,7 @@ def estimate_group(specs, panel, fit: Callable | None = None,
         exc = EstimationError("; ".join(degenerate))
         out = [_failure(exc, vid) for vid in ids]
     else:
-        of = (_BoundsOnce(panel, sample or core.estimation_sample, on_error) if bounds
+        of = (_BoundsOnce(panel, core.estimation_sample, on_error) if bounds
               else (lambda spec: None))
         out = []
         for vid, spec, res in zip(ids, specs, _fits(specs, panel, fit)):
@@ -213,12 +222,6 @@ def estimate_group(specs, panel, fit: Callable | None = None,
     for entry in out:
         entry["seconds"] = 0.0 if degenerate else per_variant
     return out
-
-
-def estimate_variant(spec, panel, fit: Callable | None = None,
-                     sample: Callable | None = None, on_error: str = "raise") -> dict:
-    """One variant on its own (a share group of one); see :func:`estimate_group`."""
-    return estimate_group([spec], panel, fit, sample, on_error)[0]
 
 
 def one_line(exc: BaseException) -> str:
@@ -295,16 +298,14 @@ def _group_signature(members: Sequence[Variant]) -> list:
 
 def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                  jobs: int | None = None, cache_dir=None, progress: bool | None = False,
-                 backend: str | None = None, fit: Callable | None = None,
-                 sample: Callable | None = None,
+                 backend: str | None = None,
                  on_error: str = "raise") -> tuple[dict[str, Outcome], RunStats]:
     """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
 
     ``panels`` maps :func:`robustgmm.grid.sample_key` to the sample's panel.
     ``jobs``: worker count (None: every core, or this process for a small audit;
     -1: every core; 1: this process). ``progress``: a tqdm bar on stderr (None: only
-    when stderr is a terminal). ``fit``/``sample``: replacements for the core's
-    functions (tests); with ``fit`` every variant is estimated on its own.
+    when stderr is a terminal).
 
     The unit of work is a share group (variants that differ only in steps, errors
     and last_lag; :func:`robustgmm.core.share_key`), estimated together by
@@ -314,6 +315,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     """
     check_on_error(on_error)
     start = time.perf_counter()
+    fit = FIT_EACH  # read once: the tasks carry it to the workers
     todo = [v for v in variants if v.status == PLANNED]
     cache, cache_problem = _open_cache(cache_dir)
     groups = _share_groups(todo, shared=fit is None)
@@ -323,7 +325,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     # the heaviest groups first, so parallel workers finish close together (the order
     # of results does not depend on it)
     pending.sort(key=lambda g: -_group_weight(g, _panel_of(g, panels)))
-    tasks = _Tasks(panels, fit, sample, on_error, parallel.Parent.here())
+    tasks = _Tasks(panels, fit, on_error, parallel.Parent.here())
     outcomes.bar = _progress_bar(progress, total=len(todo), initial=len(outcomes.by_id))
     try:
         n_workers, backend_used, capped = _dispatch(pending, tasks, outcomes, jobs, backend)
@@ -452,13 +454,12 @@ class _Tasks:
 
     panels: Mapping[str, Any]
     fit: Callable | None
-    sample: Callable | None
     on_error: str
     parent: Any  # the run's process: workers watch it, dask workers check its versions
 
     def _args(self, group, marker):
         return ([v.id for v in group], [v.spec for v in group], _panel_of(group, self.panels),
-                self.fit, self.sample, self.parent, marker, self.on_error)
+                self.fit, self.parent, marker, self.on_error)
 
     def run(self, group) -> list:
         return _task(*self._args(group, None))
@@ -527,7 +528,7 @@ def _group_weight(group, panel) -> float:
     return len(group) * (2 if spec.equations == Equations.SYSTEM else 1) * width
 
 
-def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = None,
+def _task(ids, specs, panel, fit, parent_pid: int, marker: str | None = None,
           on_error: str = "raise"):
     if marker is not None:  # "this group has started" (see run_surviving_worker_deaths)
         try:
@@ -535,7 +536,7 @@ def _task(ids, specs, panel, fit, sample, parent_pid: int, marker: str | None = 
         except OSError:  # e.g. a remote worker without the parent's folder
             pass
     parallel.in_worker(parent_pid)
-    return list(zip(ids, estimate_group(specs, panel, fit, sample, on_error, ids)))
+    return list(zip(ids, estimate_group(specs, panel, fit, on_error, ids)))
 
 
 def _lost(vid: str) -> "FitFailure":

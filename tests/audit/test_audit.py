@@ -2,7 +2,6 @@
 cache reuse, failed and skipped variants, the command line on a 24-variant model."""
 from __future__ import annotations
 
-import functools
 
 import json
 import os
@@ -117,7 +116,7 @@ def test_failed_variants_are_reported_and_the_audit_completes(spec, monkeypatch)
         return s.equations == "difference" and s.steps == 1 and s.last_lag == 3
     from robustgmm.errors import EstimationError
     fit = CountingFit(fail=[(fails, EstimationError("the weight matrix is singular"))])
-    monkeypatch.setattr(runner, "run_variants", functools.partial(runner.run_variants, fit=fit))
+    monkeypatch.setattr(runner, "FIT_EACH", fit)
     result = audit(spec, jobs=1)
     v = result.variants
     failed = v[v["status"] == "failed"]

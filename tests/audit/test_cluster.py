@@ -31,6 +31,7 @@ from robustgmm import cli
 from robustgmm.audit import cluster, grid, runner
 from robustgmm.errors import InputError
 
+from helpers_audit import run_each
 from helpers_reliability import (harness_env, install_harness, output_files, run_cli,
                                  started_pids, write_model)
 
@@ -346,8 +347,7 @@ def test_group_that_kills_every_worker_is_recorded_failed(dask_cluster, project,
     panels = grid.load_panels(spec)
     variants = grid.plan(spec, panels, counts=False)
     with cluster.connect(dask_cluster.address):
-        outcomes, stats = runner.run_variants(variants, panels, backend="dask",
-                                              fit=KillsItsWorker())
+        outcomes, stats = run_each(KillsItsWorker(), variants, panels, backend="dask")
     lost = [o for o in outcomes.values() if o.status == runner.FAILED]
     assert len(lost) == 1 and lost[0].reason == runner.LOST_REASON
     assert stats.extra["lost"] == 1 and stats.extra["worker_deaths"] == 2

@@ -13,7 +13,7 @@ from robustgmm.audit.grid import canonical_json as canonical
 from robustgmm.errors import EstimationError
 from robustgmm.spec import SampleFilter
 
-from helpers_audit import CountingFamily, CountingFit, make_spec, outcome_text
+from helpers_audit import CountingFamily, CountingFit, make_spec, outcome_text, run_each
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
 
@@ -93,11 +93,10 @@ def test_interrupt_with_a_per_variant_estimator(planned, tmp_path):
     spec, panels, variants = planned
     cache_dir = tmp_path / "cache"
     with pytest.raises(KeyboardInterrupt):
-        runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir,
-                            fit=CountingFit(interrupt_at=4))
+        run_each(CountingFit(interrupt_at=4), variants, panels, jobs=1, cache_dir=cache_dir)
     assert len(list(cache_dir.glob("*.json"))) == 3
     fit = CountingFit()
-    resumed, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    resumed, stats = run_each(fit, variants, panels, jobs=1, cache_dir=cache_dir)
     assert fit.calls == stats.computed == 5 and stats.cached == 3
 
 
@@ -112,7 +111,7 @@ def test_shared_work_gives_the_results_of_separate_fits(tmp_path):
     # GMM (invalid by construction, robustgmm.core.invalid_reason)
     assert sum(v.status == grid.SKIPPED for v in variants) == 3
     assert stats.extra == {"groups": 1, "estimated": 9, "shared": True}
-    alone, _ = runner.run_variants(variants, panels, jobs=1, fit=core.fit)
+    alone, _ = run_each(core.fit, variants, panels, jobs=1)
     for v in variants:
         if v.status == grid.SKIPPED:
             assert v.id not in shared and v.id not in alone
@@ -150,8 +149,8 @@ def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
          ZeroDivisionError("float division by zero")),
     ])
     cache_dir = tmp_path / "cache"
-    out, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit,
-                                     on_error="record")
+    out, stats = run_each(fit, variants, panels, jobs=1, cache_dir=cache_dir,
+                          on_error="record")
     failed = {vid: o for vid, o in out.items() if o.status == runner.FAILED}
     assert len(failed) == 2 and stats.failed == 2
     reasons = sorted(o.reason for o in failed.values())
@@ -160,7 +159,7 @@ def test_a_failing_variant_is_recorded_and_the_others_go_on(planned, tmp_path):
     assert all(o.status == runner.OK and o.fit for vid, o in out.items() if vid not in failed)
     # the estimation failure is cached; the unexpected error is tried again next time
     fit2 = CountingFit()
-    again, _ = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit2)
+    again, _ = run_each(fit2, variants, panels, jobs=1, cache_dir=cache_dir)
     assert fit2.calls == 1
     assert sum(o.status == runner.FAILED for o in again.values()) == 1
 
@@ -172,7 +171,7 @@ def test_an_unexpected_error_stops_the_run_by_default(planned):
     fit = CountingFit(fail=[(lambda s: s.transform == "fod" and s.steps == 2,
                              ZeroDivisionError("float division by zero"))])
     with pytest.raises(ZeroDivisionError, match="float division by zero"):
-        runner.run_variants(variants, panels, jobs=1, fit=fit)
+        run_each(fit, variants, panels, jobs=1)
 
 
 def test_singular_sample_fails_without_stopping_the_audit(tmp_path):
@@ -248,7 +247,7 @@ def test_skipped_variants_are_not_run(planned):
     spec, panels, variants = planned
     skipped = dataclasses.replace(variants[1], status=grid.SKIPPED, reason="test")
     fit = CountingFit()
-    out, stats = runner.run_variants([variants[0], skipped], panels, jobs=1, fit=fit)
+    out, stats = run_each(fit, [variants[0], skipped], panels, jobs=1)
     assert fit.calls == 1 and list(out) == [variants[0].id] and stats.variants == 1
 
 
@@ -262,7 +261,7 @@ def test_payload_is_the_fit_record_and_the_sum_of_the_lags_is_checked(tmp_path):
     spec = make_spec(tmp_path, model={"outcome_lags": [1, 2]})
     panel = grid.load_panels(spec)[grid.sample_key(spec.sample)]
     result = core.fit(spec, panel)
-    out = runner.estimate_variant(spec, panel)
+    out = runner.estimate_group([spec], panel)[0]
     assert out["status"] == runner.OK
     assert canonical(out["fit"]) == canonical(result.to_dict())
     assert FitResult.from_dict(json.loads(json.dumps(out["fit"]))).labels == result.labels
@@ -280,7 +279,7 @@ def test_failures_name_the_variant_and_convert_like_a_fit(planned):
     spec, panels, variants = planned
     fit = CountingFit(fail=[(lambda s: s.transform == "fod",
                              EstimationError("the weight matrix\nis singular"))])
-    out, _ = runner.run_variants(variants, panels, jobs=1, fit=fit)
+    out, _ = run_each(fit, variants, panels, jobs=1)
     failed = [o for o in out.values() if o.status == runner.FAILED]
     assert len(failed) == 4
     for o in failed:

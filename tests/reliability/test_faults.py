@@ -24,7 +24,7 @@ from robustgmm.audit import grid, runner
 from robustgmm.audit import audit, write_audit
 
 from helpers_audit import (CountingFamily, CountingFit, KillWorker, is_fod_collapsed_two_step,
-                           make_spec, outcome_text)
+                           make_spec, outcome_text, run_each)
 from helpers_reliability import (count_estimations, groups_started, harness_env,
                                  install_harness, output_files, robustgmm_command,
                                  started_pids, tree, write_model)
@@ -63,7 +63,7 @@ def test_worker_killed_twice_fails_only_its_variant(planned, tmp_path):
     spec, panels, variants = planned
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=99)
     cache_dir = tmp_path / "cache"
-    out, stats = runner.run_variants(variants, panels, jobs=2, cache_dir=cache_dir, fit=killer)
+    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=cache_dir)
     assert killer.kills() == 2  # the first attempt and one retry, no more
     assert list(out) == [v.id for v in variants]  # nothing missing, plan order
     lost = [v.id for v in variants if is_fod_collapsed_two_step(v.spec)]
@@ -71,13 +71,13 @@ def test_worker_killed_twice_fails_only_its_variant(planned, tmp_path):
     assert out[lost[0]].status == runner.FAILED and out[lost[0]].reason == runner.LOST_REASON
     assert "died twice" in out[lost[0]].reason
     assert stats.failed == 1 and stats.extra["lost"] == 1 and stats.extra["worker_deaths"] == 2
-    fresh, _ = runner.run_variants(variants, panels, jobs=1, fit=core.fit)
+    fresh, _ = run_each(core.fit, variants, panels, jobs=1)
     others = [v.id for v in variants if v.id not in lost]
     assert outcome_text({k: out[k] for k in others}) == outcome_text({k: fresh[k] for k in others})
     # the lost variant is not cached: a rerun (healthy now) estimates it and nothing else
     assert len(list(cache_dir.glob("*.json"))) == len(variants) - 1
     fit = CountingFit()
-    again, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    again, stats = run_each(fit, variants, panels, jobs=1, cache_dir=cache_dir)
     assert fit.calls == 1 and stats.cached == len(variants) - 1
     assert outcome_text(again) == outcome_text(fresh)
     assert not _no_temporaries(cache_dir)
@@ -87,12 +87,11 @@ def test_worker_killed_twice_fails_only_its_variant(planned, tmp_path):
 def test_worker_killed_once_is_retried_and_the_audit_completes(planned, tmp_path):
     spec, panels, variants = planned
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=1)
-    out, stats = runner.run_variants(variants, panels, jobs=2, cache_dir=tmp_path / "cache",
-                                     fit=killer)
+    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=tmp_path / "cache")
     assert killer.kills() == 1
     assert stats.failed == 0 and stats.extra["worker_deaths"] == 1
     assert "lost" not in stats.extra
-    fresh, _ = runner.run_variants(variants, panels, jobs=1, fit=core.fit)
+    fresh, _ = run_each(core.fit, variants, panels, jobs=1)
     assert outcome_text(out) == outcome_text(fresh)
     assert len(list((tmp_path / "cache").glob("*.json"))) == len(variants)
 
@@ -101,11 +100,10 @@ def test_worker_killed_once_is_retried_and_the_audit_completes(planned, tmp_path
 def test_killed_worker_through_the_audit_tables(tmp_path, monkeypatch):
     """The same through audit(): the lost variant is a failed row of variants.csv, the
     verdict counts it, and the files are complete."""
-    import functools
     spec = make_spec(tmp_path, VARY)
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=99)
     # the killer travels to the worker processes as the runner's estimator
-    monkeypatch.setattr(runner, "run_variants", functools.partial(runner.run_variants, fit=killer))
+    monkeypatch.setattr(runner, "FIT_EACH", killer)
     result = audit(spec, jobs=2)
     out = write_audit(result, tmp_path / "out")
     v = pd.read_csv(out / "variants.csv")

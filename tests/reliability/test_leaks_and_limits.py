@@ -20,7 +20,7 @@ import pytest
 
 from robustgmm.audit import cache as cache_mod, grid, parallel, runner
 
-from helpers_audit import CountingFit, make_spec
+from helpers_audit import CountingFit, make_spec, run_each
 from helpers_reliability import (harness_env, install_harness, robustgmm_command,
                                  started_pids, write_model)
 
@@ -40,14 +40,14 @@ def test_an_upgrade_of_the_package_or_a_library_recomputes(planned, tmp_path, mo
                                                            library):
     spec, panels, variants = planned
     cache_dir = tmp_path / "cache"
-    runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=CountingFit())
+    run_each(CountingFit(), variants, panels, jobs=1, cache_dir=cache_dir)
     fit = CountingFit()
-    _, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    _, stats = run_each(fit, variants, panels, jobs=1, cache_dir=cache_dir)
     assert fit.calls == 0 and stats.cached  # the warm rerun is served by the cache
     real = cache_mod.environment()
     monkeypatch.setattr(cache_mod, "environment", lambda: {**real, library: real[library] + ".1"})
     fit = CountingFit()
-    _, stats = runner.run_variants(variants, panels, jobs=1, cache_dir=cache_dir, fit=fit)
+    _, stats = run_each(fit, variants, panels, jobs=1, cache_dir=cache_dir)
     assert stats.cached == 0 and fit.calls == len([v for v in variants if v.status == "planned"])
 
 
