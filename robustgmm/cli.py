@@ -118,9 +118,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--seed", type=_whole, default=0, metavar="S", help="seed (default 0)")
     p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
                    help="parallel workers (-1 = every core)")
-    p.add_argument("--initial", choices=("stationary", "data"), default="stationary",
+    p.add_argument("--initial", choices=("stationary", "data"), default=None,
                    help="initial conditions: stationary (default) or the data's first-period "
-                        "deviations from the unit means")
+                        "deviations from the unit means (wins over [simulate] initial)")
     p.add_argument("--no-cache", action="store_true",
                    help="do not reuse or keep cached replications")
     p.add_argument("--yes", action="store_true",
@@ -485,12 +485,19 @@ def _run_audit(spec, out: Path, args, backend):
                            cache_dir=None if args.no_cache else out / ".cache",
                            progress=sys.stderr.isatty(), **kw,
                            **({} if args.simulate is None else
-                              {"simulate": args.simulate, "seed": args.seed}))
+                              {"simulate": args.simulate, "seed": args.seed,
+                               "simulate_options": _simulate_options(args.model)}))
         try:
             write_audit(result, out, model_file=Path(args.model), report=_report_builder())
         except OSError as exc:
             raise _cannot_write(args.out, exc) from None
     return result
+
+
+def _simulate_options(model) -> dict:
+    """The model file's ``[simulate]`` settings as keyword arguments of the simulation."""
+    from .modelfile import read_simulate
+    return read_simulate(Path(model)).options()
 
 
 def _after_audit(result, out: Path, args) -> int:
@@ -506,7 +513,7 @@ def _after_audit(result, out: Path, args) -> int:
 
 
 def cmd_simulate(args) -> int:
-    from .modelfile import read_model
+    from .modelfile import read_model, read_simulate
     from .montecarlo.replicate import check_reps, simulate, write_simulation
     from .output import FolderLock
 
@@ -520,9 +527,12 @@ def cmd_simulate(args) -> int:
         backend = stack.enter_context(cluster_backend(args, Path(args.model)))
         out = check_output_folder(args.out, args.force)
         stack.enter_context(FolderLock(out, "simulate"))
+        world = read_simulate(Path(args.model)).options()  # [simulate]
+        if args.initial is not None:
+            world["initial"] = args.initial
         sim = simulate(spec, reps=args.reps, seed=args.seed, jobs=args.jobs,
                        cache_dir=None if args.no_cache else out / ".cache",
-                       progress=sys.stderr.isatty(), initial=args.initial, backend=backend)
+                       progress=sys.stderr.isatty(), backend=backend, **world)
         try:
             write_simulation(sim, out, model_file=Path(args.model))
         except OSError as exc:

@@ -122,6 +122,14 @@ class InfluenceScope(enum.StrEnum):
     ALL = "all"
 
 
+class Initial(enum.StrEnum):
+    """Initial conditions of the simulated world (``[simulate] initial``, ``--initial``):
+    mean-stationary starts, or the data's first-period deviations from the unit means
+    (:mod:`robustgmm.montecarlo.calibrate`)."""
+    STATIONARY = "stationary"
+    DATA = "data"
+
+
 LABELS: dict[Any, str] = {
     Equations.DIFFERENCE: "difference GMM",
     Equations.SYSTEM: "system GMM",

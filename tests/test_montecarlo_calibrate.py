@@ -13,7 +13,7 @@ def _world(proc, n=4000, t=10, seed=3):
     df = simulate_panel(n, t, proc, seed=seed)
     w = calibrate(df, unit="unit", period="period", outcome="y",
                   regressors={"x": "endogenous", "w": "exogenous"},
-                  truth={"L1.y": proc.rho, "x": proc.beta, "w": proc.gamma})
+                  truth={"y[t-1]": proc.rho, "x[t]": proc.beta, "w[t]": proc.gamma})
     return df, w
 
 
@@ -42,14 +42,14 @@ def test_round_trip_and_pattern():
     df = df.drop(index=df.index[::7]).reset_index(drop=True)  # gaps
     w = calibrate(df, unit="unit", period="period", outcome="y",
                   regressors={"x": "endogenous", "w": "exogenous"},
-                  truth={"L1.y": proc.rho, "x": proc.beta, "w": proc.gamma})
+                  truth={"y[t-1]": proc.rho, "x[t]": proc.beta, "w[t]": proc.gamma})
     sim = w.draw(11, 0)
     assert len(sim) == len(df)
     assert (sim[["unit", "period"]].to_numpy() == df[["unit", "period"]].to_numpy()).all()
     assert sim.equals(w.draw(11, 0)) and not sim.equals(w.draw(11, 1))
     w2 = calibrate(sim, unit="unit", period="period", outcome="y",
                    regressors={"x": "endogenous", "w": "exogenous"},
-                   truth={"L1.y": proc.rho, "x": proc.beta, "w": proc.gamma})
+                   truth={"y[t-1]": proc.rho, "x[t]": proc.beta, "w[t]": proc.gamma})
     assert w2.s2_eps == pytest.approx(w.s2_eps, rel=0.06)
     assert w2.s2_eta == pytest.approx(w.s2_eta, abs=0.12)
     assert np.allclose(w2.r, w.r, atol=0.06)

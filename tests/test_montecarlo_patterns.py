@@ -73,7 +73,7 @@ def test_blundell_bond_difference_gmm_bias_at_high_persistence(tmp_path):
 def test_windmeijer_uncorrected_two_step_errors_too_small(tmp_path):
     """Difference GMM, two-step, all lags per period, heteroskedastic shocks, a
     predetermined regressor, N = 100, T = 6 (a Windmeijer 2005 style design; the
-    calibrated world itself is homoskedastic, docs/method.md): for the AR coefficient
+    calibrated world is homoskedastic unless heteroskedastic=True, docs/method.md): for the AR coefficient
     the uncorrected (conventional two-step) errors have se_ratio < 0.8 and the
     corrected ones a larger ratio; for both terms the corrected intervals cover the
     truth within 3 points of 95% (plus three binomial SEs). Measured at R = 40: AR

@@ -58,7 +58,7 @@ def default_cache_dir(out_dir) -> Path:
 
 def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool | None = False,
           backend: str | None = None, on_error: str = "raise", simulate: int | None = None,
-          seed: int = 0) -> AuditResult:
+          seed: int = 0, simulate_options: dict | None = None) -> AuditResult:
     """Estimate every variant of ``spec`` and judge the focus terms.
 
     ``jobs``: workers (None: every core). ``cache_dir``: folder of the variant cache
@@ -68,7 +68,10 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     :class:`~robustgmm.errors.EstimationError` does — "raise" (default: it is a bug
     and stops the audit with its traceback) or "record" (the variant is recorded
     failed and the audit goes on). A variant that cannot be estimated on its data
-    (EstimationError and its subclasses) is always a failed variant.
+    (EstimationError and its subclasses) is always a failed variant. ``simulate``:
+    also run that many replications of the grid in a world calibrated to the data
+    (seed ``seed``; ``simulate_options``: ``truth``, ``initial``, ``heteroskedastic``
+    of :func:`robustgmm.montecarlo.simulate`, the model file's ``[simulate]``).
     """
     runner.check_on_error(on_error)
     t0 = time.perf_counter()
@@ -90,7 +93,8 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
         from ..montecarlo.replicate import simulate as run_simulation
         simulation = run_simulation(spec, reps=simulate, seed=seed, jobs=jobs,
                                     cache_dir=cache_dir, progress=progress, backend=backend,
-                                    planned=planned, panels=panels)
+                                    planned=planned, panels=panels,
+                                    **dict(simulate_options or {}))
     t_sim = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
     evaluation = verdicts.evaluate(spec, variants, estimates, bounds,  # every rule, once

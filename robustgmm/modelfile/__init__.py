@@ -32,9 +32,10 @@ from ..errors import InputError
 from ..spec import SampleFilter, Spec
 from .crosschecks import cross_checks
 from .run import read_run  # noqa: F401  ([run]: how to run, not what to estimate)
+from .simulate import read_simulate  # noqa: F401  ([simulate]: the Monte Carlo's world)
 from .schema import SECTIONS, VARY_KEYS, Reader  # noqa: F401  (SECTIONS, VARY_KEYS: re-exported)
 
-__all__ = ["read_model", "read_run", "spec_from_dict", "spec_to_dict", "SECTIONS", "VARY_KEYS"]
+__all__ = ["read_model", "read_run", "read_simulate", "spec_from_dict", "spec_to_dict", "SECTIONS", "VARY_KEYS"]
 
 
 def spec_from_dict(d: dict, base_dir=None, source: str = "<dict>") -> Spec:

@@ -87,6 +87,9 @@ SCHEMA: dict[Path_, Key | object] = {
     ("report", "stars"): Key("stars", v_bool),
     # [run]: where to run, not what to estimate; read and checked by modelfile/run.py
     ("run", "scheduler"): TABLE,
+    # [simulate]: the Monte Carlo's world, not what to estimate; modelfile/simulate.py
+    ("simulate", "truth"): TABLE, ("simulate", "initial"): TABLE,
+    ("simulate", "heteroskedastic"): TABLE,
 }
 
 #: ``[[model.regressors]]`` keys → :class:`~robustgmm.spec.Regressor` fields.
@@ -289,6 +292,9 @@ class Reader:
             elif section == "run":
                 from .run import check_run
                 check_run(table, self)
+            elif section == "simulate":
+                from .simulate import check_simulate
+                check_simulate(table, self)
         if "data_file" in fields:
             file = fields["data_file"]
             fields["data_file"] = Path(file) if base_dir is None else Path(base_dir) / file

@@ -58,14 +58,14 @@ import pandas as pd
 
 from ..errors import EstimationError, InputError
 from ..options import Role
-from .calibrate import World, calibrate, fit_summary
+from .calibrate import World, calibrate, fit_summary, recalibrate
 
 #: Replications below this give rates too noisy to read (a binomial standard error
 #: above 0.05 at a 0.5 rate needs fewer than 100; 10 is the floor we accept).
 MIN_REPS = 10
 DEFAULT_REPS = 200
 #: Version of a cached replication's record (raise when its layout changes).
-REP_FORMAT = 1
+REP_FORMAT = 2
 #: Replications per worker task at most (tasks carry the world and the frame once).
 MAX_BLOCK = 25
 LOST = "lost"
@@ -104,52 +104,65 @@ class Simulation:
 # the world of a model
 # ---------------------------------------------------------------------------
 def truth_of(spec, fit_result) -> dict[str, float]:
-    """The true value of every focus term in the calibrated world: the base model's
-    coefficient on ``outcome[t-1]`` and on each regressor's ``name[t]``; every other
-    term (further outcome lags, lagged regressors) is 0, since the world is an AR(1)
-    in the outcome with contemporaneous regressors."""
-    from ..spec import term_label
+    """The true value of every term of the model in the calibrated world: the base
+    model's coefficient on each outcome lag and each regressor lag (the world contains
+    every term of the base model, :mod:`robustgmm.montecarlo.calibrate`)."""
     est = {t.label: float(t.estimate) for t in fit_result.terms}
-    truth = {}
-    for var, lag, label in spec.regressor_terms():
-        truth[label] = 0.0
-    truth[term_label(spec.outcome, 1)] = est.get(term_label(spec.outcome, 1), 0.0)
+    return {label: est.get(label, 0.0) for _, _, label in spec.regressor_terms()}
+
+
+def long_run_truth(spec, truth: Mapping[str, float]) -> dict[str, float]:
+    """``NAME[long-run]`` of each regressor in the world: the sum of its
+    coefficients over one minus the sum of the autoregressive ones
+    (:mod:`robustgmm.core.longrun`); NaN when the sum of the latter is 1."""
+    from ..spec import long_run_label, term_label
+    rho = sum(truth.get(term_label(spec.outcome, lag), 0.0) for lag in spec.outcome_lags)
+    out = {}
     for reg in spec.regressors:
-        truth[term_label(reg.name, 0)] = est.get(term_label(reg.name, 0), 0.0)
-    return truth
+        b = sum(truth.get(term_label(reg.name, lag), 0.0) for lag in reg.lags)
+        out[long_run_label(reg.name)] = b / (1.0 - rho) if rho != 1.0 else math.nan
+    return out
 
 
 def build_world(spec, frame: pd.DataFrame, base_panel, *, truth: Mapping[str, float] | None = None,
-                initial: str = "stationary") -> tuple[World, dict[str, float]]:
-    """Calibrate the world of ``spec`` on the data ``frame``; the truth is the base
-    model's estimate (``core.fit`` on ``base_panel``) unless ``truth`` gives term →
-    value. Raises :class:`InputError` when the base model cannot be estimated."""
+                initial: str = "stationary", heteroskedastic: bool = False,
+                ) -> tuple[World, dict[str, float], str]:
+    """Calibrate the world of ``spec`` on the data ``frame``. The truth of every term
+    is ``truth``'s value where it names the term (``[simulate.truth]``), else the base
+    model's estimate (``core.fit`` on ``base_panel``, fitted only when a term is not
+    given). Returns the world, the truth of every term and of each long-run effect,
+    and where the truth came from. Raises :class:`InputError` when the base model is
+    needed and cannot be estimated."""
     from .. import core
-    from ..spec import term_label
-    if initial not in ("stationary", "data"):
+    from ..options import Initial
+    if initial not in [m.value for m in Initial]:
         raise InputError(f"simulate: initial must be 'stationary' or 'data', not {initial!r}")
-    if truth is None:
+    known = [label for _, _, label in spec.regressor_terms()]
+    given = {} if truth is None else dict(truth)
+    bad = [k for k in given if k not in known]
+    if bad:
+        raise InputError(f"{spec.source}: [simulate.truth] {bad[0]!r}: not a term of the model "
+                         f"(terms: {', '.join(known)})")
+    given = {k: float(v) for k, v in given.items()}
+    if all(label in given for label in known):
+        terms, source = given, "given"
+    else:
         try:
             base = core.fit(spec, base_panel)
         except EstimationError as exc:
             raise InputError(f"{spec.source}: simulate: the base model cannot be estimated "
                              f"on the data, so there is no world to calibrate "
                              f"({' '.join(str(exc).split())})") from None
-        truth = truth_of(spec, base)
-    else:
-        known = {label for _, _, label in spec.regressor_terms()}
-        bad = [k for k in truth if k not in known]
-        if bad:
-            raise InputError(f"simulate: truth names {bad[0]!r}, not a term of the model "
-                             f"(terms: {', '.join(sorted(known))})")
-        truth = {**{label: 0.0 for label in known}, **{k: float(v) for k, v in truth.items()}}
+        terms = {**truth_of(spec, base), **given}
+        source = ("base model estimate" if not given else
+                  f"given for {', '.join(given)}; base model estimate for the other terms")
     kinds = {reg.name: str(Role(reg.role).value) for reg in spec.regressors}
     world = calibrate(frame, unit=spec.unit, period=spec.period, outcome=spec.outcome,
-                      regressors=kinds,
-                      truth={f"L1.{spec.outcome}": truth.get(term_label(spec.outcome, 1), 0.0),
-                             **{k: truth.get(term_label(k, 0), 0.0) for k in kinds}},
+                      regressors=kinds, truth=terms, outcome_lags=spec.outcome_lags,
+                      lags={reg.name: reg.lags for reg in spec.regressors},
+                      time_effects=spec.time_effects, heteroskedastic=heteroskedastic,
                       initial=initial)
-    return world, dict(truth)
+    return world, {**terms, **long_run_truth(spec, terms)}, source
 
 
 def simulated_frame(world: World, template: pd.DataFrame, seed: int, rep: int,
@@ -259,7 +272,7 @@ def world_key(world: World, template: pd.DataFrame, variants, focus, alpha) -> s
     h.update(canonical_json({"format": REP_FORMAT, "world": world.to_dict(),
                              "variants": [[v.id, canonical_settings(v.spec)] for v in variants],
                              "focus": list(focus), "alpha": alpha}).encode())
-    h.update(np.packbits(world.mask).tobytes())
+    h.update(world.fingerprint())
     h.update(hash_frame(template, world.unit, world.period,
                         [c for c in template.columns if c not in (world.unit, world.period)]).encode())
     return h.hexdigest()
@@ -446,12 +459,17 @@ def summarise(records: Sequence[dict], variants, focus: Sequence[str],
 def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None = None,
              cache_dir=None, progress: bool | None = False, backend: str | None = None,
              truth: Mapping[str, float] | None = None, initial: str = "stationary",
-             planned=None, panels=None) -> Simulation:
+             heteroskedastic: bool = False, planned=None, panels=None) -> Simulation:
     """Calibrate the world of ``spec`` to its data and run ``reps`` replications of
     its whole grid (``planned``/``panels``: an audit's plan and panels, reused).
 
+    ``truth``: term label → true value (``[simulate.truth]``; the other terms take
+    the base model's estimate); ``initial``: ``"stationary"`` or ``"data"``;
+    ``heteroskedastic``: copy the data's heteroskedasticity across units
+    (:mod:`robustgmm.montecarlo.calibrate`).
+
     Raises :class:`InputError` (one line each) for bad ``reps``/``seed``/``truth``/
-    ``initial`` and when the base model cannot be estimated on the data."""
+    ``initial`` and when the base model is needed and cannot be estimated."""
     from .. import data
     from ..audit import grid
     from ..options import LEVEL_GROUP
@@ -465,7 +483,9 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
     variants = [v for v in planned if v.status == grid.PLANNED]
     frame = data.read_frame(spec)
     base_panel = panels[grid.sample_key(spec.sample)]
-    world, truth_terms = build_world(spec, frame, base_panel, truth=truth, initial=initial)
+    world, truth_terms, truth_source = build_world(spec, frame, base_panel, truth=truth,
+                                                   initial=initial,
+                                                   heteroskedastic=heteroskedastic)
     focus = tuple(spec.focus_terms())
     records, run = run_replications(world, frame, variants, reps=reps, seed=seed, focus=focus,
                                     level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
@@ -478,14 +498,15 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
                        [shown[vid].get(col) for vid in summary["variant"]])
     columns = (spec.outcome,) + world.regressors
     from .. import contract
+    first = simulated_frame(world, frame, seed, 0, columns)
     calibration = {
         "format_version": contract.FORMAT_VERSION,
         "seed": seed, "reps": reps, "alpha": spec.alpha,
         "truth": {t: truth_terms[t] for t in focus if t in truth_terms},
-        "truth_source": "given" if truth is not None else "base model estimate",
-        "world": world.to_dict(),
-        "fit": fit_summary(frame, simulated_frame(world, frame, seed, 0, columns), columns,
-                           unit=spec.unit, period=spec.period),
+        "truth_source": truth_source,
+        # each parameter beside the same calibration run on replication 0
+        "world": world.to_dict(simulated=recalibrate(world, first)),
+        "fit": fit_summary(frame, first, columns, unit=spec.unit, period=spec.period),
         "failed": {v.id: sum(1 for r in records if r["variants"][v.id]["status"] != "ok")
                    for v in variants},
     }

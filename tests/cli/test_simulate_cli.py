@@ -101,3 +101,35 @@ def test_base_model_not_estimable_is_one_line(tmp_path, capsys):
                         "--reps", 10)
     assert code == 2 and err.count("\n") == 1
     assert "base model cannot be estimated" in err
+
+
+def test_simulate_section_of_the_model_file(tmp_path, capsys):
+    """``[simulate]``: a given truth replaces the base estimate for its term (the others
+    keep theirs), heteroskedastic = true copies the unit scales, initial = "data";
+    ``--initial`` wins over the file. A truth naming no term of the model is one line."""
+    write_panel(tmp_path, n_units=50, n_periods=6)
+    d = model_dict({"equations": ["difference", "system"]}, instruments={"form": "collapsed"})
+    d["model"]["regressors"][0]["lags"] = [0, 1]
+    d["simulate"] = {"truth": {"x[t-1]": 0.25}, "heteroskedastic": True, "initial": "data"}
+    path = tmp_path / "model.toml"
+    path.write_text(toml_dumps(d))
+    out = tmp_path / "sim"
+    code, _, err = _run(capsys, "simulate", path, "--out", out, "--reps", 10, "--jobs", 1,
+                        "--initial", "stationary")
+    assert code == 0, err
+    cal = json.loads((out / "calibration.json").read_text())
+    assert cal["truth"]["x[t-1]"] == 0.25
+    assert cal["truth_source"].startswith("given for x[t-1]; base model estimate")
+    world = cal["world"]
+    assert world["heteroskedastic"] and world["initial"] == "stationary"
+    p = world["parameters"]
+    assert p["x[t-1]"]["value"] == 0.25 and "simulated" in p["x[t-1]"]
+    assert len(p["time_effects"]["value"]) == 6 and len(p["x.time_effects"]["simulated"]) == 6
+    assert len(cal["fit"]["real"]["y"]["period_means"]) == 6
+    sim = pd.read_csv(out / "simulation.csv")
+    assert (sim.loc[sim["term"] == "x[t-1]", "true_value"] == 0.25).all()
+    d["simulate"] = {"truth": {"q[t]": 1.0}}
+    path.write_text(toml_dumps(d))
+    code, _, err = _run(capsys, "simulate", path, "--out", tmp_path / "s2", "--reps", 10)
+    assert code == 2 and err.count("\n") == 1, err
+    assert "[simulate.truth] 'q[t]': not a term of the model" in err

@@ -193,6 +193,13 @@ MODEL_CASES = [
                '[report] stars = "yes"', "must be true or false"),
     model_case("run scheduler not an address", add('[run]\nscheduler = "login1"'),
                '[run] scheduler = "login1"', "tcp://HOST:PORT", command="audit"),
+    model_case("simulate initial not a word", add('[simulate]\ninitial = "burn"'),
+               '[simulate] initial = "burn"', "'stationary', 'data'", command="audit"),
+    model_case("simulate heteroskedastic not true or false",
+               add('[simulate]\nheteroskedastic = 1'), '[simulate] heteroskedastic = 1',
+               "must be true or false", command="audit"),
+    model_case("simulate truth not a number", add('[simulate.truth]\n"x[t]" = "big"'),
+               '[simulate.truth] x[t] = "big"', "finite number", command="audit"),
 ]
 
 DATA_CASES = [
