@@ -20,7 +20,8 @@ from .referee import CAUTION, referee_paragraphs
 from .labels import term_labels
 from .sections import anchor, base_model_table, short_provenance, split_variants_table
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
-                      rule_figures_text, summarize, threshold_text, variants_table)
+                      rule_figures_text, strength_columns, strength_note, summarize,
+                      threshold_text, variants_table)
 
 
 def link_ids(text: str, ids) -> list[tuple[str, str]]:
@@ -253,8 +254,11 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         "counts": _counts(s),
         "headers": headers,
         "rows": rows,
-        "variant_tables": split_variants_table(headers, rows, len(audit.setting_columns),
-                                               len(audit.focus)),
+        "variant_tables": split_variants_table(
+            headers, rows, len(audit.setting_columns), len(audit.focus),
+            len(strength_columns(audit.variants)), strength_note(audit.verdict.thresholds)),
+        "strength_note": (strength_note(audit.verdict.thresholds)
+                          if strength_columns(audit.variants) else ""),
         "base_table": base_model_table(audit),
         "term_names": term_labels(audit),
         "drivers_note": DRIVERS_NOTE,

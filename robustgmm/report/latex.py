@@ -24,7 +24,8 @@ from ..options import LABELS, CovarianceKind, Equations, Steps, Transform
 from ..options import label as option_label
 from .labels import report_option, term_labels, value_text
 from .inputs import AuditFolder
-from .summary import AuditSummary, fmt, fmt_int, fmt_p, setting_phrase, summarize
+from .summary import (STRENGTH_ROWS, AuditSummary, fmt, fmt_int, fmt_p, setting_phrase,
+                      summarize)
 
 # "$" becomes a math-mode dollar (\ensuremath, so no bare "$" reaches the file): the
 # text-mode \$ comes from the text-companion font, which a small TeX installation
@@ -197,15 +198,21 @@ def estimate_cells(est: pd.DataFrame, vid, term, use_stars: bool, text, superscr
             "(" + text(fmt(e["std_error"])) + ")")
 
 
-def diagnostic_rows(has_diff: bool, p: str) -> list[tuple[str, str, object]]:
+def diagnostic_rows(has_diff: bool, p: str, columns=()) -> list[tuple[str, str, object]]:
     """The rows under the estimates: (label, variants.csv column, formatter); ``p``
-    is how the document writes the letter p."""
+    is how the document writes the letter p. The instrument-strength rows
+    (:data:`~robustgmm.report.summary.STRENGTH_ROWS`) follow for those of their
+    columns in ``columns``."""
     rows = [("Instruments", "instruments", fmt_int), ("Units", "units", fmt_int),
             ("Observations", "observations", fmt_int), (f"Hansen {p}", "hansen_p", fmt_p),
             (f"Sargan {p}", "sargan_p", fmt_p), (f"AR(1) {p}", "ar1_p", fmt_p),
             (f"AR(2) {p}", "ar2_p", fmt_p)]
     if has_diff:
         rows.append((f"Diff.-in-Hansen {p}", "diff_hansen_level_p", fmt_p))
+    for col, label, _ in STRENGTH_ROWS:
+        if col in columns:
+            rows.append((label.format(p=p), col, fmt_p if col.endswith("_p")
+                         else (lambda x: fmt(x, 2))))
     return rows
 
 
@@ -274,7 +281,7 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
                 else f"\\texttt{{{tex_breakable(term, long=14)}}}")
 
     has_diff = "diff_hansen_level_p" in vrow.columns
-    diag_rows = diagnostic_rows(has_diff, "$p$")
+    diag_rows = diagnostic_rows(has_diff, "$p$", vrow.columns)
     # a test row that is n/a in every shown column says nothing (Sargan in system GMM)
     shown_ids = [vid for panel in panels for vid, _, _ in panel]
     diag_rows = [r for r in diag_rows
@@ -362,7 +369,8 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
                    else "Standard errors in parentheses.")
     note = (f"{se_text} Column (1) is the base model (variant "
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
-            + "; ".join(TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows})
+            + "; ".join([TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows}]
+                        + [tex(n) for c, _, n in STRENGTH_ROWS if c in {r[1] for r in diag_rows}])
             + ". ")
     if use_stars:
         # math-mode signs: the text-mode < and dagger come from the text-companion

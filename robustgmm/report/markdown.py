@@ -172,6 +172,8 @@ def render_markdown(ctx: dict) -> str:
     md += ["## Variants", "", esc(ctx["counts"]), ""]
     md += _table(ctx["headers"], [[(f"**{esc(c.text)}**" if base and c.text else esc(c.text))
                                    for c in cells] for base, _, cells in ctx["rows"]])
+    if ctx.get("strength_note"):
+        md += ["", f"**Instrument strength.** {esc(ctx['strength_note'])}"]
     if ctx["numerical_warnings"]:
         md += ["", "## Numerical warnings", "",
                "Recorded by the estimation; the affected results deserve a second look.", ""]

@@ -1,9 +1,10 @@
-"""Tables laid out for reading and printing: the base model, the variants in three
+"""Tables laid out for reading and printing: the base model, the variants in four
 narrow tables, a short provenance.
 
 The variants table of an audit has one column per setting, per test and per focus
-term: 20 to 30 columns, more than a printed page holds. It is split into three
-tables that share the variant id (settings; tests and counts; estimates), each
+term: 20 to 30 columns, more than a printed page holds. It is split into four
+tables that share the variant id (settings; tests and counts; instrument strength;
+estimates), each
 narrow enough for an A4 page in portrait, so nothing is cut off when a report is
 printed and nothing needs horizontal scrolling on screen. The cells are the ones of
 :func:`robustgmm.report.summary.variants_table`; nothing is recomputed here.
@@ -29,23 +30,31 @@ def anchor(variant: str) -> str:
     return "variant-" + re.sub(r"[^A-Za-z0-9_.-]", "_", str(variant))
 
 
-def split_variants_table(headers, rows, n_settings: int, n_terms: int) -> list[dict]:
-    """Three tables from the one variants table: ``settings`` (id, settings, status,
-    reason), ``tests`` (id, counts, test p-values, acceptable, flags) and
-    ``estimates`` (id, one column per focus term). Each is a dict with ``key``,
-    ``title``, ``headers`` and ``rows`` of ``(is_base, status, anchor, cells)``; the
-    first table carries the row anchors, the others link to them."""
+def split_variants_table(headers, rows, n_settings: int, n_terms: int,
+                         n_strength: int = 0, strength_note: str = "") -> list[dict]:
+    """Up to four tables from the one variants table: ``settings`` (id, settings,
+    status, reason), ``tests`` (id, counts, test p-values, evidence, flags),
+    ``strength`` (id and the ``n_strength`` instrument-strength columns, captioned by
+    ``strength_note``) and ``estimates`` (id, one column per focus term). Each is a
+    dict with ``key``, ``title``, ``note``, ``headers`` and ``rows`` of ``(is_base,
+    status, anchor, cells)``; the first table carries the row anchors, the others
+    link to them."""
     status_end = 1 + n_settings + 2
     estimates_start = len(headers) - n_terms
-    spans = (("settings", "Settings, status and reason", range(1, status_end)),
-             ("tests", "Counts and specification tests", range(status_end, estimates_start)),
+    strength_start = estimates_start - n_strength
+    spans = (("settings", "Settings, status and reason", range(1, status_end), ""),
+             ("tests", "Counts and specification tests", range(status_end, strength_start), ""),
+             ("strength", "Instrument strength", range(strength_start, estimates_start),
+              strength_note),
              ("estimates", "Estimates of the focus terms (standard errors in parentheses)",
-              range(estimates_start, len(headers))))
+              range(estimates_start, len(headers)), ""))
     out = []
-    for key, title, span in spans:
+    for key, title, span, note in spans:
+        if not span:
+            continue
         cols = [0] + list(span)
         out.append({
-            "key": key, "title": title, "headers": [headers[i] for i in cols],
+            "key": key, "title": title, "note": note, "headers": [headers[i] for i in cols],
             "rows": [(base, status, anchor(cells[0].sort), [cells[i] for i in cols])
                      for base, status, cells in rows],
         })

@@ -365,18 +365,81 @@ class Cell:
     sort: Any = None  # raw value for sorting (numbers stay numbers)
 
 
+#: The instrument-strength columns of variants.csv the report's tables show:
+#: (column, header, how a value is written). What each one is, with its source,
+#: is :func:`strength_note`.
+STRENGTH_COLUMNS = (
+    ("underid_p", "underid. p (KP), all instruments", fmt_p),
+    ("underid_p_transformed", "underid. p (KP), transformed eq.", fmt_p),
+    ("underid_p_level", "underid. p (KP), level eq.", fmt_p),
+    ("rk_f", "KP rk Wald F", lambda x: fmt(x, 2)),
+    ("weak_f_min", "min. cond. F (SW)", lambda x: fmt(x, 2)),
+    ("weak_f_term", "term of min. F", None),
+)
+
+
+def strength_columns(variants: pd.DataFrame) -> list[tuple[str, str, Any]]:
+    """The :data:`STRENGTH_COLUMNS` present in ``variants`` with a value in some row
+    (the level equation's test exists only in system GMM)."""
+    return [c for c in STRENGTH_COLUMNS
+            if c[0] in variants.columns and variants[c[0]].notna().any()]
+
+
+def strength_note(thresholds: Mapping[str, Any]) -> str:
+    """What the instrument-strength columns are, their sources, and what they cannot
+    say: the caption of every table that shows them (one text for all documents)."""
+    weak_f = thresholds.get("weak_f")
+    line = f"{weak_f:g}" if isinstance(weak_f, (int, float)) else "the weak_f threshold"
+    return (
+        "underid. p (KP): p-value of the Kleibergen & Paap (2006) rank test (LM form, "
+        "unit-clustered) of the null that the instruments do not identify the "
+        "coefficients (underidentification); a small p rejects it. It is computed for "
+        "all instruments and, in system GMM, for the transformed- and level-equation "
+        "instruments separately; a variant whose test on all instruments does not reject "
+        "at alpha is not acceptable (rule underidentified). n/a where the chi-squared "
+        "approximation is not valid (too many instruments for the units, or a singular "
+        "covariance; the reason is in unavailable_tests of variants.csv). KP rk Wald F: "
+        "the Wald form divided by its degrees of freedom, a measure of strength without "
+        "critical values here. min. cond. F (SW): the smallest Sanderson & Windmeijer "
+        "(2016) conditional first-stage F over the lagged outcome and the endogenous or "
+        "predetermined terms (which term: the next column), computed with the "
+        "cluster-robust weight (our extension of their homoskedastic statistic). No "
+        "single critical value for weak-instrument size distortion applies to GMM with "
+        "many instruments and clustered errors (the Stock & Yogo tables assume "
+        "homoskedastic two-stage least squares); the rule weak_instruments marks F below "
+        f"{line} only as the rule of thumb of Staiger & Stock (1997), common practice.")
+
+
+#: The instrument-strength rows of the journal tables (table.tex, table.html), each
+#: with what its note says: (variants.csv column, row label, note).
+STRENGTH_ROWS = (
+    ("underid_p", "Underid. {p} (KP)",
+     "underid. p (KP): the Kleibergen & Paap (2006) rank test (LM form, unit-clustered) "
+     "of underidentification of all instruments, n/a where its chi-squared "
+     "approximation is not valid (too many instruments for the units)"),
+    ("weak_f_min", "Min. cond. F (SW)",
+     "min. cond. F (SW): the smallest Sanderson & Windmeijer (2016) conditional "
+     "first-stage F of the lagged outcome and the endogenous or predetermined terms, "
+     "with the cluster-robust weight; no single critical value for weak-instrument "
+     "size distortion applies to GMM with many instruments (F < 10 is a rule of thumb, "
+     "Staiger & Stock 1997, common practice)"),
+)
+
+
 def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str, list[Cell]]]]:
     """Headers and rows ``(is_base, status, cells)`` of the variants table: id,
-    settings, status and reason, counts, test p-values, then each focus term's
+    settings, status and reason, counts, test p-values, evidence and flags, the
+    instrument-strength columns (:func:`strength_columns`), then each focus term's
     estimate with its standard error."""
     v = audit.variants
     settings = list(audit.setting_columns)
     extra = [c for c in ("evidence", "duplicate_of", "flags") if c in v.columns]
+    strength = strength_columns(v)
     headers = (["variant"] + [setting_name(c) for c in settings]
                + ["status", "reason", "instruments", "units", "observations",
                   "Hansen p", "Sargan p", "AR(1) p", "AR(2) p"]
                + (["diff-in-Hansen (levels) p"] if "diff_hansen_level_p" in v.columns else [])
-               + extra + [f"{t} (s.e.)" for t in audit.focus])
+               + extra + [h for _, h, _ in strength] + [f"{t} (s.e.)" for t in audit.focus])
     est = audit.estimates.set_index(["variant", "term"])
     rows = []
     for _, r in v.iterrows():
@@ -391,6 +454,12 @@ def variants_table(audit: AuditFolder) -> tuple[list[str], list[tuple[bool, str,
         for c in extra:
             text = "" if pd.isna(r[c]) else str(r[c]).replace(";", ", ")
             cells.append(Cell(text, text))
+        for c, _, f in strength:
+            if f is None:
+                text = "" if pd.isna(r[c]) else str(r[c])
+                cells.append(Cell(text, text))
+            else:
+                cells.append(Cell(f(r[c]), _num(r[c])))
         for term in audit.focus:
             key = (r["variant"], term)
             if key in est.index:

@@ -17,7 +17,7 @@ from .inputs import AuditFolder
 from .labels import report_option, term_labels
 from .latex import (departure_label, diagnostic_rows, estimate_cells, fails, se_kinds,
                     table_panels)
-from .summary import AuditSummary, summarize
+from .summary import STRENGTH_ROWS, AuditSummary, summarize
 
 FONT = "font-family:'Times New Roman',serif;font-size:10pt"
 RULE = "border-top:1px solid #000"
@@ -41,7 +41,11 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
     names = term_labels(audit)
     use_stars = bool(report_option(audit, "stars", False))
     has_diff = "diff_hansen_level_p" in vrow.columns
-    diag = diagnostic_rows(has_diff, "p")
+    diag = diagnostic_rows(has_diff, "p", vrow.columns)
+    shown = [vid for panel in panels for vid, _, _ in panel]
+    # as in table.tex: a strength row that is n/a in every column says nothing
+    diag = [r for r in diag if r[1] not in {c for c, _, _ in STRENGTH_ROWS}
+            or any(r[2](vrow.loc[vid, r[1]]) != "n/a" for vid in shown)]
 
     def cells(vid, term):
         return estimate_cells(est, vid, term, use_stars, escape, lambda m: f"<sup>{m}</sup>")
@@ -95,8 +99,10 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
             "(Sargan 1958); AR(1), AR(2) p: tests for first- and second-order serial "
             "correlation of the differenced errors (Arellano & Bond 1991), of which AR(2) "
             "must not reject" + ("; difference-in-Hansen p: validity of the level-equation "
-                                 "instruments of system GMM (Blundell & Bond 1998)."
-                                 if has_diff else ".")]
+                                 "instruments of system GMM (Blundell & Bond 1998)"
+                                 if has_diff else "")
+            + "".join("; " + n for c, _, n in STRENGTH_ROWS if c in {r[1] for r in diag})
+            + "."]
     if use_stars:
         note.append("* p < 0.10, ** p < 0.05, *** p < 0.01.")
     if failing:
