@@ -316,9 +316,13 @@ def expand(spec: Spec) -> list[Variant]:
     unique: list[tuple[Spec, tuple, bool, str]] = []
     for vspec, shown, is_base in candidates:
         digest = settings_hash(vspec)
-        if digest in seen:
+        # the same estimation written two ways (a base whose own window equals the
+        # global one, beside a grid member where _apply stored it as no own window) is
+        # one variant: compare the normalised settings; the id stays the written one's
+        same = settings_hash(_with_windows(vspec, {}))
+        if same in seen:
             continue  # identical estimation settings: the earlier one stands (base first)
-        seen[digest] = len(unique)
+        seen[same] = len(unique)
         unique.append((vspec, shown, is_base, digest))
 
     length = ID_LENGTH

@@ -140,6 +140,19 @@ def test_vary_instrument_lags_in_the_grid(folder):
     assert inst.iloc[1] < inst.iloc[0]  # a shorter window, fewer instruments
 
 
+def test_a_base_window_equal_to_the_global_one_is_not_planned_twice(folder):
+    # the base writes the outcome's window [2, 4] although the global window is 2-4;
+    # the grid member with the base's settings stores it as no own window. Same
+    # estimation, so the plan holds it once (it was once planned and fitted twice,
+    # caught only afterwards as a duplicate); the base keeps its written id.
+    spec = _spec(folder, model={"instrument_lags": [2, 4]}, instruments={"last_lag": 4},
+                 vary={"instrument_lags": {"x": [[2, 3], [2, 4]]}})
+    variants = grid.expand(spec)
+    assert [v.settings_dict()["instrument_lags:x"] for v in variants] == ["[2, 4]", "[2, 3]"]
+    assert variants[0].is_base and variants[0].id == grid.settings_hash(spec)[:8]
+    assert variants[1].spec.regressors[0].instrument_lags == (2, 3)
+
+
 @pytest.mark.parametrize("kw, needle", [
     ({"x_role": "exogenous", "x": {"instrument_lags": [2, 3]}},
      "[[model.regressors]] #1 (x) instrument_lags: x is exogenous (it instruments itself)"),
