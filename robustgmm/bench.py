@@ -125,13 +125,8 @@ def _blas_limit(threads: int):
 # small helpers
 # ---------------------------------------------------------------------------
 def _spec(**kw):
-    from .spec import Regressor, Spec
-    base = dict(unit="unit", period="period", outcome="y", outcome_lags=(1,),
-                regressors=(Regressor("x", (0,), "endogenous"), Regressor("w", (0,), "exogenous")),
-                time_effects=True, equations="system", transform="fd", steps=2,
-                errors="robust", first_lag=2, last_lag=None, form="per-period")
-    base.update(kw)
-    return Spec(**base)
+    from .simulate import panel_spec
+    return panel_spec(**kw)
 
 
 def _panel(n_units: int, n_periods: int, seed: int = 1):

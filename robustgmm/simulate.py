@@ -96,6 +96,19 @@ def simulate_panel(n_units: int, n_periods: int, process: PanelProcess = PanelPr
                       arrays, unit="unit", period="period")
 
 
+def panel_spec(**settings):
+    """A :class:`~robustgmm.spec.Spec` for :func:`simulate_panel`'s columns: ``y`` on
+    its first lag, ``x`` (endogenous) and ``w`` (exogenous) at lag 0, with period
+    effects; system GMM in first differences, two-step, robust errors, per-period
+    instruments from lag 2 on. ``settings`` replace any of these fields."""
+    from .spec import Regressor, Spec
+    base = dict(unit="unit", period="period", outcome="y", outcome_lags=(1,),
+                regressors=(Regressor("x", (0,), "endogenous"), Regressor("w", (0,), "exogenous")),
+                time_effects=True, equations="system", transform="fd", steps=2,
+                errors="robust", first_lag=2, last_lag=None, form="per-period")
+    return Spec(**{**base, **settings})
+
+
 def long_frame(units, periods, arrays: dict[str, np.ndarray], *, unit: str,
                period: str) -> pd.DataFrame:
     """A long frame (unit, period, then one column per (N, T) array), sorted by unit

@@ -137,6 +137,11 @@ VARY = {
     "drop": Key("drop", v_drop_list),
     "roles": TABLE, "lags": TABLE, "instrument_lags": TABLE, "sample": TABLE,
 }
+#: The ``[audit.vary]`` tables held per variable (``{variable: list of values}``) →
+#: the check of each value; each fills the :class:`~robustgmm.spec.Vary` field of its
+#: name with ``(variable, values)`` pairs.
+VARY_PER_NAME = {"roles": v_role, "lags": v_lags(0, "0 is the current period"),
+                 "instrument_lags": v_window}
 #: ``[audit.thresholds]`` keys → :class:`~robustgmm.spec.Thresholds` fields.
 THRESHOLDS = {f.name: Key(f.name, threshold_check(f.name)) for f in dataclasses.fields(Thresholds)}
 
@@ -403,34 +408,16 @@ class Reader:
             got = self._vary_list(table[key], spec.check, f"{header} {key}", path + (key,))
             if got is not None:
                 values[spec.field] = got
-        if "roles" in table:
-            roles = self.table(table, "roles", "[audit.vary.roles]", path + ("roles",))
+        for key, check in VARY_PER_NAME.items():
+            if key not in table:
+                continue
+            head = f"[audit.vary.{key}]"
             pairs = []
-            for reg, raw in roles.items():
-                got = self._vary_list(raw, v_role, f"[audit.vary.roles] {key_text(reg)}",
-                                      path + ("roles", reg))
-                if got is not None:
-                    pairs.append((reg, got))
-            values["roles"] = tuple(pairs)
-        if "lags" in table:
-            lags = self.table(table, "lags", "[audit.vary.lags]", path + ("lags",))
-            pairs = []
-            for reg, raw in lags.items():
-                got = self._vary_list(raw, v_lags(0, "0 is the current period"),
-                                      f"[audit.vary.lags] {key_text(reg)}", path + ("lags", reg))
-                if got is not None:
-                    pairs.append((reg, got))
-            values["lags"] = tuple(pairs)
-        if "instrument_lags" in table:
-            head = "[audit.vary.instrument_lags]"
-            windows = self.table(table, "instrument_lags", head, path + ("instrument_lags",))
-            pairs = []
-            for name, raw in windows.items():
-                got = self._vary_list(raw, v_window, f"{head} {key_text(name)}",
-                                      path + ("instrument_lags", name))
+            for name, raw in self.table(table, key, head, path + (key,)).items():
+                got = self._vary_list(raw, check, f"{head} {key_text(name)}", path + (key, name))
                 if got is not None:
                     pairs.append((name, got))
-            values["instrument_lags"] = tuple(pairs)
+            values[key] = tuple(pairs)
         if "sample" in table:
             raw = table["sample"]
             if not isinstance(raw, list) or not all(isinstance(s, dict) for s in raw):

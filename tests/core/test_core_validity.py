@@ -13,7 +13,7 @@ import warnings
 import numpy as np
 import pytest
 
-from helpers_core import sim_panel, sim_spec
+from helpers_core import numeric_windmeijer_d, sim_panel, sim_spec
 from robustgmm.core import GMMProblem, fit, invalid_reason
 from robustgmm.core import diagnostics
 from robustgmm.core.linalg import identified_columns
@@ -424,13 +424,5 @@ def test_windmeijer_d_is_the_derivative_with_a_singular_weight():
     assert res.counts.instruments > res.counts.units
     assert any("singular" in w for w in res.warnings)
     D = res.diagnostics["windmeijer_d"]
-    prob = GMMProblem(spec, panel)
-    b1 = res.diagnostics["beta_one_step"]
-    numeric = np.zeros_like(D)
-    for k in range(len(b1)):
-        h = 1e-6 * (1.0 + abs(b1[k]))
-        up, down = b1.copy(), b1.copy()
-        up[k] += h
-        down[k] -= h
-        numeric[:, k] = (prob.two_step_from(up)[0] - prob.two_step_from(down)[0]) / (2 * h)
+    numeric = numeric_windmeijer_d(spec, panel, res.diagnostics["beta_one_step"], 1e-6)
     assert np.max(np.abs(D - numeric)) < 1e-4 * np.max(np.abs(numeric))

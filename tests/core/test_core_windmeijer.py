@@ -15,7 +15,7 @@ import os
 import numpy as np
 import pytest
 
-from helpers_core import sim_panel, sim_spec
+from helpers_core import numeric_windmeijer_d, sim_panel, sim_spec
 from robustgmm.core import GMMProblem, fit
 from robustgmm.simulate import PanelProcess
 
@@ -30,18 +30,11 @@ def test_windmeijer_d_is_derivative_of_two_step_map(equations, transform, form):
     spec = sim_spec(equations=equations, transform=transform, form=form, steps=2, time_effects=True)
     res = fit(spec, panel)
     D = res.diagnostics["windmeijer_d"]
-    prob = GMMProblem(spec, panel)
     b1 = res.diagnostics["beta_one_step"]
-    numeric = np.zeros_like(D)
-    for k in range(len(b1)):
-        h = 1e-5 * (1.0 + abs(b1[k]))
-        up, down = b1.copy(), b1.copy()
-        up[k] += h
-        down[k] -= h
-        numeric[:, k] = (prob.two_step_from(up)[0] - prob.two_step_from(down)[0]) / (2 * h)
+    numeric = numeric_windmeijer_d(spec, panel, b1, 1e-5)
     np.testing.assert_allclose(D, numeric, rtol=1e-5, atol=1e-7)
     # and the two-step map at the one-step estimate is the reported estimate
-    np.testing.assert_allclose(prob.two_step_from(b1)[0], res.params, rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(GMMProblem(spec, panel).two_step_from(b1)[0], res.params, rtol=1e-12, atol=1e-12)
 
 
 def _reps(default):
