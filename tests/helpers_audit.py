@@ -28,6 +28,21 @@ def write_panel(folder: Path, n_units=40, n_periods=6, process=PanelProcess(), s
     return path
 
 
+def write_frame(frame, path: Path) -> Path:
+    """Write ``frame`` in the format its file ending names (csv, parquet, dta, xlsx),
+    without the index."""
+    path = Path(path)
+    if path.suffix == ".parquet":
+        frame.to_parquet(path, index=False)
+    elif path.suffix == ".dta":
+        frame.to_stata(path, write_index=False)
+    elif path.suffix == ".xlsx":
+        frame.to_excel(path, index=False)
+    else:
+        frame.to_csv(path, index=False)
+    return path
+
+
 def model_dict(vary=None, **sections) -> dict:
     d = {
         "data": {"file": "panel.csv", "unit": "unit", "period": "period"},

@@ -130,6 +130,28 @@ def started_pids(counter: Path) -> list[int]:
             if line.startswith("start ")]
 
 
+def kill_started_worker(proc, counter: Path, index: int, timeout: float = 300.0):
+    """Wait until ``index + 1`` processes have started a share group for the run
+    ``proc`` (the harness's ``counter``), SIGKILL the one at ``index`` (it is then in
+    its group's paced start) and wait for ``proc`` to end; return its (stdout,
+    stderr). ``proc`` is killed if anything goes wrong on the way."""
+    import signal
+    import time
+    try:
+        deadline = time.monotonic() + timeout
+        while len(started_pids(counter)) <= index:
+            assert proc.poll() is None, proc.communicate()
+            assert time.monotonic() < deadline, "no worker started the group in time"
+            time.sleep(0.02)
+        victim = started_pids(counter)[index]
+        assert victim != proc.pid
+        os.kill(victim, signal.SIGKILL)
+        return proc.communicate(timeout=timeout)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+
+
 def groups_started(counter: Path) -> int:
     if not counter.exists():
         return 0

@@ -32,8 +32,8 @@ from robustgmm.audit import cluster, grid, runner
 from robustgmm.errors import InputError
 
 from helpers_audit import run_each
-from helpers_reliability import (harness_env, install_harness, output_files, run_cli,
-                                 started_pids, write_model)
+from helpers_reliability import (harness_env, install_harness, kill_started_worker,
+                                 output_files, run_cli, started_pids, write_model)
 
 VARY = {"equations": ["difference", "system"], "transform": ["fd", "fod"], "steps": [1, 2],
         "form": ["per-period", "collapsed"]}  # 16 variants in 8 share groups
@@ -306,17 +306,7 @@ def test_worker_killed_mid_run_loses_nothing(dask_cluster, project, local_files,
     proc = subprocess.Popen(cli_command("audit", project, "--out", out),
                             env=env, stdout=subprocess.PIPE,
                             stderr=subprocess.PIPE, text=True)
-    try:
-        deadline = time.monotonic() + 300
-        while len(started_pids(counter)) == before and time.monotonic() < deadline:
-            assert proc.poll() is None, proc.communicate()
-            time.sleep(0.05)
-        victim = started_pids(counter)[before]  # a worker now in its group's paced start
-        os.kill(victim, signal.SIGKILL)
-        stdout, stderr = proc.communicate(timeout=300)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
+    _, stderr = kill_started_worker(proc, counter, before)
     assert proc.returncode == 0, stderr
     run = json.loads((out / "manifest.json").read_text())["run"]
     assert run["worker_deaths"] >= 1 and run["retried_alone"] >= 1 and "lost" not in run

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from helpers_audit import write_frame
 from robustgmm.data import build_panel, load_panel, read_frame
 from robustgmm.errors import InputError
 from robustgmm.modelfile import spec_from_dict
@@ -107,15 +108,7 @@ def test_missing_values_drop_only_their_rows():
 def test_reader_round_trip(tmp_path, ext):
     df = frame(n_units=4)
     df["x"] = df["x"].round(6)
-    path = tmp_path / f"panel{ext}"
-    if ext == ".csv":
-        df.to_csv(path, index=False)
-    elif ext == ".parquet":
-        df.to_parquet(path, index=False)
-    elif ext == ".dta":
-        df.to_stata(path, write_index=False)
-    else:
-        df.to_excel(path, index=False)
+    path = write_frame(df, tmp_path / f"panel{ext}")
     spec = make_spec(tmp_path, file=path.name)
     panel = load_panel(spec)
     expected = build_panel(df, spec)

@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from helpers_audit import write_frame
 from robustgmm.cli import main
 from robustgmm.simulate import PanelProcess, simulate_panel
 
@@ -87,12 +88,8 @@ def data_case(name, mutate, *culprit, ext=".csv", model_edit=lambda m: m):
         path = tmp / f"panel{ext}"
         if isinstance(frame, (bytes, str)):
             (path.write_bytes if isinstance(frame, bytes) else path.write_text)(frame)
-        elif ext == ".parquet":
-            frame.to_parquet(path, index=False)
-        elif ext == ".xlsx":
-            frame.to_excel(path, index=False)
         else:
-            frame.to_csv(path, index=False)
+            write_frame(frame, path)
         model = model_edit(GOOD_MODEL).replace('"panel.csv"', f'"panel{ext}"')
         (tmp / "model.toml").write_text(model)
         return ["fit", tmp / "model.toml"]

@@ -26,8 +26,8 @@ from robustgmm.audit import audit, write_audit
 from helpers_audit import (CountingFamily, CountingFit, KillWorker, is_fod_collapsed_two_step,
                            make_spec, outcome_text, run_each)
 from helpers_reliability import (count_estimations, groups_started, harness_env,
-                                 install_harness, output_files, robustgmm_command,
-                                 started_pids, tree, write_model)
+                                 install_harness, kill_started_worker, output_files,
+                                 robustgmm_command, tree, write_model)
 
 VARY = {"transform": ["fd", "fod"], "steps": [1, 2], "form": ["per-period", "collapsed"]}
 CONTRACT = ("variants.csv", "estimates.csv", "bounds.csv", "verdict.json")
@@ -129,16 +129,8 @@ def test_worker_killed_from_outside_during_a_command_line_audit(tmp_path):
     out = tmp_path / "out"
     proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    try:
-        # the third group has started: its worker sleeps in the pace, mid-group
-        assert _wait_for(lambda: len(started_pids(counter)) >= 3, proc=proc), proc.communicate()
-        victim = started_pids(counter)[2]
-        assert victim != proc.pid
-        os.kill(victim, signal.SIGKILL)
-        _, err = proc.communicate(timeout=300)
-    finally:
-        if proc.poll() is None:
-            proc.kill()
+    # the third group to start: its worker sleeps in the pace, mid-group
+    _, err = kill_started_worker(proc, counter, 2)
     assert proc.returncode == 0, err
     assert "Traceback" not in err
     manifest = json.loads((out / "manifest.json").read_text())
