@@ -195,6 +195,8 @@ def _drop(spec: Spec, r: Reader, names) -> None:
                 continue
             hit = [label for var, _, label in spec.regressor_terms()
                    if var == name and label in focus]
+            # the long-run effect is the regressor's too: without it, nothing to judge
+            hit += [label for label in (long_run_label(name),) if label in focus]
             if hit:
                 r.add("[audit.vary] drop", f"{fmt(name)} holds the focus term "
                       f"{', '.join(hit)}; a focus term cannot be dropped", shown)

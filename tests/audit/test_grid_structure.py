@@ -121,6 +121,8 @@ def test_model_file_round_trip(tmp_path):
     ({"outcome_lags": [[1], [1]]}, {}, "[1] is listed twice"),
     ({"drop": [[], ["married"]]}, {}, '[audit.vary] drop = [[], ["married"]]: "married" is not a regressor'),
     ({"drop": [["x"]]}, {"focus": ["x[t]"]}, '"x" holds the focus term x[t]; a focus term cannot be dropped'),
+    ({"drop": [[], ["x"]]}, {"focus": ["x[long-run]"]},
+     '"x" holds the focus term x[long-run]; a focus term cannot be dropped'),
     ({"drop": ["x"]}, {}, '[audit.vary] drop = ["x"]: "x" is not valid'),
 ])
 def test_bad_structure_keys_are_one_line_errors(tmp_path, vary, audit_section, needle):
