@@ -136,6 +136,8 @@ def test_demo_regenerates_the_committed_output(tmp_path, monkeypatch):
     _compare_csv(out / "variants.csv", COMMITTED / "variants.csv", ["variant"])
     _compare_csv(out / "estimates.csv", COMMITTED / "estimates.csv", ["variant", "term"])
     _compare_csv(out / "bounds.csv", COMMITTED / "bounds.csv", ["variant", "term"])
+    # the small Monte Carlo: a replication depends only on (seed, rep), not on the jobs
+    _compare_csv(out / "simulation.csv", COMMITTED / "simulation.csv", ["variant", "term"])
     new = json.loads((out / "verdict.json").read_text())
     old = json.loads((COMMITTED / "verdict.json").read_text())
     assert {t: v["verdict"] for t, v in new["terms"].items()} == \
@@ -155,6 +157,10 @@ def test_committed_demo_shows_a_robust_and_a_fragile_conclusion():
     assert verdicts["staff_hours[t]"] == "fragile"
     md = (COMMITTED / "report.md").read_text()
     assert "## Known truth" in md
+    # the demo's small Monte Carlo gives the report its simulation section
+    assert "## How these estimators behave at this sample size" in md
+    manifest = json.loads((COMMITTED / "manifest.json").read_text())
+    assert manifest["simulation"]["reps"] == demo.DEMO_REPS
     truth = json.loads((COMMITTED / "truth.json").read_text())["parameters"]
     assert truth == demo.DEMO_TRUTH
     for fig in ("spec_curve_staff_hours_t", "hansen_drift", "ar_band_orders_t-1", "diagnostics"):
