@@ -242,17 +242,22 @@ def v_lags(minimum: int, what: str) -> Callable:
     return check
 
 
-def v_name_list(v):
+def _names(v, what: str, example: str) -> tuple:
+    """A list of distinct non-blank names (``what``: "column name", ...)."""
     if not isinstance(v, list):
-        raise Bad("must be a list of column names, e.g. [\"z\"]")
+        raise Bad(f"must be a list of {what}s, e.g. {example}")
     out = []
     for item in v:
         if not isinstance(item, str) or not item.strip():
-            raise Bad(f"{fmt(item)} is not a column name")
+            raise Bad(f"{fmt(item)} is not a {what}")
         if item in out:
             raise Bad(f"{fmt(item)} is listed twice")
         out.append(item)
     return tuple(out)
+
+
+def v_name_list(v):
+    return _names(v, "column name", '["z"]')
 
 
 def v_window(v):
@@ -286,16 +291,7 @@ def v_min_units(v):
 
 def v_drop_list(v):
     """A set of regressors to leave out (``[]`` leaves none out)."""
-    if not isinstance(v, list):
-        raise Bad('must be a list of regressor names, e.g. ["married"] (or [] for none)')
-    out = []
-    for item in v:
-        if not isinstance(item, str) or not item.strip():
-            raise Bad(f"{fmt(item)} is not a regressor name")
-        if item in out:
-            raise Bad(f"{fmt(item)} is listed twice")
-        out.append(item)
-    return tuple(out)
+    return _names(v, "regressor name", '["married"] (or [] for none)')
 
 
 def v_scalar_list(v):

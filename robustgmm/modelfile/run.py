@@ -11,9 +11,7 @@ other section's); :func:`check_run` checks the values while the model file is re
 from __future__ import annotations
 
 from dataclasses import dataclass
-from pathlib import Path
 
-from ..errors import InputError
 from .checks import MISSING
 
 
@@ -44,14 +42,5 @@ def check_run(table: dict, reader) -> RunSettings:
 def read_run(path) -> RunSettings:
     """The ``[run]`` settings of the model file at ``path`` (which
     :func:`robustgmm.modelfile.read_model` has read; a bad value raises its line)."""
-    from . import load_toml
-    from .schema import Reader
-    path = Path(path)
-    table = load_toml(path).get("run", {})
-    if not isinstance(table, dict):
-        raise InputError(f"{path}: [run]: must be a table (a [section] with keys)")
-    reader = Reader(str(path))
-    settings = check_run(table, reader)
-    if reader.problems:
-        raise InputError(reader.problems)
-    return settings
+    from .schema import read_section
+    return read_section(path, "run", check_run)

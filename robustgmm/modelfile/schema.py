@@ -20,6 +20,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
+from ..errors import InputError
 from ..options import DATA_EXTENSIONS
 from ..spec import GmmInstrument, Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
@@ -458,3 +459,19 @@ class Reader:
                 continue
             out.append(parsed)
         return tuple(out) if ok else None
+
+
+def read_section(path, section: str, check: Callable):
+    """The settings of the side section ``[section]`` (not part of the ``Spec``) of the
+    model file at ``path``, which :func:`robustgmm.modelfile.read_model` has read:
+    ``check(table, reader)`` gives them; a bad value raises its one line."""
+    from . import load_toml
+    path = Path(path)
+    table = load_toml(path).get(section, {})
+    if not isinstance(table, dict):
+        raise InputError(f"{path}: [{section}]: must be a table (a [section] with keys)")
+    reader = Reader(str(path))
+    settings = check(table, reader)
+    if reader.problems:
+        raise InputError(reader.problems)
+    return settings

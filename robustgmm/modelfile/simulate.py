@@ -16,9 +16,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from pathlib import Path
 
-from ..errors import InputError
 from ..options import Initial
 from .checks import MISSING, key_text
 
@@ -85,14 +83,5 @@ def check_simulate(table: dict, reader) -> SimulateSettings:
 def read_simulate(path) -> SimulateSettings:
     """The ``[simulate]`` settings of the model file at ``path`` (which
     :func:`robustgmm.modelfile.read_model` has read; a bad value raises its line)."""
-    from . import load_toml
-    from .schema import Reader
-    path = Path(path)
-    table = load_toml(path).get("simulate", {})
-    if not isinstance(table, dict):
-        raise InputError(f"{path}: [simulate]: must be a table (a [section] with keys)")
-    reader = Reader(str(path))
-    settings = check_simulate(table, reader)
-    if reader.problems:
-        raise InputError(reader.problems)
-    return settings
+    from .schema import read_section
+    return read_section(path, "simulate", check_simulate)
