@@ -336,12 +336,19 @@ def test_a_symlink_planted_in_the_folder_is_replaced_not_followed(tmp_path, caps
 # ---------------------------------------------------------------------------
 # the output-folder guard
 # ---------------------------------------------------------------------------
-def test_foreign_folder_is_left_untouched_without_force(tmp_path, capsys):
+def _model_and_foreign_folder(tmp_path, name: str, files: dict):
+    """A model file and a folder ``name`` holding someone else's ``files``."""
     model = write_model(tmp_path / "project", {"steps": [1, 2]})
-    out = tmp_path / "thesis"
+    out = tmp_path / name
     out.mkdir()
-    (out / "chapter1.tex").write_text("precious")
-    (out / "report.html").write_text("my own report")
+    for file, text in files.items():
+        (out / file).write_text(text)
+    return model, out
+
+
+def test_foreign_folder_is_left_untouched_without_force(tmp_path, capsys):
+    model, out = _model_and_foreign_folder(tmp_path, "thesis", {
+        "chapter1.tex": "precious", "report.html": "my own report"})
     before = tree(out)
     for command in (["audit", model, "--out", out], ["demo", "--out", out]):
         code, _, err = _main(command, capsys)
@@ -352,11 +359,8 @@ def test_foreign_folder_is_left_untouched_without_force(tmp_path, capsys):
 
 def test_a_foreign_manifest_does_not_make_a_folder_ours(tmp_path, capsys):
     """A web project's manifest.json is not a robustgmm audit."""
-    model = write_model(tmp_path / "project", {"steps": [1, 2]})
-    out = tmp_path / "webapp"
-    out.mkdir()
-    (out / "manifest.json").write_text('{"name": "my app", "start_url": "/"}')
-    (out / "index.html").write_text("<html></html>")
+    model, out = _model_and_foreign_folder(tmp_path, "webapp", {
+        "manifest.json": '{"name": "my app", "start_url": "/"}', "index.html": "<html></html>"})
     before = tree(out)
     code, _, err = _main(["audit", model, "--out", out], capsys)
     assert code == cli.EXIT_INPUT and "--force" in err
