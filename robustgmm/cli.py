@@ -14,7 +14,6 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import json
 import math
 import os
 import sys
@@ -25,14 +24,13 @@ from typing import Sequence
 
 from . import __version__
 from .errors import DataWarning, EstimationError, InputError
+from .paths import (STDOUT, cannot_write, check_audit_inputs, check_json_path, check_model_path,
+                    check_name_length, check_output_folder)
 from .terminal import (audit_summary, format_fit_summary, fragile_terms, nothing_varied_note,
                        plan_counts_line, plan_table, run_line, run_notes, simulation_summary)
 
 EXIT_OK, EXIT_INTERNAL, EXIT_INPUT, EXIT_FRAGILE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 EXIT_TERMINATED = 143  # 128 + SIGTERM, as shells report it
-#: Written into an output folder as soon as robustgmm starts using it, so that a
-#: rerun of an interrupted audit (no manifest.json yet) is recognised as ours.
-OUTPUT_MARKER = ".robustgmm-output"  # robustgmm.output.MARKER
 DEBUG_ENV = "ROBUSTGMM_DEBUG"
 #: The estimation's memory budget in MB (read by the core; checked here first).
 MEMORY_ENV = "ROBUSTGMM_MEMORY_MB"
@@ -174,189 +172,6 @@ def cluster_backend(args, model: Path):
 
 
 # ---------------------------------------------------------------------------
-# path checks
-# ---------------------------------------------------------------------------
-def check_model_path(path: str) -> Path:
-    p = Path(path)
-    if p.suffix.lower() in (".csv", ".parquet", ".dta", ".xlsx") and p.is_file():
-        raise InputError(f"{path}: this is a data file; pass the model file (.toml) that names it")
-    return p
-
-
-def check_name_length(path, what: str) -> None:
-    """A path whose folder or file names the file system cannot hold (255 bytes per
-    name on common file systems), as one line before anything is written."""
-    try:
-        limit = os.pathconf(".", "PC_NAME_MAX")
-    except (OSError, ValueError, AttributeError):
-        limit = 255
-    for part in Path(path).parts:
-        size = len(part.encode("utf-8", "surrogateescape"))
-        if size > limit:
-            shown = part if len(part) <= 40 else part[:37] + "..."
-            raise InputError(f"{shown}: {what} names a file or folder of {size} bytes; the "
-                             f"file system allows at most {limit}: choose a shorter name")
-
-
-def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
-    """Create (or accept) an output folder and check that it can be written.
-
-    Refuses a non-empty folder that holds neither an audit (``manifest.json``) nor
-    the marker robustgmm leaves when it starts using a folder, unless ``force``.
-    """
-    check_name_length(path, what)
-    out = Path(path)
-    if out.exists() and not out.is_dir():
-        raise InputError(f"{path}: {what} must be a folder; this is a file")
-    if out.is_dir():
-        try:
-            entries = [e.name for e in out.iterdir()]
-        except OSError as exc:
-            raise InputError(f"{path}: cannot read the {what} folder ({exc.strerror or exc})") from None
-        ours = OUTPUT_MARKER in entries or (
-            "manifest.json" in entries and _is_our_manifest(out / "manifest.json"))
-        if entries and not ours and not force:
-            raise InputError(
-                f"{path}: folder exists, is not empty and holds no robustgmm output; "
-                "choose a new folder or add --force to write into it")
-    else:
-        try:
-            out.mkdir(parents=True)
-        except OSError as exc:
-            raise InputError(f"{path}: cannot create the {what} folder "
-                             f"({exc.strerror or type(exc).__name__})") from None
-    try:  # os.access is not reliable (e.g. for root or on network drives): try a write
-        from .output import write_record
-        write_record(out)
-    except OSError as exc:
-        raise InputError(f"{path}: cannot write into the {what} folder "
-                         f"({exc.strerror or type(exc).__name__})") from None
-    return out
-
-
-def _is_our_manifest(path: Path) -> bool:
-    """True when ``path`` is the manifest of a robustgmm audit (a web project or
-    another tool may well have a ``manifest.json`` of its own)."""
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return False
-    return isinstance(data, dict) and data.get("package") == "robustgmm"
-
-
-def _cannot_write(folder, exc: OSError) -> InputError:
-    """A failed output write (full disk, read-only or vanished folder) as one line.
-    The writers are atomic, so no half-written file is left behind."""
-    where = f" ({Path(exc.filename).name})" if getattr(exc, "filename", None) else ""
-    return InputError(f"{folder}: cannot write the output files{where}: "
-                      f"{exc.strerror or type(exc).__name__}; "
-                      "files already there were left as they were")
-
-
-#: ``--json -``: write the JSON to standard output instead of a file.
-STDOUT = "-"
-
-
-def check_json_path(path: str, protected=()) -> Path | None:
-    """The file ``fit --json`` may write (None for ``-``, standard output).
-
-    Only a regular file (or a new name) in an existing-or-creatable folder is
-    replaced: a device, a pipe, a symlink or a folder is refused (replacing
-    ``/dev/null`` or ``/dev/stdout`` by a file was a bug), and so is a path that is
-    one of ``protected`` (the model and data files) or inside an audit's cache."""
-    if path == STDOUT:
-        return None
-    check_name_length(path, "--json")
-    out = Path(path)
-    from .atomic import not_regular
-    kind = not_regular(out)
-    if kind == "folder":
-        raise InputError(f"{path}: --json must name a file; this is a folder")
-    if kind is not None:
-        raise InputError(f"{path}: --json would replace {kind}, not a regular file; name a "
-                         f"new or regular file (or use --json {STDOUT} for standard output)")
-    parent = out.parent
-    while not parent.exists() and parent != parent.parent:
-        parent = parent.parent
-    if parent.exists() and not parent.is_dir():
-        raise InputError(f"{path}: --json cannot be written: {parent} is a file, not a folder")
-    _refuse_inputs(out, protected, "--json")
-    if _inside_audit_cache(out):
-        raise InputError(f"{path}: --json points inside the cache of an audit; "
-                         "write it somewhere else")
-    return out
-
-
-def _same_file(a: Path, b: Path) -> bool:
-    try:
-        return a.exists() and b.exists() and os.path.samefile(a, b)
-    except OSError:
-        return False
-
-
-def _refuse_inputs(target: Path, protected, what: str) -> None:
-    """An output path must never be one of the inputs (model file, data file)."""
-    for label, path in protected:
-        if path is not None and _same_file(target, Path(path)):
-            raise InputError(f"{target}: {what} would overwrite the {label} {path}; "
-                             "choose another output")
-
-
-def _inside_audit_cache(path: Path) -> bool:
-    """Whether ``path`` lies in the ``.cache`` folder of a robustgmm output folder."""
-    try:
-        resolved = path.resolve()
-    except (OSError, RuntimeError):
-        return False
-    for folder in [resolved, *resolved.parents]:
-        if folder.name == ".cache" and (
-                (folder.parent / OUTPUT_MARKER).exists()
-                or _is_our_manifest(folder.parent / "manifest.json")):
-            return True
-    return False
-
-
-def check_audit_inputs(out: Path, spec, model: Path) -> None:
-    """Refuse an ``--out`` folder where an audit would overwrite or delete an input:
-    the model or data file at the place of an output file (``bounds.csv``, a report
-    document, anything under ``figures/`` or ``.cache/``), or a folder inside the
-    cache of another audit."""
-    from .output import OUTPUT_NAMES
-    if _inside_audit_cache(out):
-        raise InputError(f"{out}: --out is inside the cache of another audit; "
-                         "choose another folder")
-    for label, path in (("model file", model), ("data file", spec.data_file)):
-        if path is None:
-            continue
-        try:
-            rel = Path(path).resolve().relative_to(out.resolve())
-        except (ValueError, OSError, RuntimeError):
-            continue
-        if rel.parts and (str(rel) in OUTPUT_NAMES or rel.parts[0] in ("figures", ".cache")):
-            raise InputError(f"{path}: the audit would overwrite the {label} ({rel} is one "
-                             f"of its output files in {out}); move the {label} or choose "
-                             "another --out folder")
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-
-# ---------------------------------------------------------------------------
 # subcommands
 # ---------------------------------------------------------------------------
 def _out(text: str = "") -> None:
@@ -394,8 +209,6 @@ def cmd_fit(args) -> int:
                              f"({exc.strerror or type(exc).__name__})") from None
         _out(f"\nWrote {json_path}")
     return EXIT_OK
-
-
 
 
 def _plan_frame(spec):
@@ -490,7 +303,7 @@ def _run_audit(spec, out: Path, args, backend):
         try:
             write_audit(result, out, model_file=Path(args.model), report=_report_builder())
         except OSError as exc:
-            raise _cannot_write(args.out, exc) from None
+            raise cannot_write(args.out, exc) from None
     return result
 
 
@@ -536,17 +349,9 @@ def cmd_simulate(args) -> int:
         try:
             write_simulation(sim, out, model_file=Path(args.model))
         except OSError as exc:
-            raise _cannot_write(args.out, exc) from None
+            raise cannot_write(args.out, exc) from None
     _out(simulation_summary(sim, out))
     return EXIT_OK
-
-
-
-
-
-
-
-
 
 
 def _report_builder():
@@ -578,7 +383,7 @@ def cmd_report(args) -> int:
             remove_stale(folder, [f for f in old if f not in CONTRACT_FILES], written)
             write_record(folder, [*(f for f in old if f in CONTRACT_FILES), *written])
         except OSError as exc:  # a read-only folder, a full disk
-            raise _cannot_write(args.dir, exc) from None
+            raise cannot_write(args.dir, exc) from None
     _out(f"Wrote the report in {folder}")
     return EXIT_OK
 
@@ -589,7 +394,7 @@ def cmd_demo(args) -> int:
     try:
         run_demo(out, jobs=args.jobs)
     except OSError as exc:
-        raise _cannot_write(args.out, exc) from None
+        raise cannot_write(args.out, exc) from None
     _out(f"Wrote the demo audit to {out}")
     return EXIT_OK
 

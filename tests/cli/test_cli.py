@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from robustgmm import cli
+from robustgmm import cli, paths
 from robustgmm.cli import main
 from robustgmm.simulate import PanelProcess, simulate_panel
 
@@ -273,10 +273,13 @@ def test_audit_wiring_and_fail_on_fragile(project, capsys, fake_audit):
 
 
 def test_interrupted_audit_folder_can_be_reused(project, capsys, fake_audit):
-    # an interrupted run leaves the marker and a cache but no manifest.json
+    # an interrupted run leaves the marker and a cache but no manifest.json; the
+    # command line's checks know the marker by the word the writer uses
+    from robustgmm.output import MARKER
+    assert paths.OUTPUT_MARKER == MARKER
     out = project / "audit"
     out.mkdir()
-    (out / cli.OUTPUT_MARKER).write_text("{}")
+    (out / paths.OUTPUT_MARKER).write_text("{}")
     (out / ".cache").mkdir()
     code, _, err = run(["audit", project / "model.toml", "--out", out], capsys)
     assert code == 0, err

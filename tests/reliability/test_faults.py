@@ -19,7 +19,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
-from robustgmm import cli, core, atomic as io
+from robustgmm import cli, core, paths, atomic as io
 from robustgmm.audit import grid, runner
 from robustgmm.audit import audit, write_audit
 
@@ -426,7 +426,7 @@ def test_cache_folder_that_cannot_exist_runs_without_cache(tmp_path, capsys, mon
     model = write_model(tmp_path / "project", {"steps": [1, 2]})
     out = tmp_path / "out"
     out.mkdir()
-    (out / cli.OUTPUT_MARKER).write_text("{}")
+    (out / paths.OUTPUT_MARKER).write_text("{}")
     (out / ".cache").write_text("a file where the cache folder belongs")
     monkeypatch.setattr(cli, "_report_builder", lambda: None)
     code = cli.main(["audit", str(model), "--out", str(out), "--jobs", "1"])

@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from robustgmm import cli, core
+from robustgmm import cli, core, paths
 from robustgmm.audit import grid
 from robustgmm.audit import audit
 from robustgmm.errors import EstimationError
@@ -325,7 +325,7 @@ def test_a_symlink_planted_in_the_folder_is_replaced_not_followed(tmp_path, caps
     precious.write_text("keep me\n")
     out = tmp_path / "out"
     out.mkdir()
-    (out / cli.OUTPUT_MARKER).write_text("{}")
+    (out / paths.OUTPUT_MARKER).write_text("{}")
     (out / "variants.csv").symlink_to(precious)
     code, _, err = _main(["audit", model, "--out", out, "--jobs", "1", "--no-cache"], capsys)
     assert code == 0, err
