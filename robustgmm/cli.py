@@ -89,7 +89,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--out", metavar="DIR", default=None,
                    help="output folder (required, except with --plan, which writes nothing)")
     p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
-                   help="parallel workers (-1 = every core; default: the runner's choice)")
+                   help="parallel workers at most (-1 = every core, the default); they "
+                        "start only when the estimated work repays their start-up")
+    add_start_workers_option(p)
     p.add_argument("--plan", action="store_true",
                    help="list the variants and their instrument counts without estimating")
     p.add_argument("--no-cache", action="store_true", help="do not reuse or keep cached variants")
@@ -115,7 +117,9 @@ def build_parser() -> argparse.ArgumentParser:
                    help="replications (default 200, at least 10)")
     p.add_argument("--seed", type=_whole, default=0, metavar="S", help="seed (default 0)")
     p.add_argument("--jobs", type=_jobs, default=None, metavar="N",
-                   help="parallel workers (-1 = every core)")
+                   help="parallel workers at most (-1 = every core, the default); they "
+                        "start only when the estimated work repays their start-up")
+    add_start_workers_option(p)
     p.add_argument("--initial", choices=("stationary", "data"), default=None,
                    help="initial conditions: stationary (default) or the data's first-period "
                         "deviations from the unit means (wins over [simulate] initial)")
@@ -169,6 +173,17 @@ def cluster_backend(args, model: Path):
     address, where = target
     with cluster.connect(address, where):
         yield "dask"
+
+
+def add_start_workers_option(p) -> None:
+    p.add_argument("--start-workers", action="store_true",
+                   help="start the --jobs worker processes even when the work looks too "
+                        "small to repay them (for measuring and testing)")
+
+
+def say(line: str) -> None:
+    """One line of information on stderr (where the work runs, ...)."""
+    print(f"robustgmm: {line}", file=sys.stderr, flush=True)
 
 
 # ---------------------------------------------------------------------------
@@ -294,7 +309,7 @@ def _run_audit(spec, out: Path, args, backend):
 
     with FolderLock(out, "audit"):  # one audit per folder, for the whole run
         kw = {} if backend is None else {"backend": backend}
-        result = run_audit(spec, jobs=args.jobs,
+        result = run_audit(spec, jobs=args.jobs, start_workers=args.start_workers, notify=say,
                            cache_dir=None if args.no_cache else out / ".cache",
                            progress=sys.stderr.isatty(), **kw,
                            **({} if args.simulate is None else
@@ -344,6 +359,7 @@ def cmd_simulate(args) -> int:
         if args.initial is not None:
             world["initial"] = args.initial
         sim = simulate(spec, reps=args.reps, seed=args.seed, jobs=args.jobs,
+                       start_workers=args.start_workers, notify=say,
                        cache_dir=None if args.no_cache else out / ".cache",
                        progress=sys.stderr.isatty(), backend=backend, **world)
         try:

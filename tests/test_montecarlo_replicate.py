@@ -46,7 +46,8 @@ def test_summary_formulas_by_hand():
 
 def test_deterministic_across_jobs_and_cache(spec, tmp_path):
     one = rp.simulate(spec, reps=10, seed=5, jobs=1)
-    two = rp.simulate(spec, reps=10, seed=5, jobs=2, cache_dir=tmp_path / "c")
+    two = rp.simulate(spec, reps=10, seed=5, jobs=2, cache_dir=tmp_path / "c",
+                      start_workers=True)
     again = rp.simulate(spec, reps=10, seed=5, jobs=1, cache_dir=tmp_path / "c")
     assert two.run["computed"] == 10 and again.run["cached"] == 10 and again.run["computed"] == 0
     pd.testing.assert_frame_equal(one.summary, two.summary)

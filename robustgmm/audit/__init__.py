@@ -58,10 +58,14 @@ def default_cache_dir(out_dir) -> Path:
 
 def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool | None = False,
           backend: str | None = None, on_error: str = "raise", simulate: int | None = None,
-          seed: int = 0, simulate_options: dict | None = None) -> AuditResult:
+          seed: int = 0, simulate_options: dict | None = None,
+          start_workers: bool = False, notify=None) -> AuditResult:
     """Estimate every variant of ``spec`` and judge the focus terms.
 
-    ``jobs``: workers (None: every core). ``cache_dir``: folder of the variant cache
+    ``jobs``: the most workers (None: every core); local worker processes start
+    only when the estimated work repays their start-up (:mod:`robustgmm.audit.cost`),
+    or always with ``start_workers=True``; ``notify(line)`` hears which was chosen.
+    ``cache_dir``: folder of the variant cache
     (None: no cache). ``progress``: tqdm bar on stderr (None: when it is a terminal).
     ``backend``: a joblib backend name (default loky; "dask" with a distributed
     client). ``on_error``: what an exception other than
@@ -86,7 +90,8 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     t_plan = time.perf_counter()
     outcomes, stats = runner.run_variants(planned, panels, jobs=jobs, cache_dir=cache_dir,
                                           progress=progress, backend=backend,
-                                          on_error=on_error)
+                                          on_error=on_error, start_workers=start_workers,
+                                          notify=notify)
     t_run = time.perf_counter()
     simulation = None
     if simulate is not None:
@@ -94,6 +99,7 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
         simulation = run_simulation(spec, reps=simulate, seed=seed, jobs=jobs,
                                     cache_dir=cache_dir, progress=progress, backend=backend,
                                     planned=planned, panels=panels,
+                                    start_workers=start_workers, notify=notify,
                                     **dict(simulate_options or {}))
     t_sim = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)

@@ -36,8 +36,8 @@ import joblib
 #: whatever ``jobs`` is. Parallelism comes from running variants side by side.
 BLAS_THREADS = 1
 #: Rough cost of starting loky workers (process start and imports of numpy, scipy and
-#: the package; 1–5 s measured on a loaded 2-core machine). With ``jobs=None`` an
-#: audit whose estimated sequential time is below this runs in-process.
+#: the package; 1–5 s measured on a loaded 2-core machine). Workers start only when
+#: the time they would save exceeds it (:func:`robustgmm.audit.cost.repays_workers`).
 WORKER_STARTUP_SECONDS = 2.0
 #: Memory of an idle worker (Python, numpy, scipy, pandas and the package imported;
 #: about 150 MB measured with ps on this machine), before its estimation's arrays.

@@ -1,9 +1,11 @@
 """Run the variants of an audit: joblib over variants, on-disk cache, progress bar.
 
 * **Parallel**: one joblib task per share group (below). The default backend is
-  loky (processes) with ``jobs`` workers (default: every core, except that an audit
-  too small to repay starting worker processes — judged by timing its first group
-  against :data:`WORKER_STARTUP_SECONDS` — runs in this process); each worker's BLAS
+  loky (processes) with at most ``jobs`` workers (default: every core), started only
+  when the work, estimated from the plan before anything runs
+  (:mod:`robustgmm.audit.cost`: rows × instruments per share group), repays their
+  start-up (:data:`WORKER_STARTUP_SECONDS`); otherwise the audit runs in this process
+  (``start_workers=True`` starts them whatever the estimate); each worker's BLAS
   is limited to :data:`BLAS_THREADS` threads, so workers never oversubscribe the
   cores. Any other joblib backend works the same way: pass ``backend="dask"`` (or
   run the audit inside ``joblib.parallel_config("dask")`` /
@@ -65,8 +67,7 @@ import joblib
 import numpy as np
 
 from ..errors import EstimationError
-from ..options import Equations, Form
-from . import parallel
+from . import cost, parallel
 from .cache import CACHE_FORMAT, Cache  # noqa: F401  (re-exported)
 from .grid import PLANNED, Variant, sample_key
 from .parallel import (BLAS_THREADS, LOST_REASON, WORKER_DEATHS,  # noqa: F401  (re-exported)
@@ -298,13 +299,18 @@ def _group_signature(members: Sequence[Variant]) -> list:
 
 def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                  jobs: int | None = None, cache_dir=None, progress: bool | None = False,
-                 backend: str | None = None,
-                 on_error: str = "raise") -> tuple[dict[str, Outcome], RunStats]:
+                 backend: str | None = None, on_error: str = "raise",
+                 start_workers: bool = False,
+                 notify: Callable[[str], None] | None = None,
+                 ) -> tuple[dict[str, Outcome], RunStats]:
     """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
 
     ``panels`` maps :func:`robustgmm.grid.sample_key` to the sample's panel.
-    ``jobs``: worker count (None: every core, or this process for a small audit;
-    -1: every core; 1: this process). ``progress``: a tqdm bar on stderr (None: only
+    ``jobs``: the most workers (None or -1: every core; 1: this process). Local
+    worker processes start only when the estimated work repays their start-up
+    (:mod:`robustgmm.audit.cost`); ``start_workers=True`` starts them whatever the
+    estimate. ``notify`` receives the one line saying which it chose (when more
+    than one worker was allowed). ``progress``: a tqdm bar on stderr (None: only
     when stderr is a terminal).
 
     The unit of work is a share group (variants that differ only in steps, errors
@@ -324,11 +330,16 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                if outcomes.look_up(g, _panel_of(g, panels), shared=fit is None)]
     # the heaviest groups first, so parallel workers finish close together (the order
     # of results does not depend on it)
-    pending.sort(key=lambda g: -_group_weight(g, _panel_of(g, panels)))
+    estimates = cost.Estimates()
+    seconds = {id(g): estimates.group_seconds([v.spec for v in g], _panel_of(g, panels))
+               for g in pending}
+    pending.sort(key=lambda g: -seconds[id(g)])
     tasks = _Tasks(panels, fit, on_error, parallel.Parent.here())
     outcomes.bar = _progress_bar(progress, total=len(todo), initial=len(outcomes.by_id))
     try:
-        n_workers, backend_used, capped = _dispatch(pending, tasks, outcomes, jobs, backend)
+        n_workers, backend_used, capped = _dispatch(
+            pending, tasks, outcomes, jobs, backend, sum(seconds.values()),
+            start_workers, notify)
     finally:
         parallel.remove_memmaps()  # every exit path: done, interrupted, a bug
         outcomes.close()
@@ -469,22 +480,24 @@ class _Tasks:
 
 
 def _dispatch(pending: list, tasks: _Tasks, outcomes: _Outcomes, jobs: int | None,
-              backend: str | None) -> tuple[int, str, str | None]:
+              backend: str | None, estimate: float, start_workers: bool,
+              notify: Callable[[str], None] | None) -> tuple[int, str, str | None]:
     """Run the ``pending`` groups; return the workers used, the backend's name and
     why fewer workers ran than asked (None when not).
 
-    With ``jobs`` not set (and the default loky backend) the first group is timed
-    here; when the rest would take less than starting worker processes costs
-    (:data:`WORKER_STARTUP_SECONDS`), everything stays in this process."""
+    With local worker processes (the default loky backend) the workers start only
+    when the ``estimate`` of the sequential seconds repays their start-up
+    (:func:`robustgmm.audit.cost.repays_workers`), unless ``start_workers``; any
+    other backend (threads, a dask cluster) is used as asked."""
     n_jobs = -1 if jobs is None else int(jobs)
-    if pending and jobs is None and backend is None and parallel._default_is_loky():
-        first = pending.pop(0)
-        t0 = time.perf_counter()
-        with parallel._blas_limit():
-            outcomes.record(tasks.run(first))
-        per_variant = (time.perf_counter() - t0) / len(first)
-        if sum(len(g) for g in pending) * per_variant < WORKER_STARTUP_SECONDS:
-            n_jobs = 1
+    if pending and backend is None and parallel._default_is_loky() and not start_workers:
+        allowed, _ = parallel.worker_count(n_jobs, len(pending), _panel_of(pending[0], tasks.panels))
+        if allowed > 1:
+            start = cost.repays_workers(estimate, allowed)
+            if notify is not None:
+                notify(cost.dispatch_line(estimate, allowed, start))
+            if not start:
+                n_jobs = 1
     if not pending:
         return 1, "in-process", None
     # the panels go to a dask cluster once, not with every task
@@ -517,15 +530,6 @@ def _run_stats(ordered: Mapping[str, Outcome], cache: Cache | None, n_workers: i
         variant_seconds=sum(o.seconds for o in ordered.values() if not o.cached),
         extra=extra,
     )
-
-
-def _group_weight(group, panel) -> float:
-    """A rough cost of a share group: members × equations × instrument columns per
-    unit (per-period instruments grow with the periods, collapsed ones do not)."""
-    spec = group[0].spec
-    periods = max(getattr(panel, "n_periods", 1), 1)
-    width = periods * periods if spec.form == Form.PER_PERIOD else periods
-    return len(group) * (2 if spec.equations == Equations.SYSTEM else 1) * width
 
 
 def _task(ids, specs, panel, fit, parent_pid: int, marker: str | None = None,

@@ -310,9 +310,15 @@ def check_reps(reps, seed) -> tuple[int, int]:
 def run_replications(world: World, template: pd.DataFrame, variants, *, reps: int, seed: int,
                      focus: Sequence[str], level_group: str, alpha: float,
                      jobs: int | None = None, cache_dir=None, progress: bool | None = False,
-                     backend: str | None = None) -> tuple[list[dict], dict]:
+                     backend: str | None = None, panels=None, start_workers: bool = False,
+                     notify=None) -> tuple[list[dict], dict]:
     """Run replications ``0 .. reps-1`` (cached ones read back); return their records
-    in replication order and the run figures."""
+    in replication order and the run figures.
+
+    Local worker processes start only when the replications' estimated time (each
+    one the grid's share groups on panels like ``panels``, the data's samples;
+    :mod:`robustgmm.audit.cost`) repays their start-up, or always with
+    ``start_workers``; ``notify(line)`` hears which was chosen."""
     import joblib
 
     from ..audit import parallel
@@ -350,6 +356,9 @@ def run_replications(world: World, template: pd.DataFrame, variants, *, reps: in
     deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
     n_workers, capped, backend_used = 1, None, "in-process"
     try:
+        if todo and panels is not None and backend is None and not start_workers \
+                and parallel._default_is_loky():
+            n_jobs = _local_jobs(n_jobs, len(todo), variants, panels, notify)
         if todo:
             with parallel._backend_context(backend) as backend_used, parallel._blas_limit():
                 n_workers, capped = parallel.worker_count(n_jobs, len(todo))
@@ -389,6 +398,22 @@ def run_replications(world: World, template: pd.DataFrame, variants, *, reps: in
            **({"cache_write_errors": cache.write_errors} if cache is not None
               and cache.write_errors else {})}
     return ordered, run
+
+
+def _local_jobs(n_jobs: int, n_reps: int, variants, panels, notify) -> int:
+    """``n_jobs``, or 1 when the ``n_reps`` replications' estimated time does not
+    repay starting local workers (:mod:`robustgmm.audit.cost`)."""
+    from ..audit import cost, parallel, runner
+    allowed, _ = parallel.worker_count(n_jobs, n_reps)
+    if allowed <= 1:
+        return n_jobs
+    estimates = cost.Estimates()
+    one = sum(estimates.group_seconds([v.spec for v in g], runner._panel_of(g, panels))
+              for g in runner._share_groups(variants, shared=True))
+    start = cost.repays_workers(one * n_reps, allowed)
+    if notify is not None:
+        notify(cost.dispatch_line(one * n_reps, allowed, start))
+    return n_jobs if start else 1
 
 
 # ---------------------------------------------------------------------------
@@ -459,7 +484,8 @@ def summarise(records: Sequence[dict], variants, focus: Sequence[str],
 def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None = None,
              cache_dir=None, progress: bool | None = False, backend: str | None = None,
              truth: Mapping[str, float] | None = None, initial: str = "stationary",
-             heteroskedastic: bool = False, planned=None, panels=None) -> Simulation:
+             heteroskedastic: bool = False, planned=None, panels=None,
+             start_workers: bool = False, notify=None) -> Simulation:
     """Calibrate the world of ``spec`` to its data and run ``reps`` replications of
     its whole grid (``planned``/``panels``: an audit's plan and panels, reused).
 
@@ -489,7 +515,9 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
     focus = tuple(spec.focus_terms())
     records, run = run_replications(world, frame, variants, reps=reps, seed=seed, focus=focus,
                                     level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
-                                    cache_dir=cache_dir, progress=progress, backend=backend)
+                                    cache_dir=cache_dir, progress=progress, backend=backend,
+                                    panels=panels, start_workers=start_workers,
+                                    notify=notify)
     summary = summarise(records, variants, focus, truth_terms, spec.alpha)
     settings = tuple(grid.setting_columns(spec))
     shown = {v.id: v.settings_dict() for v in variants}

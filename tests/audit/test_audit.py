@@ -96,9 +96,9 @@ def test_contract_tables_and_files(spec, tmp_path):
 
 def test_identical_outputs_whatever_jobs_and_through_the_cache(spec, tmp_path, monkeypatch):
     one = write_audit(audit(spec, jobs=1), tmp_path / "one")
-    two = write_audit(audit(spec, jobs=2), tmp_path / "two")
+    two = write_audit(audit(spec, jobs=2, start_workers=True), tmp_path / "two")
     cache = tmp_path / "cache"
-    write_audit(audit(spec, jobs=2, cache_dir=cache), tmp_path / "warm")
+    write_audit(audit(spec, jobs=2, cache_dir=cache, start_workers=True), tmp_path / "warm")
     counter = CountingFamily()
     monkeypatch.setattr(core, "fit_family", counter)
     rerun = audit(spec, jobs=1, cache_dir=cache)
@@ -154,7 +154,7 @@ def test_command_line_on_a_24_variant_model(tmp_path):
     for jobs in (1, 2):
         out = tmp_path / f"out{jobs}"
         proc = subprocess.run([sys.executable, "-m", "robustgmm", "audit", str(model),
-                               "--out", str(out), "--jobs", str(jobs)],
+                               "--out", str(out), "--jobs", str(jobs), "--start-workers"],
                               capture_output=True, text=True, env=env, timeout=600)
         assert proc.returncode == 0, proc.stderr
         outs[jobs] = out

@@ -203,7 +203,7 @@ def test_singular_sample_fails_without_stopping_the_audit(tmp_path):
 def test_results_identical_whatever_jobs(planned):
     spec, panels, variants = planned
     one, s1 = runner.run_variants(variants, panels, jobs=1)
-    two, s2 = runner.run_variants(variants, panels, jobs=2)
+    two, s2 = runner.run_variants(variants, panels, jobs=2, start_workers=True)
     assert s1.jobs == 1 and s2.jobs == 2 and s2.backend == "loky"
     assert list(one) == list(two) == [v.id for v in variants]  # plan order
     assert outcome_text(one) == outcome_text(two)

@@ -237,8 +237,10 @@ def fake_audit(monkeypatch):
     calls = {}
     mod = types.ModuleType("robustgmm.audit")
 
-    def audit(spec, *, jobs=None, cache_dir=None, progress=None):
-        calls["audit"] = dict(jobs=jobs, cache_dir=cache_dir, progress=progress)
+    def audit(spec, *, jobs=None, cache_dir=None, progress=None, start_workers=False,
+              notify=None):
+        calls["audit"] = dict(jobs=jobs, cache_dir=cache_dir, progress=progress,
+                              start_workers=start_workers)
         return _FakeResult(calls.get("verdicts", {"y[t-1]": "robust"}))
 
     def write_audit(result, out_dir, model_file=None, report=None):
@@ -261,7 +263,8 @@ def test_audit_wiring_and_fail_on_fragile(project, capsys, fake_audit):
     out = project / "audit"
     code, stdout, err = run(["audit", project / "model.toml", "--out", out, "--jobs", "2"], capsys)
     assert code == 0, err
-    assert fake_audit["audit"] == {"jobs": 2, "cache_dir": out / ".cache", "progress": False}
+    assert fake_audit["audit"] == {"jobs": 2, "cache_dir": out / ".cache", "progress": False,
+                                   "start_workers": False}
     assert fake_audit["write"][0] == out and fake_audit["report"] == out
     assert "y[t-1]: robust — robust for a reason" in stdout
     assert "2 estimated: 2 acceptable, 0 untestable, 0 rejected by their tests (1 failed)" in stdout

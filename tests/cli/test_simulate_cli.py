@@ -45,11 +45,11 @@ def test_simulate_writes_the_contract_files(model, tmp_path, capsys):
     assert manifest["command"] == "simulate" and manifest["run"]["computed"] == 10
     # a rerun reads every replication from the cache; --jobs 2 writes the same bytes
     first = (out / "simulation.csv").read_bytes()
-    code, text, _ = _run(capsys, "simulate", model, "--out", out, "--reps", 10, "--jobs", 2)
+    code, text, _ = _run(capsys, "simulate", model, "--out", out, "--reps", 10, "--jobs", 2, "--start-workers", "--start-workers")
     assert code == 0 and "10 from the cache" in text
     assert (out / "simulation.csv").read_bytes() == first
     other = tmp_path / "sim2"
-    assert _run(capsys, "simulate", model, "--out", other, "--reps", 10, "--jobs", 2,
+    assert _run(capsys, "simulate", model, "--out", other, "--reps", 10, "--jobs", 2, "--start-workers",
                 "--no-cache")[0] == 0
     assert (other / "simulation.csv").read_bytes() == first
 

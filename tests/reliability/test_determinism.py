@@ -93,7 +93,7 @@ def test_identical_across_jobs_and_cache(project, tmp_path):
     spec = read_model(project)
     files, run = _audit_files(spec, {
         "jobs1": dict(jobs=1),
-        "jobs2-cold-cache": dict(jobs=2, cache_dir=tmp_path / "cache"),
+        "jobs2-cold-cache": dict(jobs=2, cache_dir=tmp_path / "cache", start_workers=True),
         "jobs1-warm-cache": dict(jobs=1, cache_dir=tmp_path / "cache"),
     }, tmp_path)
     reference = files["jobs1"]
@@ -113,10 +113,10 @@ def test_identical_across_more_jobs_and_reruns(project, tmp_path):
     spec = read_model(project)
     files, run = _audit_files(spec, {
         "jobs1": dict(jobs=1),
-        "jobs4-cold-cache": dict(jobs=4, cache_dir=tmp_path / "cache"),
-        "jobs2-warm-cache": dict(jobs=2, cache_dir=tmp_path / "cache"),
+        "jobs4-cold-cache": dict(jobs=4, cache_dir=tmp_path / "cache", start_workers=True),
+        "jobs2-warm-cache": dict(jobs=2, cache_dir=tmp_path / "cache", start_workers=True),
         "jobs-default": dict(),
-        "jobs-all": dict(jobs=-1),
+        "jobs-all": dict(jobs=-1, start_workers=True),
         "jobs1-rerun": dict(jobs=1),
     }, tmp_path)
     for name in files:
@@ -173,9 +173,9 @@ def test_command_line_outputs_identical_in_fresh_processes(tmp_path):
     harness = install_harness(tmp_path / "harness")
     runs = {
         "jobs1": (project, ["--jobs", "1"], "0"),
-        "jobs2-seed": (project, ["--jobs", "2"], "12345"),
-        "jobs4-no-cache": (project, ["--jobs", "4", "--no-cache"], "1"),
-        "shuffled": (shuffled, ["--jobs", "2"], "random"),
+        "jobs2-seed": (project, ["--jobs", "2", "--start-workers"], "12345"),
+        "jobs4-no-cache": (project, ["--jobs", "4", "--no-cache", "--start-workers"], "1"),
+        "shuffled": (shuffled, ["--jobs", "2", "--start-workers"], "random"),
     }
     files = {}
     for name, (model, args, seed) in runs.items():

@@ -63,7 +63,8 @@ def test_worker_killed_twice_fails_only_its_variant(planned, tmp_path):
     spec, panels, variants = planned
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=99)
     cache_dir = tmp_path / "cache"
-    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=cache_dir)
+    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=cache_dir,
+                          start_workers=True)
     assert killer.kills() == 2  # the first attempt and one retry, no more
     assert list(out) == [v.id for v in variants]  # nothing missing, plan order
     lost = [v.id for v in variants if is_fod_collapsed_two_step(v.spec)]
@@ -87,7 +88,8 @@ def test_worker_killed_twice_fails_only_its_variant(planned, tmp_path):
 def test_worker_killed_once_is_retried_and_the_audit_completes(planned, tmp_path):
     spec, panels, variants = planned
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=1)
-    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=tmp_path / "cache")
+    out, stats = run_each(killer, variants, panels, jobs=2, cache_dir=tmp_path / "cache",
+                          start_workers=True)
     assert killer.kills() == 1
     assert stats.failed == 0 and stats.extra["worker_deaths"] == 1
     assert "lost" not in stats.extra
@@ -104,7 +106,7 @@ def test_killed_worker_through_the_audit_tables(tmp_path, monkeypatch):
     killer = KillWorker(tmp_path / "kills", is_fod_collapsed_two_step, times=99)
     # the killer travels to the worker processes as the runner's estimator
     monkeypatch.setattr(runner, "FIT_EACH", killer)
-    result = audit(spec, jobs=2)
+    result = audit(spec, jobs=2, start_workers=True)
     out = write_audit(result, tmp_path / "out")
     v = pd.read_csv(out / "variants.csv")
     failed = v[v["status"] == "failed"]
@@ -127,7 +129,7 @@ def test_worker_killed_from_outside_during_a_command_line_audit(tmp_path):
     counter = tmp_path / "count"
     env = harness_env(harness, ROBUSTGMM_TEST_COUNT=counter, ROBUSTGMM_TEST_PACE=0.8)
     out = tmp_path / "out"
-    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2", "--start-workers"),
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     # the third group to start: its worker sleeps in the pace, mid-group
     _, err = kill_started_worker(proc, counter, 2)
@@ -174,7 +176,7 @@ def _interrupt_and_resume(tmp_path, jobs: int, whole_group: bool):
     out = tmp_path / "out"
     first = tmp_path / "count-1"
     env = harness_env(harness, ROBUSTGMM_TEST_COUNT=first, ROBUSTGMM_TEST_PACE=0.6)
-    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", jobs),
+    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", jobs, "--start-workers"),
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
     try:
@@ -204,7 +206,7 @@ def _interrupt_and_resume(tmp_path, jobs: int, whole_group: bool):
 
     # the same command again: resumes, estimates only what is missing
     second = tmp_path / "count-2"
-    proc = subprocess.run(robustgmm_command("audit", model, "--out", out, "--jobs", jobs),
+    proc = subprocess.run(robustgmm_command("audit", model, "--out", out, "--jobs", jobs, "--start-workers"),
                           env=harness_env(harness, ROBUSTGMM_TEST_COUNT=second),
                           capture_output=True, text=True, timeout=600)
     assert proc.returncode == 0, proc.stderr

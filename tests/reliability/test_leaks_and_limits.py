@@ -174,7 +174,7 @@ def test_killing_the_main_process_leaves_no_worker_and_no_temporary(tmp_path, si
     counter = tmp_path / "count"
     env = harness_env(harness, ROBUSTGMM_TEST_COUNT=counter, ROBUSTGMM_TEST_PACE=3)
     out = tmp_path / "out"
-    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+    proc = subprocess.Popen(robustgmm_command("audit", model, "--out", out, "--jobs", "2", "--start-workers"),
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True,
                             start_new_session=True)
     workers = []
@@ -200,7 +200,7 @@ def test_killing_the_main_process_leaves_no_worker_and_no_temporary(tmp_path, si
         assert not _leftovers(proc.pid)
     else:
         # SIGKILL runs no cleanup: the next run removes what the dead one left
-        subprocess.run(robustgmm_command("audit", model, "--out", out, "--jobs", "2"),
+        subprocess.run(robustgmm_command("audit", model, "--out", out, "--jobs", "2", "--start-workers"),
                        env=harness_env(harness), check=True, capture_output=True, timeout=600)
         assert not _leftovers(proc.pid)
     assert not (out / ".robustgmm-lock").exists() or sig == signal.SIGKILL

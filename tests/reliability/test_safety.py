@@ -449,7 +449,7 @@ def test_parallel_audit_without_network_in_any_process(tmp_path):
     log = tmp_path / "network.log"
     env = harness_env(harness, ROBUSTGMM_TEST_NONET=log, ROBUSTGMM_TEST_COUNT=tmp_path / "n")
     proc = subprocess.run(robustgmm_command("audit", model, "--out", tmp_path / "out",
-                                            "--jobs", "2"),
+                                            "--jobs", "2", "--start-workers"),
                           capture_output=True, text=True, env=env, timeout=600)
     assert proc.returncode == 0, proc.stderr
     assert not log.exists(), log.read_text()
