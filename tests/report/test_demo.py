@@ -166,3 +166,18 @@ def test_committed_demo_shows_a_robust_and_a_fragile_conclusion():
     for fig in ("spec_curve_staff_hours_t", "hansen_drift", "ar_band_orders_t-1", "diagnostics"):
         for ext in ("png", "svg", "pdf"):
             assert (COMMITTED / "figures" / f"{fig}.{ext}").is_file()
+
+
+def test_diagnostics_matrix_shows_the_underidentified_demo_variants_failing():
+    # the demo has variants rejected only by the Kleibergen-Paap rank test; the
+    # diagnostics figure must not show them as a column of green
+    from robustgmm.report import figures
+    from robustgmm.report.inputs import read_audit_folder
+    audit = read_audit_folder(COMMITTED)
+    table = figures.diagnostics_table(audit)
+    flags = audit.variants.set_index("variant")["flags"].fillna("").str.split(";")
+    under = [vid for vid, ids in flags.items() if "underidentified" in ids]
+    assert under
+    row = table["identified (KP), not weak (SW F)"]
+    assert (row[under] == figures.FAIL).all()
+    assert (table.drop(index=under) != figures.FAIL).all().all()

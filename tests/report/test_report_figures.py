@@ -154,9 +154,16 @@ def test_diagnostics_table_states(audit_folder):
         fired = str(v.loc[vid, "flags"]).split(";")
         assert row["Hansen does not reject"] == (figures.FAIL if "hansen_rejects" in fired
                                                  else figures.PASS)
-        assert row["Hansen p below warning line"] == (
+        assert row["Hansen p not suspiciously high"] == (
             figures.WARN if "hansen_p_high" in fired else figures.PASS)
         assert ("hansen_rejects" in fired) == (v.loc[vid, "hansen_p"] < 0.05)
+        # a variant rejected only for underidentification must not show a green column
+        ident = row["identified (KP), not weak (SW F)"]
+        if not np.isfinite(v.loc[vid, "underid_p"]):
+            assert np.isnan(ident)
+        else:
+            assert ident == (figures.FAIL if "underidentified" in fired else
+                             figures.WARN if "weak_instruments" in fired else figures.PASS)
 
 
 def test_render_figures_writes_every_format(tmp_path, audit_folder):

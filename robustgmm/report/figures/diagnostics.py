@@ -37,10 +37,15 @@ def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
     :mod:`robustgmm.audit.verdicts` evaluated (column ``flags``), read, not re-derived.
 
     Checks: AR(2) does not reject (Arellano & Bond 1991); Hansen does not reject
-    (Hansen 1982); Hansen p below the warning line (common practice; Roodman 2009);
+    (Hansen 1982); Hansen p not suspiciously high (rule ``hansen_p_high``: at or above the warning line
+    with many instruments per unit, or about 1; common practice; Roodman 2009);
     instruments do not outnumber units (common practice); difference-in-Hansen of the
     level-equation instruments does not reject (Blundell & Bond 1998; Roodman 2009);
-    AR coefficient inside the within-OLS band (Bond, Hoeffler & Temple 2001)."""
+    the Kleibergen & Paap (2006) rank test rejects underidentification (rule
+    ``underidentified``, which makes a variant not acceptable), with the smallest
+    Sanderson & Windmeijer (2016) conditional F below the rule-of-thumb line as a warning
+    (rule ``weak_instruments``; common practice); AR coefficient inside the within-OLS
+    band (Bond, Hoeffler & Temple 2001)."""
     v = audit.variants
     ok = (v["status"] == "ok").to_numpy()
 
@@ -67,8 +72,8 @@ def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
     checks = {
         "AR(2) does not reject": state(rule("ar2_rejects"), valid=np.isfinite(ar2)),
         "Hansen does not reject": state(rule("hansen_rejects"), valid=np.isfinite(hansen)),
-        "Hansen p below warning line": state(np.zeros(len(v), bool), rule("hansen_p_high"),
-                                             valid=np.isfinite(hansen)),
+        "Hansen p not suspiciously high": state(np.zeros(len(v), bool), rule("hansen_p_high"),
+                                                valid=np.isfinite(hansen)),
         "instruments within units": state(rule("instruments_exceed_units"),
                                           valid=np.isfinite(inst) & np.isfinite(units)),
     }
@@ -77,6 +82,12 @@ def diagnostics_table(audit: AuditFolder) -> pd.DataFrame:
         p = pd.to_numeric(v[dh], errors="coerce").to_numpy(float)
         checks["diff-in-Hansen (levels) ok"] = state(rule("difference_hansen_level_rejects"),
                                                      valid=np.isfinite(p))
+    if "underid_p" in v.columns:
+        # without this row a variant rejected only for underidentification showed a
+        # column of green
+        kp = pd.to_numeric(v["underid_p"], errors="coerce").to_numpy(float)
+        checks["identified (KP), not weak (SW F)"] = state(
+            rule("underidentified"), rule("weak_instruments"), valid=np.isfinite(kp))
     inside = _in_bounds(audit)
     if inside is not None:
         checks["AR coef. inside OLS-FE band"] = state(inside == 0.0, valid=np.isfinite(inside))
