@@ -125,7 +125,10 @@ def _counts(s: AuditSummary) -> str:
     judged = "acceptable and untestable" if s.count_untestable else "acceptable"
     return (f"{s.n_variants} variants. {evidence_counts(s)}. Column \"evidence\" gives each "
             f"variant's class; the verdicts are judged on the {judged} variants that are "
-            f"not duplicates (column \"duplicate_of\"). The base model is marked.")
+            f"not duplicates (column \"duplicate_of\"). The base model is marked. Sargan p is "
+            f"valid only if the errors are homoskedastic (it is not robust to "
+            f"heteroskedasticity, and n/a in system GMM, whose one-step weight is not "
+            f"optimal even then); Hansen p is the robust test.")
 
 
 def _truth_rows(s: AuditSummary) -> list[dict]:
@@ -168,7 +171,9 @@ def _bounds_table(audit: AuditFolder) -> tuple[list[str], list[list[str]], str]:
         row = []
         for col in headers:
             value = r[col]
-            if isinstance(value, (float, np.floating)) and col in ("observations", "units"):
+            if isinstance(value, (bool, np.bool_)):  # not Python's True/False in a report
+                row.append("yes" if value else "no")
+            elif isinstance(value, (float, np.floating)) and col in ("observations", "units"):
                 row.append(fmt_int(value))
             elif isinstance(value, (float, np.floating)):
                 row.append(fmt(value))

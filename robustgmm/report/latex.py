@@ -162,7 +162,8 @@ TEST_NOTES = {  # test row column -> what the row reports
     "hansen_p": "Hansen \\textit{p}: the \\textit{J} test of the over-identifying "
                 "restrictions with the robust weight (Hansen 1982)",
     "sargan_p": "Sargan \\textit{p}: the same restrictions with the homoskedastic weight "
-                "(Sargan 1958)",
+                "(Sargan 1958), valid only if the errors are homoskedastic and n/a in "
+                "system GMM",
     "ar2_p": "AR(1), AR(2) \\textit{p}: tests for first- and second-order serial correlation "
              "of the differenced errors (Arellano \\& Bond 1991), of which AR(2) must not "
              "reject",

@@ -178,15 +178,20 @@ def term_paragraph(term: TermSummary, s: AuditSummary) -> str:
 
 
 def _tests_text(s: AuditSummary) -> str:
-    """Which specification tests make a variant acceptable, and at what level."""
+    """Which specification tests make a variant acceptable, and at what level: the
+    over-identification and serial-correlation tests, and the underidentification test
+    of rule ``underidentified`` (without it a variant rejected only for
+    underidentification would seem to pass every test named)."""
     t = s.thresholds
     levels = {t["hansen_reject"], t["ar2_reject"], t["difference_hansen_reject"]}
+    under = (f"and the Kleibergen-Paap rank test rejecting underidentification at the "
+             f"{_pct(s.alpha)} level where it is valid")
     if len(levels) == 1:
         return (f"Hansen, AR(2) and, in system GMM, difference-in-Hansen for the level "
-                f"equation, at the {_pct(levels.pop())} level")
+                f"equation, at the {_pct(levels.pop())} level, {under}")
     return (f"Hansen at {_pct(t['hansen_reject'])}, AR(2) at {_pct(t['ar2_reject'])} "
             f"and, in system GMM, difference-in-Hansen for the level equation at "
-            f"{_pct(t['difference_hansen_reject'])}")
+            f"{_pct(t['difference_hansen_reject'])}, {under}")
 
 
 def _base_paragraph(s: AuditSummary) -> str:

@@ -87,7 +87,7 @@ def base_model_table(audit: AuditFolder) -> dict:
     tests = [
         ("Over-identification", "Hansen J, robust weight", value("hansen_p", fmt_p),
          df_text("hansen_df")),
-        ("Over-identification", "Sargan, homoskedastic weight", value("sargan_p", fmt_p),
+        ("Over-identification", "Sargan, homoskedastic errors only", value("sargan_p", fmt_p),
          df_text("sargan_df")),
         ("Serial correlation of the differenced errors", "AR(1)", value("ar1_p", fmt_p), ""),
         ("Serial correlation of the differenced errors", "AR(2)", value("ar2_p", fmt_p), ""),

@@ -96,7 +96,8 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
             f"changes {change_text}.",
             "Hansen p: the J test of the over-identifying restrictions with the robust weight "
             "(Hansen 1982); Sargan p: the same restrictions with the homoskedastic weight "
-            "(Sargan 1958); AR(1), AR(2) p: tests for first- and second-order serial "
+            "(Sargan 1958), valid only if the errors are homoskedastic and n/a in system "
+            "GMM; AR(1), AR(2) p: tests for first- and second-order serial "
             "correlation of the differenced errors (Arellano & Bond 1991), of which AR(2) "
             "must not reject" + ("; difference-in-Hansen p: validity of the level-equation "
                                  "instruments of system GMM (Blundell & Bond 1998)"

@@ -181,3 +181,18 @@ def test_diagnostics_matrix_shows_the_underidentified_demo_variants_failing():
     row = table["identified (KP), not weak (SW F)"]
     assert (row[under] == figures.FAIL).all()
     assert (table.drop(index=under) != figures.FAIL).all().all()
+
+
+def test_referee_paragraph_names_the_test_that_rejects_the_demo_variants():
+    # the demo's rejected variants pass Hansen, AR(2) and difference-in-Hansen and fail
+    # only the underidentification test: the paragraph must name that test
+    from robustgmm.report.inputs import read_audit_folder
+    from robustgmm.report.referee import referee_paragraph
+    audit = read_audit_folder(COMMITTED)
+    v = audit.variants
+    rejected = v[(v["status"] == "ok") & ~v["acceptable"].astype(bool)]
+    assert len(rejected) and rejected["flags"].str.contains("underidentified").all()
+    assert (rejected["hansen_p"] > 0.05).all() and (rejected["ar2_p"] > 0.05).all()
+    flat = referee_paragraph(audit)
+    assert f"and {len(rejected)} are rejected by their tests" in flat
+    assert "Kleibergen-Paap rank test rejecting underidentification at the 5% level" in flat

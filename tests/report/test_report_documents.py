@@ -531,3 +531,24 @@ def test_every_document_agrees_with_the_verdict(writable_folder, name):
     for key, value in th.items():  # the thresholds in force, in both reports
         text = str(value).lower() if isinstance(value, bool) else f"{value:g}"
         assert f"{key} = {text}" in md_plain and f"{key} = {text}" in html, key
+
+
+def test_sargan_is_shown_with_its_homoskedasticity_condition(built):
+    # the Sargan statistic is chi-squared only under homoskedastic errors (Sargan 1958;
+    # Arellano & Bond 1991): every document that shows it must say so
+    out, _ = built
+    for name in ("report.md", "report.html", "table.tex", "table.html"):
+        text = " ".join((out / name).read_text().split())
+        if "Sargan" not in text:
+            continue
+        assert "valid only if the errors are homoskedastic" in text, name
+
+
+def test_bounds_table_says_yes_or_no_not_python_booleans(built):
+    from robustgmm.report.context import _bounds_table
+    out, _ = built
+    headers, rows, _ = _bounds_table(read_audit_folder(out))
+    col = headers.index("GMM inside band")
+    assert rows and {r[col] for r in rows} <= {"yes", "no"}
+    md = (out / "report.md").read_text()
+    assert "| True |" not in md and "| False |" not in md
