@@ -47,8 +47,9 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     written = [p for f in figures for p in f.paths]
     sim_section, sim_md, sim_referee = _simulation_section(audit, out, formats, written)
     context["simulation"] = sim_section
+    context["simulation_md"] = sim_md
     written.append(atomic_write_text(out / "report.html", render_html(context)))
-    written.append(atomic_write_text(out / "report.md", render_markdown(context) + sim_md))
+    written.append(atomic_write_text(out / "report.md", render_markdown(context)))
     written.append(atomic_write_text(out / "table.tex", render_latex(audit, summary)))
     written.append(atomic_write_text(out / "table.html", render_word_table(audit, summary)))
     written.append(atomic_write_text(out / "referee.txt",
@@ -76,4 +77,4 @@ def _simulation_section(audit, out: Path, formats, written: list):
     text = sim_mod.referee_sentences(sim, audit.focus, units)
     referee = ("\n\n" + textwrap.fill(text, width=88, break_long_words=False,
                                       break_on_hyphens=False)) if text else ""
-    return ctx, "\n" + sim_mod.markdown_section(ctx), referee
+    return ctx, sim_mod.markdown_section(ctx), referee

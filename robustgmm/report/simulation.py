@@ -302,7 +302,7 @@ def markdown_section(ctx: dict) -> str:
              f"The caution unreliable\\_at\\_this\\_size fires for {ctx['unreliable']}.", "",
              f"*{esc(ctx['reading'])}*", ""]
     for t in ctx["tables"]:
-        lines += [f"### {esc(t['term'])} (true value {t['truth']})", "", esc(t["sentence"]), "",
+        lines += [f"### {esc(t['term'])} (true value in the simulated world {t['truth']})", "", esc(t["sentence"]), "",
                   f"| rank | variant | settings | bias | SD | RMSE | coverage ({ctx['level']}) "
                   "| size | SE ratio | replications |",
                   "|---|---|---|---|---|---|---|---|---|---|"]

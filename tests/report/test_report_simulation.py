@@ -99,3 +99,16 @@ def test_rebuilt_report_without_simulation_has_no_section(folder, tmp_path):
 def dataclasses_replace(result):
     import dataclasses
     return dataclasses.replace(result, simulation=None)
+
+
+def test_section_stands_where_the_html_has_it(folder):
+    # after the figures and before the variants table in both documents, and never
+    # after the closing caution and rebuild line
+    out, _ = folder
+    md = (out / "report.md").read_text()
+    at = md.index("## How these estimators behave at this sample size")
+    assert md.index("## Figures") < at < md.index("## Variants")
+    assert at < md.index("**What this report does not show.**")
+    html = (out / "report.html").read_text()
+    at = html.index("How these estimators behave at this sample size")
+    assert html.index(">Figures<") < at < html.index(">Variants<")
