@@ -27,7 +27,7 @@ def _file_columns(path: Path, kind: str) -> list[str]:
         return [str(c) for c in pq.read_schema(path).names]
     if kind == ".dta":
         # a read of no rows keeps the stored variable list, repeats included (the
-        # Stata format names each variable once; a file from elsewhere may not)
+        # .dta format names each variable once; a file from elsewhere may not)
         with pd.read_stata(path, iterator=True, convert_categoricals=False) as reader:
             return [str(c) for c in reader.read(nrows=1).columns]
     if kind == ".xlsx":

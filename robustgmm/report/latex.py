@@ -379,7 +379,8 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
         note += ("$^{*}$ $p < 0.10$, $^{**}$ $p < 0.05$, $^{***}$ $p < 0.01$. ")
     if failing:
         note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
-                 "(Hansen, AR(2) or difference-in-Hansen at the audit's level) and does "
+                 "(Hansen, AR(2), difference-in-Hansen or the underidentification test at "
+                 "the audit's level) and does "
                  "not count toward the verdicts. ")
     note += (f"Verdicts ({judged}): {verdicts}. "
              f"Statistical robustness does not establish instrument validity, which rests "

@@ -546,3 +546,16 @@ def test_underidentified_variant_is_not_acceptable_and_weak_instruments_caution(
     assert flags["weak_instruments"]["figures"]["ids"] == ["v1", "v3"]
     assert flags["weak_instruments"]["threshold"] == 10.0
     assert flags["underidentified"]["figures"]["ids"] == ["v1"]
+
+
+def test_base_not_acceptable_names_every_test_that_rejects_a_variant():
+    # the rule's text is printed in every report; a base model rejected only by the
+    # underidentification test must find that test named there
+    from robustgmm.audit.verdicts.rules import REJECTION_RULES, RULE_BY_ID
+    named = {"hansen_rejects": "Hansen", "ar2_rejects": "AR(2)",
+             "difference_hansen_level_rejects": "difference-in-Hansen",
+             "underidentified": "underidentification"}
+    assert set(REJECTION_RULES) == set(named)
+    text = RULE_BY_ID["base_not_acceptable"].description
+    for rule in REJECTION_RULES:
+        assert named[rule] in text, rule

@@ -71,7 +71,8 @@ RULES: tuple[Rule, ...] = (
          "hansen_too_high", Effect.CAUTION),
     Rule("hansen_p_near_one", "variant",
          "Hansen p-value of about 1, the telltale sign of too many instruments",
-         "Roodman (2009)", "hansen_near_one", Effect.CAUTION),
+         "Roodman (2009); the 0.99 line is a robustgmm default", "hansen_near_one",
+         Effect.CAUTION),
     Rule("instruments_exceed_units", "variant",
          "more instruments per unit than the threshold",
          "common practice; Roodman (2009)", "instruments_per_unit", Effect.CAUTION),
@@ -113,8 +114,9 @@ RULES: tuple[Rule, ...] = (
     Rule("base_not_ok", "term", "the base model could not be estimated",
          "robustgmm", None, Effect.INCONCLUSIVE),
     Rule("base_not_acceptable", "term",
-         "the base model fails its own specification tests (Hansen, AR(2) or "
-         "difference-in-Hansen of the level equation) or cannot be tested; every verdict "
+         "the base model fails its own specification tests (Hansen, AR(2), "
+         "difference-in-Hansen of the level equation or the underidentification test) or "
+         "cannot be tested; every verdict "
          "is then inconclusive and the closest acceptable variant is named",
          "Arellano & Bond (1991); Blundell & Bond (1998)", None, Effect.INCONCLUSIVE),
     Rule("too_few_acceptable", "term",
