@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
-from .validate import _show, degenerate_columns, validate_frame
+from .validate import _show, degenerate_columns, unit_codes, validate_frame
 
 
 def _read_only(arr) -> np.ndarray:
@@ -77,13 +77,49 @@ class Panel:
 
 
 def hash_frame(frame: pd.DataFrame, unit: str, period: str, columns) -> str:
-    """sha256 of the used columns in canonical (unit, period) order, so the hash
-    does not depend on the row order of the file."""
+    """sha256 of the used columns of a long frame in canonical (unit, period) order,
+    so the hash does not depend on the row order (the Monte Carlo's world key; a
+    panel's own ``data_hash`` is :func:`panel_hash` of its arrays)."""
     cols = [unit, period, *[c for c in columns if c not in (unit, period)]]
     canon = frame[cols].sort_values([unit, period], kind="mergesort").reset_index(drop=True)
     digest = hashlib.sha256()
     digest.update(",".join(map(str, cols)).encode())
     digest.update(pd.util.hash_pandas_object(canon, index=False).values.tobytes())
+    return digest.hexdigest()
+
+
+#: Version of the panel hash (:func:`panel_hash`); part of every hash, so a change of
+#: what is hashed never meets an old cache entry under the same name.
+PANEL_HASH_VERSION = "robustgmm-panel-hash-2"
+
+
+def _unit_bytes(units: np.ndarray) -> bytes:
+    """The sorted unit ids as bytes: numbers as their machine values, text (and any
+    other object) through pandas' vectorised 64-bit hash of each id."""
+    if units.dtype.kind in "iufb":
+        return units.dtype.str.encode() + np.ascontiguousarray(units).tobytes()
+    return b"object" + pd.util.hash_array(np.asarray(units, dtype=object),
+                                          categorize=False).tobytes()
+
+
+def panel_hash(units: np.ndarray, periods: np.ndarray, observed: np.ndarray,
+               values: Mapping[str, np.ndarray]) -> str:
+    """sha256 of a laid-out panel: the used column names, the sorted unit ids, the
+    calendar, which unit-period cells have a row in the data, and the bytes of each
+    N × P value array (missing cells NaN, one NaN bit pattern).
+
+    The layout is canonical (units sorted, periods on the calendar), so the hash
+    does not depend on the row order of the file; the cells with a row record
+    which rows exist, so a row whose used values are all missing still counts. Each
+    array is hashed once as it lies in memory (no per-row hashing, no sort)."""
+    digest = hashlib.sha256()
+    digest.update(PANEL_HASH_VERSION.encode())
+    digest.update(",".join(map(str, values)).encode())
+    digest.update(_unit_bytes(units))
+    digest.update(np.ascontiguousarray(periods, dtype=np.int64).tobytes())
+    digest.update(np.packbits(observed).tobytes())
+    for arr in values.values():
+        digest.update(np.ascontiguousarray(arr).tobytes())
     return digest.hexdigest()
 
 
@@ -93,30 +129,40 @@ def panel_from_frame(frame: pd.DataFrame, unit: str, period: str, columns,
 
     Assumes: no duplicate (unit, period) pairs, integer periods, numeric finite-or-NaN
     values in ``columns``. Units are sorted by id so that the layout does not depend
-    on the row order of the file.
+    on the row order of the file: the one sort of the layout is that of the distinct
+    ids (:func:`~robustgmm.data.validate.unit_codes`; none for whole-number ids over
+    a narrow range); every column is then one scatter into its
+    flat N × P array, and the hash reads the arrays (:func:`panel_hash`).
     """
     columns = list(dict.fromkeys(columns))
     if frame.empty:
         raise InputError(f"{source}: no rows left to estimate on")
-    unit_codes, unit_ids = pd.factorize(frame[unit], sort=True)
-    per = frame[period].to_numpy().astype(np.int64)
+    codes, unit_ids = unit_codes(frame[unit])
+    per = frame[period].to_numpy().astype(np.int64, copy=False)
     p0, p1 = int(per.min()), int(per.max())
     periods = np.arange(p0, p1 + 1, dtype=np.int64)
-    col_idx = per - p0
+    n_units, n_periods = len(unit_ids), len(periods)
+    cell = codes.astype(np.int64) * n_periods + (per - p0)
+    observed = np.zeros(n_units * n_periods, dtype=bool)
+    observed[cell] = True
     values = {}
     n_missing_rows = np.zeros(len(frame), dtype=bool)
     for name in columns:
         col = frame[name].to_numpy(dtype=np.float64)
-        n_missing_rows |= np.isnan(col)
-        arr = np.full((len(unit_ids), len(periods)), np.nan)
-        arr[unit_codes, col_idx] = col
-        values[name] = arr
+        missing = np.isnan(col)
+        n_missing_rows |= missing
+        arr = np.full(n_units * n_periods, np.nan)
+        arr[cell] = col
+        if missing.any():  # one NaN bit pattern, whatever the reader left
+            arr[cell[missing]] = np.nan
+        values[name] = arr.reshape(n_units, n_periods)
+    units = np.asarray(unit_ids)
     return Panel(
-        units=np.asarray(unit_ids),
+        units=units,
         periods=periods,
         values=values,
         source=source,
-        data_hash=hash_frame(frame, unit, period, columns),
+        data_hash=panel_hash(units, periods, observed, values),
         dropped_missing=int(n_missing_rows.sum()),
     )
 

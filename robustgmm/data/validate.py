@@ -127,7 +127,10 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
         raise InputError(f"{where}: the data has no rows")
 
     problems: list[str] = []
-    out = frame[needed].copy()
+    # a new frame (under copy-on-write, pandas >= 3, sharing the columns until one
+    # is replaced below): the caller's frame never changes and no column is copied
+    # that is not converted
+    out = frame[needed]
 
     # unit ids: present; one type so that sorting works
     units = out[spec.unit]
@@ -138,14 +141,18 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
                         + (f" and {n - 1} more rows" if n > 1 else ""))
     elif (units.dtype == object or isinstance(units.dtype, pd.CategoricalDtype)
           or pd.api.types.is_string_dtype(units.dtype)):
-        mixed = _mixed_ids(units, spec.unit, where, row)
+        is_text = _text_mask(units)
+        mixed = _mixed_ids(units, is_text, spec.unit, where, row)
         if mixed:
             problems.append(mixed)
         else:
-            kinds = {type(v) for v in units}
-            if len(kinds) > 1 or isinstance(units.dtype, pd.CategoricalDtype):
+            # one kind of id (all text, or numbers of one type) sorts as is; the
+            # per-value look is needed only for an object column of numbers
+            several = (not is_text.all()) and len({type(v) for v in units}) > 1
+            if several or isinstance(units.dtype, pd.CategoricalDtype):
                 units = units.astype(str)
-            out[spec.unit] = _strip_ids(units, spec.unit, where)
+                is_text = np.ones(len(units), dtype=bool)
+            out[spec.unit] = _strip_ids(units, is_text, spec.unit, where)
 
     # periods: whole numbers
     per = out[spec.period]
@@ -183,9 +190,8 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
                         f"{ints.max()} ({span} periods on the calendar); lags are taken "
                         "between consecutive whole numbers, so use years or a running "
                         "period number")
-                elif _period_step(ints) > 1:
-                    step = _period_step(ints)
-                    shown = ", ".join(str(v) for v in np.unique(ints)[:3])
+                elif (step := _period_step(ints)) > 1:
+                    shown = ", ".join(str(v) for v in _distinct(ints)[:3])
                     problems.append(
                         f"{where}: period column {spec.period!r} holds periods spaced "
                         f"{step} apart ({shown}, ...); lags are taken between consecutive "
@@ -194,7 +200,7 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
     # duplicate unit-period rows
     if not problems:
-        dup = out.duplicated([spec.unit, spec.period], keep=False)
+        dup = _duplicate_cells(out[spec.unit], out[spec.period].to_numpy())
         if dup.any():
             groups = out[dup].groupby([spec.unit, spec.period], sort=False).groups
             examples = []
@@ -232,23 +238,84 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
 
 
+def _distinct(periods: np.ndarray) -> np.ndarray:
+    """The distinct periods in order, from one count over the calendar (its span is
+    at most :data:`MAX_CALENDAR` here): no sort of the rows."""
+    lo = int(periods.min())
+    return lo + np.flatnonzero(np.bincount(periods - lo))
+
+
 def _period_step(periods: np.ndarray) -> int:
     """The common spacing of the distinct periods (1 for consecutive years; 2 for
     biennial waves): the greatest common divisor of their differences."""
-    distinct = np.unique(periods)
+    distinct = _distinct(periods)
     if len(distinct) < 2:
         return 1
     return int(reduce(math.gcd, np.diff(distinct).tolist()))
 
 
-def _mixed_ids(units: pd.Series, column: str, where: str, row: Callable) -> str | None:
+def unit_codes(units: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """``(codes, ids)``: each row's position in the sorted distinct unit ids, as
+    ``pd.factorize(units, sort=True)``. Whole-number ids over a range not much wider
+    than the rows (1..N, firm numbers) are counted over that range, with no hash
+    table and no sort; other ids go to ``pd.factorize``, which sorts the distinct ids
+    only."""
+    if units.dtype.kind in "iu" and len(units):
+        ids = units.to_numpy()
+        lo, hi = int(ids.min()), int(ids.max())
+        if hi - lo <= 4 * len(ids) + 1024:
+            offset = (ids - lo).astype(np.intp)
+            present = np.bincount(offset, minlength=hi - lo + 1) > 0
+            position = np.cumsum(present) - 1
+            return position[offset], (lo + np.flatnonzero(present)).astype(ids.dtype)
+    codes, ids = pd.factorize(units, sort=True)
+    return codes, np.asarray(ids)
+
+
+def _duplicate_cells(units: pd.Series, periods: np.ndarray) -> pd.Series:
+    """Rows whose (unit, period) occurs more than once (all of them, as
+    ``DataFrame.duplicated(keep=False)``): each row's calendar cell
+    ``code(unit) × span + period − first`` counted with one ``bincount``
+    (:func:`unit_codes`); when the calendar is much sparser than the rows, a
+    hash-based count of the cell numbers instead."""
+    codes, uniques = unit_codes(units)
+    lo = int(periods.min())
+    span = int(periods.max()) - lo + 1
+    cell = codes.astype(np.int64) * span + (periods.astype(np.int64) - lo)
+    if len(uniques) * span <= max(8 * len(cell), 1 << 16):
+        dup = np.bincount(cell, minlength=len(uniques) * span)[cell] > 1
+    else:
+        dup = pd.Series(cell).duplicated(keep=False).to_numpy()
+    return pd.Series(dup, index=units.index)
+
+
+def _text_mask(units: pd.Series) -> np.ndarray:
+    """Which ids are text. A string column (pandas' ``str`` dtype, or an object column
+    that pandas infers as all strings) is all text without looking at each value;
+    only an object column of other or mixed kinds is looked at value by value."""
+    if pd.api.types.is_string_dtype(units.dtype) and units.dtype != object:
+        return np.ones(len(units), dtype=bool)
+    if isinstance(units.dtype, pd.CategoricalDtype):  # one look per category
+        text = np.array([isinstance(c, str) for c in units.cat.categories], dtype=bool)
+        codes = units.cat.codes.to_numpy()
+        return np.where(codes >= 0, text[np.maximum(codes, 0)] if len(text) else False, False)
+    if units.dtype == object:
+        kind = pd.api.types.infer_dtype(units, skipna=True)
+        if kind == "string":
+            return np.ones(len(units), dtype=bool)
+        if kind in ("integer", "floating", "mixed-integer-float", "decimal", "boolean"):
+            return np.zeros(len(units), dtype=bool)
+    return units.map(lambda v: isinstance(v, str)).to_numpy()
+
+
+def _mixed_ids(units: pd.Series, is_text: np.ndarray, column: str, where: str,
+               row: Callable) -> str | None:
     """A problem line when a unit column holds numbers and text side by side (cells
     typed differently in a spreadsheet): ``7`` and ``"7"`` or ``"007"`` would be read
     as different units, or as one, depending on how they are compared, so the ids
     must be written one way. (A csv column is parsed as a whole: one kind.)"""
     if isinstance(units.dtype, pd.CategoricalDtype):
         return None
-    is_text = units.map(lambda v: isinstance(v, str)).to_numpy()
     if is_text.all() or not is_text.any():
         return None
     number, text = units.index[~is_text][0], units.index[is_text][0]
@@ -257,7 +324,7 @@ def _mixed_ids(units: pd.Series, column: str, where: str, row: Callable) -> str 
             "the same way (all as text or all as numbers)")
 
 
-def _strip_ids(units: pd.Series, column: str, where: str) -> pd.Series:
+def _strip_ids(units: pd.Series, is_text: np.ndarray, column: str, where: str) -> pd.Series:
     """Text unit ids without surrounding white space.
 
     ``"A1"`` and ``"A1 "`` are one unit written two ways (a common spreadsheet
@@ -265,10 +332,10 @@ def _strip_ids(units: pd.Series, column: str, where: str) -> pd.Series:
     warns (one line, one example) when that made two written ids one. Rows of the
     merged unit in the same period are then duplicate unit-period rows (an error).
     """
-    is_text = units.map(lambda v: isinstance(v, str)).to_numpy()
     if not is_text.any():
         return units
-    stripped = units.where(~is_text, units[is_text].str.strip())
+    stripped = (units.str.strip() if is_text.all()
+                else units.where(~is_text, units[is_text].str.strip()))
     changed = is_text & (stripped != units).to_numpy()
     if changed.any():
         written = pd.DataFrame({"raw": units[is_text], "id": stripped[is_text]})
@@ -333,6 +400,20 @@ def _affine_copy(x: np.ndarray, y: np.ndarray) -> bool:
     Both are centred and scaled to unit spread first, so the check does not depend
     on the units either is measured in; then ``x`` is a copy when its residual on
     ``y`` is below 1e-10 of its own spread."""
+    # A copy has correlation ±1: 1 − r² is the mean squared residual of the
+    # standardised fit below, at most 1e-20 for a copy. r from five sums of values
+    # shifted by their first (no spread lost to a large level) rejects every column
+    # far from a copy without the row-by-row residuals; the 1e-6 margin lies far
+    # above the rounding of those sums.
+    xd, yd = x - x[0], y - y[0]
+    n = len(x)
+    sx_, sy_ = xd.sum(), yd.sum()
+    vx, vy = xd @ xd - sx_ * sx_ / n, yd @ yd - sy_ * sy_ / n
+    if vx <= 0 or vy <= 0:
+        return False
+    r2 = (xd @ yd - sx_ * sy_ / n) ** 2 / (vx * vy)
+    if 1.0 - r2 > 1e-6:
+        return False
     xc, yc = x - x.mean(), y - y.mean()
     sx, sy = np.sqrt(np.mean(xc * xc)), np.sqrt(np.mean(yc * yc))
     if sx == 0 or sy == 0:
