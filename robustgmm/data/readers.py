@@ -83,8 +83,8 @@ def _read_csv_fast(path: Path, columns: list) -> pd.DataFrame | None:
     """The columns read by pandas' pyarrow CSV engine (multi-threaded, several times
     faster than the C engine on large files), or None when its frame could differ
     from the C engine's, which then reads the file: pyarrow not installed, a file it
-    refuses (another encoding, ragged rows), a column it typed as dates or other
-    types the C engine never makes, or a text column whose values all read as
+    refuses (ragged rows), a column it typed as anything but numbers or pandas'
+    string type (dates, bytes of a file in another encoding, ...), or a text column whose values all read as
     numbers to the C engine (e.g. ``" 7"`` with a space: pyarrow keeps text)."""
     try:
         import pyarrow  # noqa: F401
@@ -99,8 +99,10 @@ def _read_csv_fast(path: Path, columns: list) -> pd.DataFrame | None:
         dtype = frame[name].dtype
         if dtype.kind in "iufb":
             continue
-        if not (pd.api.types.is_string_dtype(dtype) or dtype == object):
-            return None  # dates, times, nulls: typed differently by the C engine
+        if not isinstance(dtype, pd.StringDtype):
+            # dates, times, bytes of another encoding, empty columns: typed
+            # differently by the C engine
+            return None
         present = frame[name].dropna()
         # a column is text to the C engine when any value is not a number: the
         # first present value decides, except when every value is a number

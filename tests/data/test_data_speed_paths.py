@@ -1,0 +1,114 @@
+"""The fast paths of the data layer (issue 17) give what the plain pandas calls they
+replace give: the pyarrow CSV engine's frame equals the C engine's (or the C engine
+reads the file), the duplicate check equals ``DataFrame.duplicated(keep=False)``,
+the unit codes equal ``pd.factorize(sort=True)``, and the panel hash names the rows
+that exist. The references are the pandas functions themselves."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from robustgmm.data import build_panel
+from robustgmm.data import readers
+from robustgmm.data.validate import _affine_copy, _duplicate_cells, unit_codes
+from robustgmm.modelfile import spec_from_dict
+
+
+def _c_engine(path: Path, columns) -> pd.DataFrame:
+    return readers._read_csv(path, usecols=lambda c: c in set(columns), low_memory=False)
+
+
+CSV_CASES = {
+    "numbers": "id,year,y,x\n1,2000,1.5,2\n1,2001,0.1,3\n2,2000,,4\n2,2001,1e-3,-5\n",
+    "text ids": "id,year,y,x\nA1,2000,1.5,2\nB 2,2001,NA,3\n007x,2000,0.25,\n",
+    "leading zeros": "id,year,y,x\n007,2000,1.5,2\n008,2001,0.1,3\n",
+    "many decimals": "id,year,y,x\n1,2000,0.1000000000000000055511151231257827,2\n"
+                     "1,2001,2.2250738585072014e-308,3\n",
+    "semicolons": "id;year;y;x\n1;2000;1.5;2\n2;2001;0.5;3\n",
+}
+
+
+@pytest.mark.parametrize("case", sorted(CSV_CASES))
+def test_fast_csv_frame_equals_the_c_engine(tmp_path, case):
+    path = tmp_path / "panel.csv"
+    path.write_text(CSV_CASES[case], encoding="utf-8")
+    cols = ["id", "year", "y", "x"]
+    fast = readers._read_csv_fast(path, cols)
+    assert fast is not None
+    pd.testing.assert_frame_equal(fast[cols], _c_engine(path, cols)[cols], check_exact=True)
+
+
+@pytest.mark.parametrize("text", [
+    "id,year,y\n 7,2000,1.5\n 8,2001,0.1\n",          # numbers written with a space
+    "id,year,y\n1,2000-01-01,1.5\n2,2001-01-01,2\n",   # dates: pyarrow would type them
+    "id,year,y\n1,2000,1.5\nx,2001,2\n",               # a number, then text
+    "id,year,y\n1,2000,true\n2,2001,false\n",          # booleans
+    "id,year,y\n1,2000,\n2,2001,\n",                   # an empty column
+])
+def test_fast_csv_equals_the_c_engine_or_gives_way(tmp_path, text):
+    path = tmp_path / "panel.csv"
+    path.write_text(text, encoding="utf-8")
+    cols = ["id", "year", "y"]
+    want = _c_engine(path, cols)[cols]
+    fast = readers._read_csv_fast(path, cols)
+    if fast is not None:
+        pd.testing.assert_frame_equal(fast[cols], want, check_exact=True)
+    pd.testing.assert_frame_equal(readers._read(path, ".csv", cols)[cols], want,
+                                  check_exact=True)
+
+
+def test_latin1_csv_is_read_by_the_c_engine(tmp_path):
+    path = tmp_path / "panel.csv"
+    path.write_bytes("id,year,y\nK\xf6ln,2000,1.5\nK\xf6ln,2001,2\n".encode("latin-1"))
+    frame = readers._read(path, ".csv", ["id", "year", "y"])
+    assert list(frame["id"]) == ["K\xf6ln", "K\xf6ln"]
+
+
+@pytest.mark.parametrize("ids", ["dense", "sparse", "text"])
+def test_duplicates_and_unit_codes_equal_pandas(ids):
+    rng = np.random.default_rng(4)
+    n = 3000
+    units = rng.integers(1, 400, size=n)
+    if ids == "sparse":
+        units = units * 10**9
+    frame = pd.DataFrame({"u": units, "t": rng.integers(1990, 2010, size=n)})
+    if ids == "text":
+        frame["u"] = "firm" + frame["u"].astype(str)
+    want = frame.duplicated(["u", "t"], keep=False).to_numpy()
+    got = _duplicate_cells(frame["u"], frame["t"].to_numpy()).to_numpy()
+    np.testing.assert_array_equal(got, want)
+    codes, uniques = unit_codes(frame["u"])
+    ref_codes, ref_uniques = pd.factorize(frame["u"], sort=True)
+    np.testing.assert_array_equal(codes, ref_codes)
+    np.testing.assert_array_equal(np.asarray(uniques), np.asarray(ref_uniques))
+
+
+def test_hash_counts_a_row_whose_used_values_are_all_missing():
+    spec = spec_from_dict({"data": {"unit": "id", "period": "year"},
+                           "model": {"outcome": "y", "regressors": [{"name": "x"}]}},
+                          source="m.toml")
+    rng = np.random.default_rng(0)
+    rows = [(u, t) for u in range(1, 5) for t in range(2000, 2008)]
+    df = pd.DataFrame(rows, columns=["id", "year"])
+    df["y"], df["x"] = rng.normal(size=len(df)), rng.normal(size=len(df))
+    empty_row = df.copy()
+    empty_row.loc[3, ["y", "x"]] = np.nan
+    without = empty_row.drop(index=3)
+    a, b = build_panel(empty_row, spec), build_panel(without, spec)
+    for name in a.values:  # the same arrays ...
+        np.testing.assert_array_equal(a.values[name], b.values[name])
+    assert a.data_hash != b.data_hash  # ... but not the same rows
+    assert a.dropped_missing == b.dropped_missing + 1
+
+
+def test_affine_copy_check_matches_its_definition():
+    rng = np.random.default_rng(1)
+    y = rng.normal(size=5000) + 1e6          # a large level: no spread lost
+    assert _affine_copy(3.0 - 2.0 * y, y)
+    near = 3.0 - 2.0 * y
+    near[17] += 1e-3                          # one row off: not a copy
+    assert not _affine_copy(near, y)
+    assert not _affine_copy(rng.normal(size=5000), y)
