@@ -41,6 +41,11 @@ TEST_GROUPS = (
 )
 
 
+#: Said under a Sargan statistic that has a number (Sargan 1958; Arellano & Bond 1991).
+SARGAN_CONDITION = ("Sargan is chi-squared only if the errors are homoskedastic; Hansen J "
+                    "does not need it.")
+
+
 def test_block(result) -> list[str]:
     """The specification tests: 'Over-identification' (Hansen J with the robust
     weight, Sargan with the homoskedastic one), 'Serial correlation of the differenced
@@ -64,6 +69,10 @@ def test_block(result) -> list[str]:
             df = "" if t.df is None else str(t.df)
             out.append(f"  {name:<{width}}  {_num(t.statistic, 10, 3)}  {df:>4}  "
                        f"{p_text(t):>7}")
+        sargan = result.tests.get("sargan") if heading == "Over-identification" else None
+        if sargan is not None and not getattr(sargan, "reason", None):
+            # rule 4: a statistic shown with the condition under which it is chi-squared
+            out.append(f"  {SARGAN_CONDITION}")
     groups = list(result.difference_hansen.items())
     if groups:
         width = max([len("group")] + [len(g) for g, _ in groups])

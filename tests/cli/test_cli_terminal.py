@@ -11,6 +11,7 @@ import os
 import pty
 import subprocess
 import sys
+import tomllib
 from pathlib import Path
 
 import pandas as pd
@@ -18,6 +19,7 @@ import pytest
 
 from helpers_audit import model_dict, write_panel
 from robustgmm.cli import main
+from robustgmm.terminal import SARGAN_CONDITION
 from robustgmm.core import fit
 from robustgmm.data import load_panel
 from helpers_toml import dumps_toml
@@ -69,6 +71,20 @@ def test_test_block_in_our_own_words(tmp_path, capsys):
     assert header.split() == ["group", "C", "df", "p"]
     # the earlier parenthetical labels and subgroup heading are gone
     assert "(not robust)" not in out and "excluding each instrument group" not in out
+
+
+def test_sargan_is_shown_with_its_condition(tmp_path, capsys):
+    # difference GMM: Sargan has a number, chi-squared only under homoskedastic errors
+    # (Sargan 1958; Arellano & Bond 1991), so the line under it says so
+    model = _project(tmp_path)
+    d = tomllib.loads(model.read_text())
+    d.setdefault("method", {})["equations"] = "difference"
+    model.write_text(dumps_toml(d))
+    assert main(["fit", str(model)]) == 0
+    lines = [line.strip() for line in capsys.readouterr().out.splitlines()]
+    sargan = next(i for i, line in enumerate(lines) if line.startswith("Sargan, "))
+    assert lines[sargan].split()[-1].replace(".", "").replace("<", "").isdigit()
+    assert lines[sargan + 1] == SARGAN_CONDITION
 
 
 def test_a_closed_pipe_ends_quietly(tmp_path):
