@@ -1,6 +1,6 @@
 """``robustgmm bench``: speed and scale of the estimation core, as ratios.
 
-Four workloads on simulated panels (:mod:`robustgmm.simulate`, a known process),
+Workloads on simulated panels (:mod:`robustgmm.simulate`, a known process),
 each reported as a ratio of two timings taken in the same run, so that the figures
 mean the same on a fast or a slow machine (issue 5 of the project):
 
@@ -24,6 +24,16 @@ mean the same on a fast or a slow machine (issue 5 of the project):
    problem (target ≤ 0.5). Our time includes building the transformed rows and
    instruments from the panel and every diagnostic; theirs starts from the stacked
    arrays.
+5. **Calibrated Monte Carlo** (:func:`simulation`).
+6. **Command-line parallelism.** ``robustgmm audit --jobs 2`` against ``--jobs 1``,
+   each a fresh process: a 32-variant audit (N = 3,000, T = 9; target ≤ 1.05: small
+   audits run in the command's process) and a 200-variant one (N = 5,000, T = 12;
+   target ≤ 0.65 and under 60 s). Workloads 3 and 5 start their workers whatever
+   the estimate (``start_workers=True``): they measure the parallel speed itself.
+7. **Data layer.** Reading, validating and laying out the panel against the fit at
+   N = 200,000 for CSV and parquet (target ≤ 0.3), and the command line's marginal
+   cost of a fit from N = 4,000 to 16,000 against the dense ``Z'Z`` of the added
+   rows (target ≤ 2).
 
 Timings are the best of a few repeats (``time.perf_counter``), interleaved between
 the two sides of a ratio so that load from other processes hits both alike. The
@@ -79,17 +89,32 @@ class Sizes:
     sim_periods: int = 10
     sim_reps: int = 200
     sim_scale_reps: int = 10
+    #: the command line's parallelism (issue 17): a small audit (32 variants) and,
+    #: when ``cli_large_units`` is set, a 200-variant one
+    cli_small_units: int | None = 3_000
+    cli_small_periods: int = 9
+    cli_large_units: int | None = 5_000
+    cli_large_periods: int = 12
+    cli_repeats: int = 2
+    #: the data layer against the fit, and the command line's marginal cost
+    data_units: int = 200_000
+    data_periods: int = 8
+    cli_marginal_units: tuple[int, int] = (4_000, 16_000)
 
 
 FULL = Sizes("full")
 QUICK = Sizes("quick", marginal_units=(1_000, 4_000), scale_units=(5_000, 20_000),
               scale_aim_units=None, audit_units=500, reference_units=500, repeats=2,
-              sim_reps=20, sim_large_units=2_000)
+              sim_reps=20, sim_large_units=2_000, cli_small_units=1_000,
+              cli_large_units=None, cli_repeats=1, data_units=20_000,
+              cli_marginal_units=(1_000, 4_000))
 #: For the tests: every workload runs, in seconds.
 TINY = Sizes("tiny", marginal_units=(60, 120), marginal_periods=6, scale_units=(80, 160),
              scale_aim_units=None, scale_periods=6, audit_units=60, audit_periods=6,
              reference_units=60, reference_periods=6, repeats=1, sim_units=60,
-             sim_large_units=120, sim_periods=6, sim_reps=10, sim_scale_reps=10)
+             sim_large_units=120, sim_periods=6, sim_reps=10, sim_scale_reps=10,
+             cli_small_units=None, cli_large_units=None, cli_repeats=1,
+             data_units=300, data_periods=6, cli_marginal_units=(60, 120))
 SIZES = {"full": FULL, "quick": QUICK, "tiny": TINY}
 #: Environment variable that picks the sizes (``tiny`` for tests).
 SIZES_ENV = "ROBUSTGMM_BENCH_SIZES"
@@ -421,7 +446,8 @@ def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
         for _ in range(max(2, sizes.repeats)):
             for jobs in (1, 2):
                 runs[jobs].append(_best(
-                    lambda: run_audit(spec, jobs=jobs, cache_dir=None, progress=False)))
+                    lambda: run_audit(spec, jobs=jobs, cache_dir=None, progress=False,
+                                      start_workers=True)))
         t_jobs = {j: min(r[1:]) for j, r in runs.items()}
     out.rows.append(("audit, jobs = 1 (no cache)", _fmt_s(t_jobs[1])))
     out.rows.append(("audit, jobs = 2 (no cache; worker processes already started)",
@@ -530,7 +556,8 @@ def simulation(sizes: Sizes, echo=print) -> Outcome:
         t_sim = {}
         for jobs in (1, 2):
             t0 = time.perf_counter()
-            simulate(spec, reps=R, seed=1, jobs=jobs, cache_dir=None, progress=False)
+            simulate(spec, reps=R, seed=1, jobs=jobs, cache_dir=None, progress=False,
+                     start_workers=True)
             t_sim[jobs] = time.perf_counter() - t0
         per_rep = t_sim[1] / R
         big = spec_for(sizes.sim_large_units)
@@ -560,7 +587,204 @@ def simulation(sizes: Sizes, echo=print) -> Outcome:
 
 
 # ---------------------------------------------------------------------------
-WORKLOADS = (marginal_cost, scale, audit_throughput, reference, simulation)
+# 6. the command line's parallelism (issue 17)
+# ---------------------------------------------------------------------------
+#: The small audit: 2 x 2 x 2 x 2 x 2 = 32 variants.
+CLI_SMALL_VARY = {"equations": ["difference", "system"], "form": ["per-period", "collapsed"],
+                  "transform": ["fd", "fod"], "steps": [1, 2], "last_lag": [3, "all"]}
+#: The large audit: 2 x 2 x 2 x 5 = 40 share groups of 5 windows = 200 variants.
+CLI_LARGE_VARY = {"equations": ["difference", "system"], "form": ["per-period", "collapsed"],
+                  "transform": ["fd", "fod"], "last_lag": [2, 3, 4, 6, "all"]}
+CLI_LARGE_LAGS = {"x": [[0], [0, 1], [1], [0, 1, 2], [1, 2]]}
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, str):
+        return json.dumps(v)
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return str(v).lower() if isinstance(v, bool) else str(v)
+
+
+def _model_file(folder: Path, data: Path, vary: dict | None = None,
+                lags: dict | None = None, form: str = "per-period") -> Path:
+    """A model file of the bench's model (:func:`_spec`) on ``data``."""
+    lines = ["[data]", f"file = {json.dumps(data.name)}", 'unit = "unit"', 'period = "period"',
+             "[model]", 'outcome = "y"', "outcome_lags = [1]", "time_effects = true",
+             "[[model.regressors]]", 'name = "x"', "lags = [0]", 'role = "endogenous"',
+             "[[model.regressors]]", 'name = "w"', "lags = [0]", 'role = "exogenous"',
+             "[method]", 'equations = "system"', 'transform = "fd"', "steps = 2",
+             "[instruments]", "first_lag = 2", f"form = {json.dumps(form)}"]
+    if vary:
+        lines.append("[audit.vary]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in vary.items()]
+    if lags:
+        lines.append("[audit.vary.lags]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in lags.items()]
+    path = folder / f"model_{data.stem}_{len(vary or {})}_{len(lags or {})}.toml"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+def _cli_env() -> dict:
+    env = dict(os.environ)
+    src = str(Path(__file__).resolve().parent.parent)
+    env["PYTHONPATH"] = src + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
+    threads = str(blas_threads())  # the fit command: the bench's BLAS threads
+    for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        env[name] = threads
+    return env
+
+
+def _cli_seconds(*args) -> tuple[float, str]:
+    """Wall time of ``python -m robustgmm ARGS`` (a fresh process, as a user runs it)
+    and its standard error."""
+    t0 = time.perf_counter()
+    proc = subprocess.run([sys.executable, "-m", "robustgmm", *map(str, args)],
+                          capture_output=True, text=True, env=_cli_env())
+    seconds = time.perf_counter() - t0
+    if proc.returncode != 0:
+        tail = (proc.stderr.strip().splitlines() or ["no message"])[-1]
+        raise RuntimeError(f"robustgmm {args[0]} failed: {tail}")
+    return seconds, proc.stderr
+
+
+def _where_line(stderr: str) -> str:
+    for line in stderr.splitlines():
+        if "estimated" in line and ("in this process" in line or "worker processes" in line):
+            return line.removeprefix("robustgmm: ")
+    return "no estimate printed"
+
+
+def cli_parallel(sizes: Sizes, echo=print) -> Outcome:
+    """``robustgmm audit --jobs 2`` against ``--jobs 1`` through the command line (a
+    fresh process each, the report included, no cache), the two alternating and the
+    best of each counted: a small audit (parallelism must not cost time: ≤ 1.05) and
+    a 200-variant one (≤ 0.65, and under 60 s)."""
+    from .simulate import simulate_panel
+    out = Outcome("6. Command line: parallel workers against one process")
+    cases = [("small", sizes.cli_small_units, sizes.cli_small_periods, CLI_SMALL_VARY, None,
+              1.05)] if sizes.cli_small_units else []
+    if not cases:  # the tests' sizes: each run would be mostly the report's fixed cost
+        out.notes.append("not run at these sizes")
+        return out
+    if sizes.cli_large_units:
+        cases.append(("large", sizes.cli_large_units, sizes.cli_large_periods, CLI_LARGE_VARY,
+                      CLI_LARGE_LAGS, 0.65))
+    with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
+        tmp = Path(tmp)
+        for name, N, T, vary, lags, limit in cases:
+            data = tmp / f"{name}.parquet"
+            simulate_panel(N, T, seed=41).to_parquet(data, index=False)
+            model = _model_file(tmp, data, vary, lags)
+            best = {1: math.inf, 2: math.inf}
+            where = {}
+            n_variants = None
+            for _ in range(max(1, sizes.cli_repeats)):
+                for jobs in (1, 2):
+                    folder = tmp / f"out_{name}_{jobs}"
+                    seconds, err = _cli_seconds("audit", model, "--out", folder, "--jobs", jobs,
+                                                "--no-cache", "--force")
+                    best[jobs] = min(best[jobs], seconds)
+                    where[jobs] = _where_line(err)
+                    manifest = json.loads((folder / "manifest.json").read_text())
+                    n_variants = manifest["run"]["variants"]
+            out.rows.append((f"{name} audit: {n_variants} variants, N = {N:,}, T = {T}",
+                             f"--jobs 1 {_fmt_s(best[1])}, --jobs 2 {_fmt_s(best[2])} "
+                             f"(--jobs 2 said: {where[2]})"))
+            out.ratios.append((f"{name} audit ({n_variants} variants) --jobs 2 / --jobs 1",
+                               best[2] / best[1], limit, None))
+            if name == "large":
+                out.ratios.append(("200-variant audit with --jobs 2 / 60 s", best[2] / 60.0,
+                                   1.0, None))
+    out.notes.append(f"each run a fresh `robustgmm audit ... --no-cache` process (reading, "
+                     f"estimating, the report), best of {max(1, sizes.cli_repeats)} "
+                     "alternating runs per side")
+    return out
+
+
+# ---------------------------------------------------------------------------
+# 7. the data layer against the fit (issue 17)
+# ---------------------------------------------------------------------------
+def data_layer(sizes: Sizes, echo=print) -> Outcome:
+    """Reading, validating and laying out the panel (:func:`robustgmm.data.load_panel`)
+    against the fit it feeds, in this process, for CSV and parquet (target ≤ 0.3);
+    and the command line's marginal cost: the extra time of ``robustgmm fit`` (a
+    fresh process: reading the CSV file included) from N₁ to N₂ units against the
+    extra time of the dense ``Z'Z`` of the added rows (target ≤ 2)."""
+    from .core import fit
+    from .core.dense import dense_rows
+    from .data import load_panel
+    from .simulate import simulate_panel
+    out = Outcome("7. Data layer: reading, validating and laying out against the fit")
+    N, T = sizes.data_units, sizes.data_periods
+    with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
+        tmp = Path(tmp)
+        frame = simulate_panel(N, T, seed=51)
+        paths = {".csv": tmp / "panel.csv", ".parquet": tmp / "panel.parquet"}
+        frame.to_csv(paths[".csv"], index=False)
+        frame.to_parquet(paths[".parquet"], index=False)
+        del frame
+        base = _spec(form="collapsed", equations="system", steps=2)
+        specs = {k: dataclasses.replace(base, data_file=p, source=str(p)) for k, p in paths.items()}
+        panel = load_panel(specs[".parquet"])  # warm up the readers' imports
+        fit(base, panel)
+        t_read = {k: math.inf for k in paths}
+        t_fit = math.inf
+        for _ in range(sizes.repeats):
+            for k in paths:
+                t_read[k] = min(t_read[k], _best(lambda: load_panel(specs[k])))
+            t_fit = min(t_fit, _best(lambda: fit(base, panel)))
+        res = fit(base, panel)
+        out.rows.append(("model", f"collapsed two-step system GMM, N = {N:,}, T = {T}, "
+                                  f"{res.counts.instruments} instruments"))
+        out.rows.append(("fit", _fmt_s(t_fit)))
+        for k in paths:
+            out.rows.append((f"read + validate + layout, {k[1:]}", _fmt_s(t_read[k])))
+            out.ratios.append((f"read + validate + layout ({k[1:]}) / fit, N = {N:,}",
+                               t_read[k] / t_fit, 0.3, None))
+        del panel
+
+        # the command line's marginal cost of a fit
+        n1, n2 = sizes.cli_marginal_units
+        Tm = sizes.marginal_periods
+        spec = _spec(equations="system", form="per-period", steps=2, time_effects=True)
+        models, dense = {}, {}
+        for n in (n1, n2):
+            data = tmp / f"fit{n}.csv"
+            simulate_panel(n, Tm, seed=11).to_csv(data, index=False)
+            models[n] = _model_file(tmp, data)
+            dense[n] = dense_rows(spec, _panel(n, Tm, seed=11))[2]
+        t_cli = {n: math.inf for n in (n1, n2)}
+        t_zz = {n: math.inf for n in (n1, n2)}
+        for _ in range(max(2, sizes.repeats)):
+            for n in (n1, n2):
+                t_cli[n] = min(t_cli[n], _cli_seconds("fit", models[n])[0])
+                z = dense[n]
+                t_zz[n] = min(t_zz[n], _best(lambda: z.T @ z))
+        L = dense[n2].shape[1]
+        extra_cli, extra_zz = t_cli[n2] - t_cli[n1], t_zz[n2] - t_zz[n1]
+        out.rows.append((f"robustgmm fit (CSV, T = {Tm}, per-period system, {L} instruments)",
+                         f"N = {n1:,} {_fmt_s(t_cli[n1])}, N = {n2:,} {_fmt_s(t_cli[n2])}"))
+        out.rows.append((f"dense Z'Z", f"N = {n1:,} {_fmt_s(t_zz[n1])}, "
+                                       f"N = {n2:,} {_fmt_s(t_zz[n2])}"))
+        ratio = extra_cli / extra_zz if extra_cli > 0 and extra_zz > 0 else math.nan
+        if not np.isfinite(ratio):
+            out.notes.append("a time difference was not positive (below timer noise): "
+                             "ratio not measured")
+        out.ratios.append(("command-line extra fit time / extra dense Z'Z time", ratio, 2.0,
+                           None))
+        del dense
+    out.notes.append("reading timed warm (imports done), best of repeats, interleaved with "
+                     "the fit; the command-line fit in a fresh process per run, so start-up "
+                     "and imports cancel in the difference")
+    gc.collect()
+    return out
+
+
+# ---------------------------------------------------------------------------
+WORKLOADS = (marginal_cost, scale, audit_throughput, reference, simulation, cli_parallel,
+             data_layer)
 
 
 def run(quick: bool = False, out_dir=None, *, sizes: Sizes | None = None,

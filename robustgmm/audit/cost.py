@@ -63,7 +63,7 @@ def instrument_estimate(spec, n_periods: int) -> int:
     per period (collapsed: one) in system GMM; one column per exogenous regressor and
     per period and equation for the time effects. Equal to the core's count
     (:func:`robustgmm.core.design_counts` before its redundancy checks) on the
-    benchmark's models, balanced panels with T = 9–16 and windows 2, 2–4 and all."""
+    benchmark's models, balanced panels with T = 7–16 and windows 2, 2–4 and all."""
     from .grid import window_of
     lags = [max(spec.outcome_lags, default=1)] + [max(r.lags, default=0) for r in spec.regressors]
     m = max(lags)
