@@ -808,7 +808,11 @@ def run(quick: bool = False, out_dir=None, *, sizes: Sizes | None = None,
         except Exception as exc:  # report the failure, keep the other workloads
             res = Outcome(workload.__name__)
             res.notes.append(f"failed: {type(exc).__name__}: {' '.join(str(exc).split())}")
-        res.notes.append(f"workload ran in {time.perf_counter() - t0:.1f} s")
+        try:  # the machine may be shared: the load beside the figures it moved
+            load = ", one-minute load average %.2f at its end" % os.getloadavg()[0]
+        except OSError:
+            load = ""
+        res.notes.append(f"workload ran in {time.perf_counter() - t0:.1f} s{load}")
         outcomes.append(res)
         _echo_outcome(res, echo)
     end_machine = _machine()
