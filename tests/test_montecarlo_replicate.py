@@ -44,6 +44,15 @@ def test_summary_formulas_by_hand():
     assert row["reps_ok"] == 3 and row["median"] == pytest.approx(0.6)
 
 
+def test_small_simulation_runs_in_process_whatever_jobs_and_says_so(spec):
+    # ten replications of a 4-variant grid on 60 units: far below the workers'
+    # start-up (robustgmm.audit.cost), so --jobs 2 stays in this process
+    lines = []
+    sim = rp.simulate(spec, reps=10, seed=5, jobs=2, notify=lines.append)
+    assert sim.run["jobs"] == 1 and sim.run["backend"] == "in-process"
+    assert len(lines) == 1 and lines[0].endswith(": running in this process"), lines
+
+
 def test_deterministic_across_jobs_and_cache(spec, tmp_path):
     one = rp.simulate(spec, reps=10, seed=5, jobs=1)
     two = rp.simulate(spec, reps=10, seed=5, jobs=2, cache_dir=tmp_path / "c",
