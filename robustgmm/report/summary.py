@@ -325,8 +325,10 @@ def rule_figures_text(rule: Firing) -> str:
 
 
 def figure_value(value, limit: int = 8) -> str:
-    """One figure of a rule as text; long lists (e.g. variant ids) are cut at
-    ``limit`` items with the total stated."""
+    """One figure of a rule as text; long lists (e.g. variant ids) and long mappings
+    (e.g. the simulated figures of each unreliable variant) are cut at ``limit`` items
+    with the total stated (verdict.json keeps them all); a nested record is put in
+    parentheses so that its 'key = value' pairs do not run into the next one."""
     if value is None:
         return "n/a"
     if isinstance(value, bool):
@@ -336,12 +338,19 @@ def figure_value(value, limit: int = 8) -> str:
     if isinstance(value, (list, tuple)):
         if not value:  # "uninformative ids = " with nothing after it reads as a cut
             return "none"
-        items = [figure_value(x, limit) for x in value[:limit]]
+        items = [_nested(x, limit) for x in value[:limit]]
         more = f", … ({len(value)} in all)" if len(value) > limit else ""
         return ", ".join(items) + more
     if isinstance(value, dict):
-        return "; ".join(f"{k} = {figure_value(v, limit)}" for k, v in value.items())
+        items = [f"{k} = {_nested(v, limit)}" for k, v in list(value.items())[:limit]]
+        more = f"; … ({len(value)} in all)" if len(value) > limit else ""
+        return "; ".join(items) + more
     return str(value)
+
+
+def _nested(value, limit: int) -> str:
+    text = figure_value(value, limit)
+    return f"({text})" if isinstance(value, dict) else text
 
 
 def threshold_text(value) -> str:

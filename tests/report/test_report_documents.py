@@ -552,3 +552,13 @@ def test_bounds_table_says_yes_or_no_not_python_booleans(built):
     assert rows and {r[col] for r in rows} <= {"yes", "no"}
     md = (out / "report.md").read_text()
     assert "| True |" not in md and "| False |" not in md
+
+
+def test_long_rule_figures_are_cut_and_nested_records_bracketed():
+    from robustgmm.report.summary import figure_value
+    per_variant = {f"v{i}": [{"term": "x[t]", "coverage": 0.5}] for i in range(20)}
+    text = figure_value({"variants": 20, "terms": per_variant})
+    # 8 variants shown, the total stated, each record in parentheses
+    assert text.count("(term = x[t]; coverage = 0.500)") == 8
+    assert text.endswith("v7 = (term = x[t]; coverage = 0.500); … (20 in all))")
+    assert figure_value(["a"] * 9) == "a, a, a, a, a, a, a, a, … (9 in all)"
