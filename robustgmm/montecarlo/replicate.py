@@ -408,8 +408,9 @@ def _local_jobs(n_jobs: int, n_reps: int, variants, panels, notify) -> int:
     if allowed <= 1:
         return n_jobs
     estimates = cost.Estimates()
-    one = sum(estimates.group_seconds([v.spec for v in g], runner._panel_of(g, panels))
-              for g in runner._share_groups(variants, shared=True))
+    one = cost.REPLICATION_FACTOR * sum(
+        estimates.group_seconds([v.spec for v in g], runner._panel_of(g, panels))
+        for g in runner._share_groups(variants, shared=True))
     start = cost.repays_workers(one * n_reps, allowed)
     if notify is not None:
         notify(cost.dispatch_line(one * n_reps, allowed, start))
