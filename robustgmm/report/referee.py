@@ -151,7 +151,11 @@ def term_paragraph(term: TermSummary, s: AuditSummary) -> str:
                                                                          fmt(term.high)):
         core += (f" (over all {term.n_ok} estimated specifications, {fmt(term.ok_low)} to "
                  f"{fmt(term.ok_high)})")
-    sentences = [core + ".", _cap(term.reason) + "."]
+    # a robust term significant with one sign everywhere: the verdict's reason only
+    # restates the counts just given, in the audit's words ("informative variants")
+    restates = (term.verdict == "robust" and term.n > 1 and term.sign_stable
+                and term.n_significant == term.n)
+    sentences = [core + "."] + ([] if restates else [_cap(term.reason) + "."])
     sentences.append(_driver_sentence(term))
     sentences.append(_influence_sentence(term))
     left_out = []

@@ -196,3 +196,15 @@ def test_referee_paragraph_names_the_test_that_rejects_the_demo_variants():
     flat = referee_paragraph(audit)
     assert f"and {len(rejected)} are rejected by their tests" in flat
     assert "Kleibergen-Paap rank test rejecting underidentification at the 5% level" in flat
+
+
+def test_referee_paragraph_says_each_count_once():
+    # a robust term significant with one sign in every specification: the verdict's
+    # reason would repeat the counts; a fragile term keeps its reason (the threshold)
+    from robustgmm.report.inputs import read_audit_folder
+    from robustgmm.report.referee import referee_paragraph
+    audit = read_audit_folder(COMMITTED)
+    flat = referee_paragraph(audit)
+    assert "Significant at 5% with the base model's sign in all" not in flat
+    assert "(the threshold share is 0.9)" in flat
+    assert flat.count("is robust across the 42 acceptable specifications") == 2
