@@ -553,12 +553,13 @@ def simulation(sizes: Sizes, echo=print) -> Outcome:
         audited = run_audit(spec, jobs=1, cache_dir=None, progress=False)
         t_audit = audited.manifest["run"]["variant_seconds"]
         n_var = audited.manifest["run"]["variants"]
-        t_sim = {}
+        t_sim, cpu = {}, {}
         for jobs in (1, 2):
             t0 = time.perf_counter()
-            simulate(spec, reps=R, seed=1, jobs=jobs, cache_dir=None, progress=False,
-                     start_workers=True)
+            run = simulate(spec, reps=R, seed=1, jobs=jobs, cache_dir=None, progress=False,
+                           start_workers=True).run
             t_sim[jobs] = time.perf_counter() - t0
+            cpu[jobs] = run.get("cpu_seconds", math.nan) / R
         per_rep = t_sim[1] / R
         big = spec_for(sizes.sim_large_units)
         t0 = time.perf_counter()
@@ -571,6 +572,14 @@ def simulation(sizes: Sizes, echo=print) -> Outcome:
     out.rows.append(("audit estimation time (sum of the variants' fits, jobs = 1)", _fmt_s(t_audit)))
     out.rows.append((f"{R} replications, jobs = 1", _fmt_s(t_sim[1])))
     out.rows.append((f"{R} replications, jobs = 2", _fmt_s(t_sim[2])))
+    # CPU time per replication (summed in the processes that ran them): equal for
+    # jobs 1 and 2 when parallel running adds no work, whatever the load; CPU time
+    # over (wall time x jobs) says how much of a core each process got
+    for jobs in (1, 2):
+        out.rows.append((f"CPU time per replication, jobs = {jobs} (share of a core each "
+                         f"process got: {cpu[jobs] * R / (jobs * t_sim[jobs]):.0%})"
+                         if t_sim[jobs] > 0 else f"CPU time per replication, jobs = {jobs}",
+                         _fmt_s(cpu[jobs])))
     out.rows.append((f"one replication at N = {sizes.sim_large_units:,} "
                      f"({sizes.sim_scale_reps} replications)", _fmt_s(per_rep_big)))
     out.ratios.append(("one replication / audit estimation time", per_rep / t_audit, 1.25, None))
@@ -581,8 +590,12 @@ def simulation(sizes: Sizes, echo=print) -> Outcome:
     if R == 200:
         out.ratios.append(("200 replications with jobs = 2 / 60 s", t_sim[2] / 60.0, 1.0, None))
     out.notes.append("a replication draws its panel in the worker, builds each sample's "
-                     "panel, estimates every share group and its OLS/within bounds; the "
-                     "audit figure is the fits alone")
+                     "panel and estimates every share group (without the OLS/within "
+                     "bounds); the audit figure is the fits alone")
+    out.notes.append("the jobs ratio needs two free cores: on a machine loaded by other "
+                     "processes each worker gets less than a core (the shares above), "
+                     "so compare the CPU times per replication for the cost of running "
+                     "in parallel")
     return out
 
 

@@ -390,14 +390,16 @@ def cmd_report(args) -> int:
     if not (folder / "manifest.json").is_file():
         raise InputError(f"{args.dir}: no audit here (manifest.json missing); "
                          "run 'robustgmm audit MODEL.toml --out DIR' first")
-    from .output import CONTRACT_FILES, FolderLock, recorded_files, remove_stale, write_record
+    from .output import AUDIT_DATA_FILES, FolderLock, recorded_files, remove_stale, write_record
     from .report import build_report
     with FolderLock(folder, "report"):
         try:
             written = [str(Path(p).relative_to(folder)) for p in build_report(folder)]
             old = recorded_files(folder)
-            remove_stale(folder, [f for f in old if f not in CONTRACT_FILES], written)
-            write_record(folder, [*(f for f in old if f in CONTRACT_FILES), *written])
+            # the audit's files (the Monte Carlo's too) stay; old documents not
+            # written again go
+            remove_stale(folder, [f for f in old if f not in AUDIT_DATA_FILES], written)
+            write_record(folder, [*(f for f in old if f in AUDIT_DATA_FILES), *written])
         except OSError as exc:  # a read-only folder, a full disk
             raise cannot_write(args.dir, exc) from None
     _out(f"Wrote the report in {folder}")

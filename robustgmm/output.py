@@ -45,6 +45,9 @@ STAGING_PREFIX = ".robustgmm-staging-"
 MANIFEST = "manifest.json"
 #: The contract files of an audit folder, in the order they are written.
 CONTRACT_FILES = contract.FILES
+#: The files an audit writes that the report only reads: the contract files and the
+#: optional Monte Carlo (rebuilding the report keeps them).
+AUDIT_DATA_FILES = CONTRACT_FILES + tuple(contract.SIMULATION_FILES)
 #: The report documents written beside them (figures go in ``figures/``).
 REPORT_FILES = ("report.html", "report.md", "table.tex", "referee.txt")
 #: Every name an audit may write at the top of its folder (inputs must not be there).

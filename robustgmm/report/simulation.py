@@ -256,6 +256,39 @@ def render_simulation_figures(sim: SimulationFolder, out_dir, focus, *,
 # ---------------------------------------------------------------------------
 # the section's context (HTML and Markdown)
 # ---------------------------------------------------------------------------
+def _world_value(value) -> str:
+    """A calibration.json parameter value as table text: a number, a per-period
+    list as its range, the unit heteroskedasticity as the spread of its multipliers."""
+    if value is None:
+        return "off"
+    if isinstance(value, bool) or isinstance(value, str):
+        return str(value)
+    if isinstance(value, (int, float)):
+        return _g(float(value), 3)
+    if isinstance(value, list):
+        nums = [float(v) for v in value if isinstance(v, (int, float))]
+        if not nums:
+            return "n/a"
+        if max(nums) == min(nums):
+            return f"{_g(nums[0], 3)} in every period"
+        return f"{_g(min(nums), 3)} to {_g(max(nums), 3)} over {len(nums)} periods"
+    if isinstance(value, dict) and "sd" in value:
+        return f"unit multipliers with SD {_g(float(value['sd']), 2)}"
+    return "n/a"
+
+
+def world_rows(calibration: Mapping[str, Any]) -> list[dict]:
+    """The parameters of the simulated world (calibration.json): name, the value
+    calibrated to the data, the same calibration re-run on a simulated panel
+    (replication 0; close values say the world reproduces what it was built from)
+    and how it was estimated."""
+    params = calibration.get("world", {}).get("parameters", {})
+    return [{"name": name, "value": _world_value(p.get("value")),
+             "simulated": _world_value(p.get("simulated")) if "simulated" in p else "",
+             "method": str(p.get("method", ""))}
+            for name, p in params.items() if isinstance(p, dict)]
+
+
 def section_context(sim: SimulationFolder, figures, focus, units: int | None) -> dict:
     """Everything the HTML partial and the Markdown section show."""
     import base64
@@ -283,6 +316,7 @@ def section_context(sim: SimulationFolder, figures, focus, units: int | None) ->
         "initial": world.get("initial_method", ""),
         "truth_source": sim.calibration.get("truth_source", ""),
         "unreliable": f"{fired} of {total} variants", "reading": READING,
+        "world": world_rows(sim.calibration),
         "figures": [{"name": f.name, "title": f.title,
                      "caption": CAPTIONS[f.kind].format(term=f.term, level=f"{1 - alpha:.0%}"),
                      "data": base64.b64encode(f.png).decode("ascii"),
@@ -301,6 +335,15 @@ def markdown_section(ctx: dict) -> str:
              f"truth: {esc(ctx['truth_source'])}; initial conditions: {esc(ctx['initial'])}). "
              f"The caution unreliable\\_at\\_this\\_size fires for {ctx['unreliable']}.", "",
              f"*{esc(ctx['reading'])}*", ""]
+    if ctx.get("world"):
+        lines += ["### The simulated world", "",
+                  "Each parameter as calibrated to these data, and as the same calibration "
+                  "finds it in a simulated panel (calibration.json).", "",
+                  "| parameter | from the data | in a simulated panel | how estimated |",
+                  "|---|---|---|---|"]
+        lines += [f"| {esc(r['name'])} | {r['value']} | {r['simulated']} | {esc(r['method'])} |"
+                  for r in ctx["world"]]
+        lines.append("")
     for t in ctx["tables"]:
         lines += [f"### {esc(t['term'])} (true value in the simulated world {t['truth']})", "", esc(t["sentence"]), "",
                   f"| rank | variant | settings | bias | SD | RMSE | coverage ({ctx['level']}) "

@@ -65,6 +65,11 @@ def test_audit_with_simulation(model, tmp_path, capsys):
     sim = pd.read_csv(out / "simulation.csv")
     variants = pd.read_csv(out / "variants.csv")
     assert set(sim["variant"]) == set(variants.loc[variants["status"] == "ok", "variant"])
+    # rebuilding the report keeps the Monte Carlo's files (it used to remove them as
+    # documents it had not written) and its section
+    assert _run(capsys, "report", out)[0] == 0
+    assert (out / "simulation.csv").is_file() and (out / "calibration.json").is_file()
+    assert "How these estimators behave" in (out / "report.md").read_text()
     # a later audit without --simulate removes the stale simulation files
     assert _run(capsys, "audit", model, "--out", out, "--jobs", 1)[0] == 0
     assert not (out / "simulation.csv").exists() and not (out / "calibration.json").exists()

@@ -63,6 +63,15 @@ def test_section_in_every_document(folder):
         slug = term.replace("[", "_").replace("]", "")
         assert (out / "figures" / f"sim_bias_{slug}.png").is_file()
         assert (out / "figures" / f"sim_coverage_{slug}.svg").is_file()
+    # the simulated world: each parameter from calibration.json beside its value
+    # re-estimated on a simulated panel
+    import json
+    params = json.loads((out / "calibration.json").read_text())["world"]["parameters"]
+    world = md.split("### The simulated world", 1)[1].split("\n### ", 1)[0]
+    row = [line for line in world.splitlines() if line.startswith("| sigma2\\_eps |")]
+    assert row and f"{params['sigma2_eps']['value']:.3g}" in row[0]
+    assert f"{params['sigma2_eps']['simulated']:.3g}" in row[0]
+    assert "The simulated world" in html and "<code>x.ar1</code>" in html
     # the Markdown table of the AR term is ranked by RMSE, base marked
     section = md.split("### y[t-1]", 1)[1].split("\n### ", 1)[0]
     ids = [line.split("|")[2].strip().split(" ")[0].strip("*") for line in section.splitlines()
