@@ -30,6 +30,26 @@ READING = ("The simulated world is only as right as the model: these figures sho
            "Statistical robustness is not proof of instrument validity.")
 
 
+def columns_note(reps, alpha: float) -> str:
+    """What each column of the ranking tables is, with the Monte Carlo standard error
+    of a coverage at the nominal level, sqrt(p (1 - p) / R): with few panels 95% and
+    100% are within noise of each other."""
+    level = 1 - alpha
+    try:
+        mc = f"{100 * math.sqrt(level * (1 - level) / int(reps)):.1f} points"
+    except (TypeError, ValueError, ZeroDivisionError):
+        mc = "sqrt(p (1 - p) / R)"
+    return (f"The tables below rank the variants by RMSE. Columns: bias, the mean of "
+            f"estimate minus truth; SD, the standard deviation "
+            f"of the estimates across the panels; RMSE, the root mean squared error; "
+            f"coverage, the share of panels whose {level:.0%} interval contains the truth "
+            f"(its Monte Carlo standard error at the nominal level is about {mc} with "
+            f"{reps} panels); size, the share rejecting the true value at {alpha:g}; SE "
+            f"ratio, the mean reported standard error over SD (below 1: the reported "
+            f"errors are too small; Windmeijer 2005); replications, the panels estimated "
+            f"of those simulated.")
+
+
 @dataclass(frozen=True)
 class SimulationFolder:
     """simulation.csv and calibration.json of a folder."""
@@ -317,6 +337,7 @@ def section_context(sim: SimulationFolder, figures, focus, units: int | None) ->
         "truth_source": sim.calibration.get("truth_source", ""),
         "unreliable": f"{fired} of {total} variants", "reading": READING,
         "world": world_rows(sim.calibration),
+        "columns": columns_note(sim.calibration.get("reps"), alpha),
         "figures": [{"name": f.name, "title": f.title,
                      "caption": CAPTIONS[f.kind].format(term=f.term, level=f"{1 - alpha:.0%}"),
                      "data": base64.b64encode(f.png).decode("ascii"),
@@ -344,6 +365,7 @@ def markdown_section(ctx: dict) -> str:
         lines += [f"| {esc(r['name'])} | {r['value']} | {r['simulated']} | {esc(r['method'])} |"
                   for r in ctx["world"]]
         lines.append("")
+    lines += [esc(ctx["columns"]), ""]
     for t in ctx["tables"]:
         lines += [f"### {esc(t['term'])} (true value in the simulated world {t['truth']})", "", esc(t["sentence"]), "",
                   f"| rank | variant | settings | bias | SD | RMSE | coverage ({ctx['level']}) "

@@ -121,3 +121,15 @@ def test_section_stands_where_the_html_has_it(folder):
     html = (out / "report.html").read_text()
     at = html.index("How these estimators behave at this sample size")
     assert html.index(">Figures<") < at < html.index(">Variants<")
+
+
+def test_every_column_is_explained_with_the_monte_carlo_error(folder):
+    # the fixture runs 10 replications: one Monte Carlo standard error of a 95%
+    # coverage is sqrt(0.95 * 0.05 / 10) = 6.9 points (binomial proportion)
+    out, _ = folder
+    for name in ("report.md", "report.html"):
+        text = " ".join((out / name).read_text().split()).replace("\\_", "_")
+        for col in ("bias, ", "SD, ", "RMSE, ", "coverage, ", "size, ", "SE ratio, ",
+                    "replications, "):
+            assert col + "the " in text, (name, col)
+        assert "about 6.9 points with 10 panels" in text, name
