@@ -17,7 +17,7 @@ from ..audit.verdicts import Firing
 from ..audit.verdicts import Rule as CatalogueRule
 from .inputs import AuditFolder
 from .referee import CAUTION, referee_paragraphs
-from .labels import term_labels
+from .labels import setting_name, term_labels
 from .sections import anchor, base_model_table, short_provenance, split_variants_table
 from .summary import (AuditSummary, fmt, fmt_int, fmt_p, provenance_items, rule_catalogue,
                       rule_figures_text, strength_columns, strength_note, summarize,
@@ -64,7 +64,9 @@ def _catalogue_rule(rule: CatalogueRule, thresholds) -> dict:
 def _drivers(t) -> list[dict]:
     """The drivers table of a term: setting, value, variants, mean estimate, share
     significant, shift (Young & Holsteen 2017), largest |shift| first."""
-    return [{"setting": d.setting, "value": d.value, "variants": d.variants,
+    # the setting as the variants table and the figures name it ("last lag"), not
+    # the model file's key ("last_lag")
+    return [{"setting": setting_name(d.setting), "value": d.value, "variants": d.variants,
              "mean": fmt(d.mean_estimate), "share": fmt(d.share_significant, 2),
              "shift": fmt(d.shift)} for d in t.drivers]
 

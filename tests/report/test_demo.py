@@ -208,3 +208,15 @@ def test_referee_paragraph_says_each_count_once():
     assert "Significant at 5% with the base model's sign in all" not in flat
     assert "(the threshold share is 0.9)" in flat
     assert flat.count("is robust across the 42 acceptable specifications") == 2
+
+
+def test_drivers_tables_name_settings_in_words():
+    # the demo varies last_lag: its drivers rows say "last lag", as the variants
+    # table's header does, not the model file's key
+    from robustgmm.report.context import _drivers
+    from robustgmm.report.inputs import read_audit_folder
+    from robustgmm.report.summary import summarize
+    s = summarize(read_audit_folder(COMMITTED))
+    names = {row["setting"] for t in s.terms for row in _drivers(t)}
+    assert "last lag" in names and "instrument form" in names
+    assert not any("_" in n for n in names), names
