@@ -130,3 +130,14 @@ def test_estimate_group_without_bounds_gives_the_same_fits(spec):
     lean = runner.estimate_group(specs, panel, bounds=False)
     assert all(e["bounds"] is None for e in lean) and all(e["bounds"] for e in full)
     assert [e["fit"] for e in lean] == [e["fit"] for e in full]
+
+
+def test_too_few_reps_message_states_the_binomial_error():
+    # a rate's Monte Carlo standard error is sqrt(p (1 - p) / R), at most sqrt(0.25 / R)
+    import math
+    from robustgmm.errors import InputError
+    from robustgmm.montecarlo.replicate import MIN_REPS, check_reps
+    with pytest.raises(InputError) as err:
+        check_reps(MIN_REPS - 1, 0)
+    text = str(err.value)
+    assert f"{math.sqrt(0.25 / (MIN_REPS - 1)):.2f}" in text and "\n" not in text

@@ -303,7 +303,8 @@ def check_reps(reps, seed) -> tuple[int, int]:
         problems.append(f"--reps: {reps!r} is not a whole number of replications")
     elif reps < MIN_REPS:
         problems.append(f"--reps: {reps} replications are too few; use at least {MIN_REPS} "
-                        f"(rates from fewer have a Monte Carlo error above 0.15)")
+                        f"(a rate from {MIN_REPS - 1} has a Monte Carlo standard error up "
+                        f"to sqrt(0.25 / {MIN_REPS - 1}) = {math.sqrt(0.25 / (MIN_REPS - 1)):.2f})")
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         problems.append(f"--seed: {seed!r} is not a non-negative whole number")
     if problems:
