@@ -260,6 +260,26 @@ def se_kinds(audit: AuditFolder, variants) -> list[str]:
     return kinds
 
 
+def se_note(audit: AuditFolder, shown, escape=lambda text: text) -> str:
+    """'Standard errors in parentheses (kind).', or, when the shown columns mix kinds,
+    which columns use which: 'Standard errors in parentheses: Windmeijer-corrected in
+    (1), (2); cluster-robust (by unit) in (3).' (shared by table.tex and table.html)."""
+    kinds = se_kinds(audit, shown)
+    if len(kinds) > 1:  # say which columns use which kind
+        numbers = {audit.base_variant: 1}
+        for vid in shown:
+            numbers.setdefault(vid, len(numbers) + 1)
+        by_kind = {k: [] for k in kinds}
+        for vid, n in numbers.items():
+            kind = se_kinds(audit, [vid])
+            if kind:
+                by_kind[kind[0]].append(f"({n})")
+        return ("Standard errors in parentheses: " + "; ".join(
+            f"{escape(k)} in {', '.join(cols)}" for k, cols in by_kind.items() if cols) + ".")
+    return (f"Standard errors in parentheses ({escape(kinds[0])})." if kinds
+            else "Standard errors in parentheses.")
+
+
 def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
                  per_panel: int = 5) -> str:
     """The table as LaTeX: one ``tabularx`` per panel, each exactly ``\textwidth``
@@ -353,21 +373,7 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
     failed = [row["variant"] for _, row in audit.variants.iterrows()
               if row["status"] != "ok"]
     shown = [vid for panel in panels for vid, _, _ in panel]
-    kinds = se_kinds(audit, shown)
-    if len(kinds) > 1:  # say which columns use which kind
-        numbers = {audit.base_variant: 1}
-        for vid in shown:
-            numbers.setdefault(vid, len(numbers) + 1)
-        by_kind = {k: [] for k in kinds}
-        for vid, n in numbers.items():
-            kind = se_kinds(audit, [vid])
-            if kind:
-                by_kind[kind[0]].append(f"({n})")
-        se_text = ("Standard errors in parentheses: " + "; ".join(
-            f"{tex(k)} in {', '.join(cols)}" for k, cols in by_kind.items() if cols) + ".")
-    else:
-        se_text = (f"Standard errors in parentheses ({tex(kinds[0])})." if kinds
-                   else "Standard errors in parentheses.")
+    se_text = se_note(audit, shown, tex)
     note = (f"{se_text} Column (1) is the base model (variant "
             f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
             + "; ".join([TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows}]

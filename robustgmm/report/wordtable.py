@@ -15,7 +15,7 @@ from html import escape
 
 from .inputs import AuditFolder
 from .labels import report_option, term_labels
-from .latex import (departure_label, diagnostic_rows, estimate_cells, fails, se_kinds,
+from .latex import (departure_label, diagnostic_rows, estimate_cells, fails, se_note,
                     table_panels)
 from .summary import STRENGTH_ROWS, AuditSummary, summarize
 
@@ -90,8 +90,9 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
                 + "".join(_td("", style=style) for _ in pad) + "</tr>")
         out.append(f'<tr><td colspan="{width + 1}" style="{THICK}"></td></tr>')
         out.append("</table>")
-    kinds = se_kinds(audit, [vid for panel in panels for vid, _, _ in panel])
-    note = ["Standard errors in parentheses" + (f" ({', '.join(kinds)})." if kinds else "."),
+    # which columns use which kind, as in table.tex (not "(Windmeijer-corrected,
+    # cluster-robust (by unit))", which leaves the reader to guess)
+    note = [se_note(audit, [vid for panel in panels for vid, _, _ in panel]),
             f"Column (1) is the base model (variant {audit.base_variant}); each other column "
             f"changes {change_text}.",
             "Hansen p: the J test of the over-identifying restrictions with the robust weight "

@@ -220,3 +220,17 @@ def test_drivers_tables_name_settings_in_words():
     names = {row["setting"] for t in s.terms for row in _drivers(t)}
     assert "last lag" in names and "instrument form" in names
     assert not any("_" in n for n in names), names
+
+
+def test_word_table_says_which_columns_use_which_standard_errors():
+    # the demo's table mixes Windmeijer-corrected and one-step cluster-robust errors:
+    # the Word table says which column has which, as table.tex does
+    from robustgmm.report.inputs import read_audit_folder
+    from robustgmm.report.latex import render_latex
+    from robustgmm.report.wordtable import render_word_table
+    audit = read_audit_folder(COMMITTED)
+    tex = " ".join(render_latex(audit).split())
+    word = " ".join(render_word_table(audit).split())
+    assert "Standard errors in parentheses: Windmeijer-corrected in (1), " in tex
+    assert "Standard errors in parentheses: Windmeijer-corrected in (1), " in word
+    assert "cluster-robust (by unit) in (4)" in word
