@@ -12,6 +12,7 @@ from pathlib import Path
 import numpy as np
 
 from .. import __version__
+from ..options import Transform, label
 from .figures import FigureFile, caption
 from ..audit.verdicts import Firing
 from ..audit.verdicts import Rule as CatalogueRule
@@ -127,7 +128,9 @@ def _counts(s: AuditSummary) -> str:
     judged = "acceptable and untestable" if s.count_untestable else "acceptable"
     return (f"{s.n_variants} variants. {evidence_counts(s)}. Column \"evidence\" gives each "
             f"variant's class; the verdicts are judged on the {judged} variants that are "
-            f"not duplicates (column \"duplicate_of\"). The base model is marked. Sargan p is "
+            f"not duplicates (column \"duplicate_of\"). The base model is marked. Transform "
+            f"{Transform.FD}: {label(Transform, Transform.FD)}; {Transform.FOD}: "
+            f"{label(Transform, Transform.FOD)} (Arellano & Bover 1995). Sargan p is "
             f"valid only if the errors are homoskedastic (it is not robust to "
             f"heteroskedasticity, and n/a in system GMM, whose one-step weight is not "
             f"optimal even then); Hansen p is the robust test.")

@@ -562,3 +562,10 @@ def test_long_rule_figures_are_cut_and_nested_records_bracketed():
     assert text.count("(term = x[t]; coverage = 0.500)") == 8
     assert text.endswith("v7 = (term = x[t]; coverage = 0.500); … (20 in all))")
     assert figure_value(["a"] * 9) == "a, a, a, a, a, a, a, a, … (9 in all)"
+
+
+def test_variants_table_spells_out_the_transform_codes(built):
+    # the table shows fd / fod as the model file writes them; the note says what they are
+    out, _ = built
+    md = " ".join((out / "report.md").read_text().split())
+    assert "fd: first differences; fod: forward orthogonal deviations" in md
