@@ -77,7 +77,10 @@ DRIVERS_NOTE = ("For each varied setting and value: the judged variants that use
                 "when that setting takes this value instead of the base model's with the other "
                 "settings held fixed (least squares of the estimates on the indicators of "
                 "every varied setting; Young & Holsteen 2017). The base model's values have "
-                "shift 0; the largest shift comes first.")
+                "shift 0; the largest shift comes first. In each verdict, the modeling SD is "
+                "the spread of the judged estimates, the sampling SD the root mean squared "
+                "standard error, and the robustness ratio the mean estimate over the root "
+                "of the sum of their squares (Young & Holsteen 2017).")
 
 
 def _closest(s: AuditSummary) -> dict | None:
