@@ -289,6 +289,19 @@ def _evidence_paragraph(s: AuditSummary) -> str:
         elif rule.id == "instruments_exceed_units":
             cautions.append(f"{k} of {n} use more than {t['instruments_per_unit']:g} "
                             f"instrument{'s' if t['instruments_per_unit'] != 1 else ''} per unit")
+        elif rule.id == "weak_instruments":
+            # a weak first stage biases GMM and distorts its tests: a referee must hear
+            # it, the base model above all
+            avail = rule.figures.get("of_available", n)
+            base = rule.figures.get("base")
+            base_text = (f", the base model among them (F = {fmt(rule.figures.get('base_value'), 2)})"
+                         if base else "")
+            cautions.append(
+                f"the smallest Sanderson-Windmeijer conditional F is below "
+                f"{t.get('weak_f', 10):g} in {k} of the {avail} specifications where it is "
+                f"valid{base_text}, a sign of weak instruments by the rule of thumb of "
+                f"Staiger and Stock (1997), common practice (no critical values exist for "
+                f"cluster-robust GMM)")
     if cautions:
         sentences.append("Caution: " + "; ".join(cautions) + ".")
     return " ".join(sentences + _not_run(s))

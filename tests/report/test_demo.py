@@ -234,3 +234,17 @@ def test_word_table_says_which_columns_use_which_standard_errors():
     assert "Standard errors in parentheses: Windmeijer-corrected in (1), " in tex
     assert "Standard errors in parentheses: Windmeijer-corrected in (1), " in word
     assert "cluster-robust (by unit) in (4)" in word
+
+
+def test_referee_paragraph_reports_the_weak_instrument_caution():
+    # the demo's base model has a Sanderson-Windmeijer F below 10 (verdict.json): the
+    # paragraph a referee reads must say so, with the count and the base model's F
+    from robustgmm.report.inputs import read_audit_folder
+    from robustgmm.report.referee import referee_paragraph
+    audit = read_audit_folder(COMMITTED)
+    weak = next(r for r in audit.verdict.model if r.id == "weak_instruments")
+    f = weak.figures
+    assert f["base"]
+    flat = referee_paragraph(audit)
+    assert (f"below 10 in {f['variants']} of the {f['of_available']} specifications where "
+            f"it is valid, the base model among them (F = {f['base_value']:.2f})") in flat
