@@ -277,8 +277,13 @@ def _evidence_paragraph(s: AuditSummary) -> str:
     if diag:
         sentences.append(_cap("; ".join(diag)) + ".")
     cautions = []
+    near_one = {str(i) for r in s.model_flags if r.id == "hansen_p_near_one"
+                for i in (r.figures.get("ids") or ())}
     for rule in s.model_flags:
         k, n = rule.figures.get("variants", 0), rule.figures.get("of_ok", s.n_ok)
+        if rule.id == "hansen_p_high" and near_one and \
+                {str(i) for i in (rule.figures.get("ids") or ())} <= near_one:
+            continue  # every one of them is the near-one case, said next
         if rule.id == "hansen_p_high":
             cautions.append(f"the Hansen p-value is at or above {t['hansen_too_high']:g} with "
                             f"at least {t['instruments_per_unit_warn']:g} instruments per unit "

@@ -583,3 +583,28 @@ def test_robustness_ratio_is_defined_where_it_is_shown(built):
     md = " ".join((out / "report.md").read_text().split())
     assert "robustness ratio" in md  # the fixture's verdicts show it
     assert "the robustness ratio the mean estimate over the root of the sum" in md
+
+
+@pytest.mark.parametrize("same", [True, False])
+def test_hansen_near_one_is_not_said_twice(writable_folder, same):
+    # hansen_p_high also fires for every p-value near 1: when those are all its cases
+    # the paragraph says the near-one caution only
+    import json
+    from robustgmm.report.referee import referee_paragraph
+    out = writable_folder("main")
+    path = out / "verdict.json"
+    v = json.loads(path.read_text())
+    ids = [str(i) for i in pd.read_csv(out / "variants.csv", dtype={"variant": str})
+           .query("status == 'ok'")["variant"].head(3)]
+    high = ids[:2] if same else ids
+
+    def flag(rule_id, these):
+        return {"id": rule_id, "description": "", "source": "", "threshold": None,
+                "threshold_name": None, "effect": "caution",
+                "figures": {"variants": len(these), "of_ok": 10, "ids": these}}
+    v["model"] = [r for r in v["model"] if not r["id"].startswith("hansen_p")] + [
+        flag("hansen_p_high", high), flag("hansen_p_near_one", ids[:2])]
+    path.write_text(json.dumps(v))
+    flat = referee_paragraph(read_audit_folder(out))
+    assert "the Hansen p-value is about 1 in 2 of 10" in flat
+    assert ("instruments per unit (or about 1)" in flat) is (not same)
