@@ -29,7 +29,7 @@ from typing import Iterable, Sequence
 import pandas as pd
 
 #: Version of the audit-folder format, written into manifest.json.
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
 
 KINDS = ("text", "int", "float", "bool", "setting")
 
@@ -159,6 +159,66 @@ BOUNDS = Table("bounds.csv", (
 ))
 
 TABLES = (VARIANTS, ESTIMATES, BOUNDS)
+
+#: Dropping units (``[audit] influence``; :mod:`robustgmm.audit.dropping`): one row per
+#: analysed variant × focus term × target.
+INFLUENCE = Table("influence.csv", (
+    Column("variant", "text", "variant id (the base model's rows first)"),
+    Column("term", "text", "a focus term (a coefficient; long-run effects are not searched)"),
+    Column("target", "text",
+           "sign (the estimate's sign reversed), significance (significance at alpha lost, "
+           "or gained when the base is not significant) or opposite_significant (significant "
+           "with the opposite sign)"),
+    Column("units_dropped", "int", "units in the set found (when not reached: the units the "
+           "greedy search had dropped when it stopped at max_drop_share)"),
+    Column("share_dropped", "float", "units_dropped / the variant's units"),
+    Column("reached", "bool", "the exact refit without the set reaches the target"),
+    Column("estimate", "float", "the exact refit's estimate of the term without the set"),
+    Column("std_error", "float", "its standard error (the variant's own estimator)"),
+    Column("p_value", "float", "its two-sided normal p-value"),
+    Column("dropped_units", "text", "the unit ids of the set, in the order dropped, separated by spaces"),
+))
+
+#: The most influential units of the base model: 20 rows per focus term.
+INFLUENCE_UNITS = Table("influence_units.csv", (
+    Column("term", "text", "a focus term of the base model"),
+    Column("rank", "int", "1 = the unit whose removal moves the estimate most (first order)"),
+    Column("unit", "text", "unit id"),
+    Column("influence", "float", "the derivative of the estimate in the unit's weight "
+           "(infinitesimal jackknife): dropping the unit changes the estimate by about "
+           "minus this"),
+    Column("change_in_se", "float", "-influence / the base standard error: the first-order "
+           "change when the unit is dropped, in base standard errors"),
+    Column("observations", "int", "the unit's level observations in the estimation sample"),
+    Column("share_of_data", "float", "observations / all observations of the estimation sample"),
+))
+
+#: The greedy path of every search: one row per step (step 0 = no unit dropped).
+INFLUENCE_PATH = Table("influence_path.csv", (
+    Column("variant", "text", "variant id"),
+    Column("term", "text", "a focus term"),
+    Column("target", "text", "the target the greedy search pursued (as in influence.csv)"),
+    Column("dropped", "int", "units dropped so far"),
+    Column("estimate", "float", "the exact refit's estimate"),
+    Column("std_error", "float", "its standard error"),
+    Column("p_value", "float", "its two-sided normal p-value"),
+))
+
+#: Leave-one-period-out: the base model and the acceptable variants refitted without
+#: each calendar period in turn.
+PERIODS = Table("periods.csv", (
+    Column("variant", "text", "variant id (the base model's rows first)"),
+    Column("period", "int", "the calendar period left out"),
+    Column("term", "text", "a focus term"),
+    Column("estimate", "float", "estimate without that period"),
+    Column("std_error", "float", "its standard error"),
+    Column("p_value", "float", "its two-sided normal p-value"),
+    Column("reason", "text", "why the refit failed (empty when it estimated)"),
+))
+
+#: The dropping-units files, written when ``[audit] influence`` is not "none" (listed
+#: in manifest.json ``files``; the report reads them when listed).
+DROPPING_TABLES = (INFLUENCE, INFLUENCE_UNITS, INFLUENCE_PATH, PERIODS)
 
 #: The Monte Carlo of the grid (``robustgmm simulate``, ``audit --simulate``;
 #: :mod:`robustgmm.montecarlo.replicate`): one row per planned variant × focus term.

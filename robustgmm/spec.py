@@ -256,6 +256,11 @@ class Thresholds:
     min_coverage: float = 0.85
     #: ... or |mean bias| above this many simulation standard deviations
     max_bias_sd: float = 0.5
+    #: ``few_units_flip`` fires when dropping at most this share of the units reverses
+    #: the sign or the significance of a base conclusion (a robustgmm default; the
+    #: order of magnitude follows Broderick, Giordano & Meager 2020, where dropping
+    #: under 1% of the sample overturns published results)
+    flip_share: float = 0.01
 
     def __post_init__(self):
         from .modelfile import checks as c
@@ -294,6 +299,12 @@ class Spec:
     #: of the model's own, the command line asks for ``--yes`` above 5,000). A run
     #: control, not part of :func:`canonical_settings`.
     max_variants: int | None = None
+    #: Which models the dropping-units analysis covers (``[audit] influence``:
+    #: "base", "all" acceptable variants too, "none") and the largest share of units
+    #: a search may drop (``[audit] max_drop_share``); run controls, not part of
+    #: :func:`canonical_settings`.
+    influence: str = "base"
+    max_drop_share: float = 0.05
     vary: Vary = field(default_factory=Vary)
     thresholds: Thresholds = field(default_factory=Thresholds)
     #: Display labels of terms for every document (``[labels] "x[t]" = "Leverage"``)
@@ -324,6 +335,7 @@ class Spec:
             "sample": _instance(SampleFilter, "a SampleFilter"),
             "focus": _seq(c.v_name_list), "alpha": c.v_prob,
             "max_variants": _optional(c.v_max_variants),
+            "influence": c.v_influence, "max_drop_share": c.v_max_drop_share,
             "vary": _instance(Vary, "a Vary"),
             "thresholds": _instance(Thresholds, "a Thresholds"),
             "source": _instance(str, "a text (the model file, for messages)"),

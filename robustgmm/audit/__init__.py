@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from . import grid, runner, verdicts
+from . import dropping, grid, runner, verdicts
 from .. import contract
 from .. import output as folder
 from .grid import SKIPPED, plan_frame  # noqa: F401  (re-exported: robustgmm.audit.plan_frame)
@@ -45,6 +45,9 @@ class AuditResult:
     spec: Spec | None = field(default=None, repr=False, compare=False)
     #: the Monte Carlo of the grid (``audit(..., simulate=R)``), else None
     simulation: Any = field(default=None, repr=False, compare=False)
+    #: the dropping-units tables (:class:`robustgmm.audit.dropping.DroppingTables`;
+    #: None with ``[audit] influence = "none"``)
+    dropping: Any = field(default=None, repr=False, compare=False)
 
     def term_verdicts(self) -> dict[str, str]:
         return {t: v["verdict"] for t, v in self.verdict["terms"].items()}
@@ -103,8 +106,22 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
                                     **dict(simulate_options or {}))
     t_sim = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
+    sim_summary = None if simulation is None else simulation.summary
     evaluation = verdicts.evaluate(spec, variants, estimates, bounds,  # every rule, once
-                                   None if simulation is None else simulation.summary)
+                                   sim_summary)
+    t_verdict = time.perf_counter()
+    # dropping units needs the judged variants, and few_units_flip needs its tables:
+    # the second evaluation is the one written (the first only names the variants)
+    base_row = variants[variants["is_base"].astype(bool)]
+    base_id = str(base_row["variant"].iloc[0]) if len(base_row) else None
+    base_ok = bool(len(base_row)) and str(base_row["status"].iloc[0]) == runner.OK
+    ids = dropping.scope_ids(spec, base_id, base_ok, evaluation.judged)
+    tables = None
+    if spec.influence != "none":
+        tables = dropping.analyse(spec, planned, panels, ids, estimates)
+        evaluation = verdicts.evaluate(spec, variants, estimates, bounds, sim_summary,
+                                       tables.influence)
+    t_influence = time.perf_counter()
     verdict = evaluation.verdict.to_dict()
     extra = evaluation.columns
     variants = contract.frame_in_order(
@@ -141,7 +158,8 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
             "plan_seconds": t_plan - t_load,
             "run_seconds": t_run - t_plan,
             "simulation_seconds": t_sim - t_run,
-            "verdict_seconds": t_end - t_sim,
+            "verdict_seconds": (t_verdict - t_sim) + (t_end - t_influence),
+            "influence_seconds": t_influence - t_verdict,
             "total_seconds": t_end - t0,
         },
         "environment": {"python": platform.python_version(), "numpy": np.__version__,
@@ -150,8 +168,11 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     }
     if simulation is not None:
         manifest["simulation"] = dict(simulation.run)
+    if tables is not None:
+        manifest["influence"] = dict(tables.run)
     return AuditResult(variants=variants, estimates=estimates, bounds=bounds,
-                       verdict=verdict, manifest=manifest, spec=spec, simulation=simulation)
+                       verdict=verdict, manifest=manifest, spec=spec, simulation=simulation,
+                       dropping=tables)
 
 
 def _spec_dict(spec: Spec) -> dict | None:
@@ -328,6 +349,10 @@ def write_audit(result: AuditResult, out_dir, *, model_file=None, report=None) -
             atomic_write_csv(stage / table.file, contract.frame_in_order(table, frame, settings))
         atomic_write_json(stage / "verdict.json", result.verdict)
         extra = result.simulation.write(stage) if result.simulation is not None else []
+        if result.dropping is not None:
+            for table, frame in zip(contract.DROPPING_TABLES, result.dropping.frames()):
+                atomic_write_csv(stage / table.file, contract.frame_in_order(table, frame))
+                extra.append(table.file)
         manifest = dict(result.manifest)
         if model_file is not None:
             manifest["model_file"] = str(model_file)

@@ -281,3 +281,5 @@ class Evaluation:
 
     columns: pd.DataFrame
     verdict: AuditVerdict
+    #: the judged variants (acceptable, not duplicates; plan order)
+    judged: tuple[str, ...] = ()

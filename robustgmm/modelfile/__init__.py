@@ -154,6 +154,10 @@ def spec_to_dict(spec: Spec) -> dict:
     }
     if spec.max_variants is not None:
         d["audit"]["max_variants"] = spec.max_variants
+    if spec.influence != "base":
+        d["audit"]["influence"] = spec.influence
+    if spec.max_drop_share != 0.05:
+        d["audit"]["max_drop_share"] = spec.max_drop_share
     if not spec.regressors:
         del d["model"]["regressors"]
     if spec.outcome_instrument_lags is not None:

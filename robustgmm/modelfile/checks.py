@@ -149,6 +149,7 @@ v_transform = v_choice(options.Transform)
 v_errors = v_choice(options.Errors)
 v_form = v_choice(options.Form)
 v_role = v_choice(options.Role)
+v_influence = v_choice(options.InfluenceScope)
 
 
 def v_steps(v):
@@ -187,6 +188,17 @@ def v_last_lag(v):
     if v < 1:
         raise Bad('must be 1 or more, or "all"')
     return int(v)
+
+
+def v_max_drop_share(v):
+    """``[audit] max_drop_share``: the largest share of units a dropping search may
+    remove, strictly between 0 and 1 (0.5 would already be half the sample)."""
+    if isinstance(v, bool) or not isinstance(v, numbers.Real) or not math.isfinite(v):
+        raise Bad("must be a number in (0, 1), e.g. 0.05 (the largest share of units the "
+                  "dropping search may remove)")
+    if not 0 < v < 1:
+        raise Bad("must be above 0 and below 1, e.g. 0.05")
+    return float(v)
 
 
 def v_max_variants(v):

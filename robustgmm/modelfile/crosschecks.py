@@ -26,6 +26,21 @@ def cross_checks(spec: Spec, r: Reader) -> None:
     _focus(spec, r)
     _vary(spec, r)
     _labels(spec, r)
+    _dropping(spec, r)
+
+
+def _dropping(spec: Spec, r: Reader) -> None:
+    """``few_units_flip`` judges sets of at most ``flip_share`` of the units; the
+    search stops at ``max_drop_share``, so the first may not exceed the second."""
+    if spec.influence == "none" or not r.ok(("audit", "max_drop_share"),
+                                             ("audit", "thresholds", "flip_share")):
+        return
+    flip = spec.thresholds.flip_share
+    if flip > spec.max_drop_share:
+        r.add("[audit.thresholds] flip_share",
+              f"is above [audit] max_drop_share = {spec.max_drop_share:g}; the search stops "
+              "there, so raise max_drop_share or lower flip_share", flip,
+              path=("audit", "thresholds", "flip_share"))
 
 
 def _labels(spec: Spec, r: Reader) -> None:
@@ -39,7 +54,8 @@ def _labels(spec: Spec, r: Reader) -> None:
               for lags in lists for lag in lags]
     terms = list(dict.fromkeys(terms))
     for term, _ in spec.labels:
-        if term in terms or term.startswith("period["):
+        # the unit column names the units in sentences: bakery = "bakeries"
+        if term in terms or term.startswith("period[") or term == spec.unit:
             continue
         hint = closest(term, terms)
         r.add(f"[labels] {key_text(term)}", "is not a term of the model"

@@ -25,7 +25,8 @@ from ..options import DATA_EXTENSIONS
 from ..spec import GmmInstrument, Regressor, SampleFilter, Spec, Thresholds, Vary
 from .checks import (MISSING, Bad, closest, fmt, key_text, threshold_check, v_bool,
                      v_equations, v_errors, v_first_lag, v_form, v_lags, v_last_lag, v_name,
-                     v_drop_list, v_labels, v_max_variants, v_min_units, v_window, v_name_list,
+                     v_drop_list, v_influence, v_labels, v_max_drop_share, v_max_variants,
+                     v_min_units, v_window, v_name_list,
                      v_period, v_prob, v_role, v_scalar_list, v_steps, v_transform)
 
 Path_ = tuple  # a key path: ("method", "steps"), ("model", "regressors", 2, "role"), ...
@@ -81,6 +82,8 @@ SCHEMA: dict[Path_, Key | object] = {
     ("audit", "focus"): Key("focus", v_name_list),
     ("audit", "alpha"): Key("alpha", v_prob),
     ("audit", "max_variants"): Key("max_variants", v_max_variants),
+    ("audit", "influence"): Key("influence", v_influence),
+    ("audit", "max_drop_share"): Key("max_drop_share", v_max_drop_share),
     ("audit", "vary"): TABLE,
     ("audit", "thresholds"): TABLE,
     # [labels]: free keys, one per term of the model ("x[t]" = "Leverage")

@@ -48,6 +48,9 @@ class AuditFolder:
     alpha: float
     thresholds: Mapping[str, float]
     truth: Mapping[str, Any] | None = None
+    #: the dropping-units tables by file name (influence.csv, influence_units.csv,
+    #: influence_path.csv, periods.csv), when manifest.json lists them; else None
+    dropping: Mapping[str, pd.DataFrame] | None = None
     #: Kept for the report writers: variants.csv always has the ``acceptable``
     #: column (variants that estimated and pass their specification tests; the
     #: verdicts are judged on those).
@@ -234,6 +237,12 @@ def read_audit_folder(out_dir) -> AuditFolder:
     tables = {t.file: contract.read_table(t, path / t.file, settings if t is contract.VARIANTS
                                           else (), problems) for t in contract.TABLES}
     variants, estimates, bounds = (tables[t.file] for t in contract.TABLES)
+    dropping = None
+    listed = manifest.get("files") if isinstance(manifest, Mapping) else None
+    if isinstance(listed, list) and contract.INFLUENCE.file in listed:
+        # listed files are read as strictly as the others: a missing one is a problem
+        dropping = {t.file: contract.read_table(t, path / t.file, (), problems)
+                    for t in contract.DROPPING_TABLES}
     verdict = _read_json(path / "verdict.json", problems)
     truth = _read_json(path / contract.TRUTH_FILE, problems, required=False)
     typed = None
@@ -270,4 +279,5 @@ def read_audit_folder(out_dir) -> AuditFolder:
         alpha=float(verdict["alpha"]),
         thresholds=_thresholds(verdict),
         truth=truth,
+        dropping=dropping,
     )

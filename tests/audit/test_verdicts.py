@@ -181,7 +181,9 @@ def test_a_base_that_fails_its_tests_makes_every_verdict_inconclusive():
         t = out["terms"][term]
         assert t["verdict"] == "inconclusive"
         assert t["reason"] == statement.rstrip(".")
-        assert set(t["not_evaluated"]) == {"sign_change", "significance_flip", "spread"}
+        # few_units_flip: no dropping analysis in this direct call of the verdicts
+        assert set(t["not_evaluated"]) == {"sign_change", "significance_flip", "spread",
+                                           "few_units_flip"}
         assert not {"sign_change", "significance_flip"} & {r["id"] for r in t["rules"]}
     # closest acceptable: one setting changed for v1 (form) and v2 (steps); the tie is
     # broken by the smaller instrument count (v2: 9 against 12)
@@ -462,7 +464,9 @@ def test_the_files_give_back_the_verdict(tmp_path):
     again = verdicts.judge(spec_from_dict(manifest["spec"], base_dir=tmp_path),
                            pd.read_csv(out / "variants.csv", dtype={"variant": str}),
                            pd.read_csv(out / "estimates.csv", dtype={"variant": str}),
-                           pd.read_csv(out / "bounds.csv", dtype={"variant": str}))
+                           pd.read_csv(out / "bounds.csv", dtype={"variant": str}),
+                           pd.read_csv(out / "influence.csv",
+                                       dtype={"variant": str, "dropped_units": str}))
     written = json.loads((out / "verdict.json").read_text())
     assert json.loads(json.dumps(again)) == written
 

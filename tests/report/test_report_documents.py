@@ -112,7 +112,7 @@ def test_an_unknown_column_is_named(writable_folder):
         build_report(out)
     assert info.value.problems == [
         f"{out / 'variants.csv'}: column 'some_future_column' is not part of the format "
-        "(format_version 1; see docs/formats.md)"]
+        "(format_version 2; see docs/formats.md)"]
 
 
 def test_a_renamed_column_is_named_twice(writable_folder):
@@ -124,7 +124,7 @@ def test_a_renamed_column_is_named_twice(writable_folder):
         read_audit_folder(out)
     assert [p.split(": ", 1)[1] for p in info.value.problems] == [
         "column 'p_value' missing",
-        "column 'p' is not part of the format (format_version 1; see docs/formats.md)"]
+        "column 'p' is not part of the format (format_version 2; see docs/formats.md)"]
 
 
 def test_a_cell_of_the_wrong_kind_is_named(writable_folder):

@@ -34,3 +34,5 @@ class _Context:
     settings: list
     evidence: dict
     duplicate_of: dict
+    #: rows of influence.csv (None: no dropping analysis)
+    influence: pd.DataFrame | None = None

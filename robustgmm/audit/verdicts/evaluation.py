@@ -27,7 +27,8 @@ from .caution import _diagnostics, _model_flags
 # ---------------------------------------------------------------------------
 def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
              bounds: pd.DataFrame | None = None,
-             simulation: pd.DataFrame | None = None) -> Evaluation:
+             simulation: pd.DataFrame | None = None,
+             influence: pd.DataFrame | None = None) -> Evaluation:
     """Every rule, once: the variant columns and the verdict.
 
     ``variants``: one row per variant (``variant``, ``is_base``, ``status``, ``reason``,
@@ -36,7 +37,8 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
     found a duplicate); ``estimates``: ``variant``, ``term``, ``estimate``,
     ``std_error``, ``p_value``; ``bounds``: ``variant``, ``term``, ``ols``, ``fe``;
     ``simulation``: the rows of simulation.csv, when the audit ran a Monte Carlo
-    (the rule ``unreliable_at_this_size``).
+    (the rule ``unreliable_at_this_size``); ``influence``: the rows of influence.csv,
+    when the audit ran the dropping-units analysis (the rule ``few_units_flip``).
     """
     th = threshold_values(spec)
     alpha = float(spec.alpha)
@@ -81,7 +83,8 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
                    estimates=estimates, bounds=bounds, base_id=base_id, base_pos=base_pos,
                    base_ok=base_ok, base_acceptable=base_acceptable, statement=statement,
                    judged_ids=judged_ids, ok_ids=ok_ids, settings=settings,
-                   evidence=dict(zip(ids, evidence)), duplicate_of=dict(zip(ids, duplicate_of)))
+                   evidence=dict(zip(ids, evidence)), duplicate_of=dict(zip(ids, duplicate_of)),
+                   influence=influence)
     terms = tuple(_judge_term(term, ctx) for term in spec.focus_terms())
     counts = {
         "total": int(len(variants)),
@@ -102,13 +105,14 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
         thresholds=th, variants=counts, diagnostics=_diagnostics(variants, flags, th),
         terms=terms, model=_model_flags(variants, flags, th, base_pos, ids, unreliable),
         rules=RULES, combination=COMBINATION, disclaimer=DISCLAIMER)
-    return Evaluation(columns=columns, verdict=verdict)
+    return Evaluation(columns=columns, verdict=verdict,
+                      judged=tuple(i for i in ids if i in judged_ids))
 
 
 def judge(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
-          bounds: pd.DataFrame | None = None) -> dict:
+          bounds: pd.DataFrame | None = None, influence: pd.DataFrame | None = None) -> dict:
     """The verdict document (``verdict.json``) as plain JSON values."""
-    return evaluate(spec, variants, estimates, bounds).verdict.to_dict()
+    return evaluate(spec, variants, estimates, bounds, influence=influence).verdict.to_dict()
 
 
 def variant_columns(variants: pd.DataFrame, spec: Spec, estimates: pd.DataFrame | None = None

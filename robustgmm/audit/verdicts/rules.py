@@ -103,6 +103,16 @@ RULES: tuple[Rule, ...] = (
          "the positive correlation of estimates on the same data); variants with a "
          "standard error above uninformative_se_ratio base standard errors are left out",
          "robustgmm default threshold", "spread_in_se", Effect.CAUTION),
+    Rule("few_units_flip", "term",
+         "dropping at most flip_share of the units (the smallest set found by the additive "
+         "approximation and the recursive greedy search, each set refitted exactly) "
+         "reverses the sign or the significance at alpha of the base model's conclusion "
+         "(fragile); when it happens only in some other acceptable variants analysed "
+         "([audit] influence = \"all\"), a caution. For an estimate that is not "
+         "significant only gaining significance counts",
+         "Broderick, Giordano & Meager (2020); Huang, Burt, Shen, Nguyen & Broderick (2024) "
+         "for the greedy search; the 1% line is a robustgmm default", "flip_share",
+         Effect.FRAGILE),
     Rule("ar_outside_band", "term",
          "the base model's autoregressive coefficient lies outside the band between the "
          "within (fixed-effects) and pooled OLS estimates on its sample",
@@ -132,7 +142,8 @@ BASE_ANCHORED = ("sign_change", "significance_flip", "spread")
 COMBINATION = (
     "inconclusive if base_not_ok, base_not_acceptable or too_few_acceptable fires (the "
     "base-anchored rules are then not evaluated); otherwise fragile if sign_change or "
-    "significance_flip fires among the judged variants; otherwise robust. Caution rules "
+    "significance_flip fires among the judged variants, or if few_units_flip fires in the "
+    "base model (in other variants only it is a caution); otherwise robust. Caution rules "
     "are reported beside the verdict and never change it. A variant is acceptable when "
     "it estimated, every required test could be computed, and none of hansen_rejects, "
     "ar2_rejects, difference_hansen_level_rejects and underidentified fired; untestable when no test "

@@ -15,6 +15,7 @@ from ..records import (AuditVerdict, BaseEstimate, Driver, Evaluation, Firing, I
 from ...spec import Spec, Thresholds
 from .rules import BASE_ANCHORED, FRAGILE, INCONCLUSIVE, MIN_ACCEPTABLE, ROBUST, _fired, value_text
 from .context import _Context
+from .dropping import evaluate_term as few_units_flip, flip_phrase, unit_noun
 
 
 def _judge_term(term: str, c: _Context) -> TermVerdict:
@@ -155,6 +156,17 @@ def _judge_term(term: str, c: _Context) -> TermVerdict:
             (fired.append(_fired("ar_near_within", th, fig)) if near
              else passed.append("ar_near_within"))
 
+    # -- dropping a few units (the base model, and the variants analysed)
+    firing, outcome, dropping = few_units_flip(term, base, c)
+    if dropping:
+        figures["dropping"] = dropping
+    if firing is not None:
+        fired.append(firing)
+    elif outcome == "passed":
+        passed.append("few_units_flip")
+    else:
+        not_evaluated.append("few_units_flip")
+
     drivers = _drivers(acc, sig, c) if len(acc) >= MIN_ACCEPTABLE else ()
     influence = _influence(b, se) if len(b) >= MIN_ACCEPTABLE else None
     if any(f.effect == Effect.INCONCLUSIVE for f in fired):
@@ -221,6 +233,10 @@ def _reason(term, verdict, base, figures, fired, c: _Context) -> str:
         parts.append(f"only {f['agreeing']} of {f['informative']} informative acceptable "
                      f"variants agree with the base model that it is {what} (the "
                      f"threshold share is {c.th['significant_share']:g})")
+    if "few_units_flip" in ids and ids["few_units_flip"].effect == Effect.FRAGILE:
+        f = ids["few_units_flip"].figures
+        parts.append(flip_phrase(f, dict(c.spec.labels).get(term, term), unit_noun(c.spec))
+                     + " in the base model")
     if parts:
         return "; ".join(parts)
     agree = figures.get("share_agreeing_with_base")

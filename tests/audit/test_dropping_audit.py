@@ -1,0 +1,170 @@
+"""Dropping units in the audit (issue 16): the model-file keys, the tables, the rule
+``few_units_flip`` and the files.
+
+Known truth by construction (robustgmm.simulate), as in tests/core/test_core_dropping.py:
+
+* planted: 395 units without any effect of x and 5 units (ids 396-400) with an
+  extreme, almost noiseless x-y relation; the pooled estimate is significant only
+  because of them, so the set that reverses the sign of x[t] is exactly those 5;
+* clean: every unit has the same effect (beta = 1, 400 units); nothing about x[t] is
+  overturned by dropping 1% of the units (4 units).
+"""
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from robustgmm import contract
+from robustgmm.audit import audit, write_audit
+from robustgmm.errors import InputError
+from robustgmm.modelfile import spec_from_dict
+from robustgmm.simulate import PanelProcess, long_frame, simulate_arrays
+
+QUIET = dict(theta=0.0, tau=0.0)
+PLANTED = {"396", "397", "398", "399", "400"}
+
+
+def write_planted(folder: Path, n=400, n_planted=5, periods=8, seed=1, beta_rest=0.0) -> None:
+    rest = simulate_arrays(np.random.default_rng(seed), n - n_planted, periods,
+                           PanelProcess(beta=beta_rest, **QUIET))
+    arrays = dict(rest)
+    if n_planted:
+        plant = simulate_arrays(np.random.default_rng(seed + 1000), n_planted, periods,
+                                PanelProcess(beta=1.0, sigma_v=5.0, rho_x=0.0, sigma_eps=0.1,
+                                             sigma_eta=0.1, **QUIET))
+        arrays = {k: np.vstack([rest[k], plant[k]]) for k in rest}
+    frame = long_frame(np.arange(1, n + 1), 2001 + np.arange(periods), arrays,
+                       unit="shop", period="year")
+    frame.to_csv(folder / "panel.csv", index=False)
+
+
+def model(**audit_keys) -> dict:
+    audit_keys.setdefault("vary", {"steps": [1, 2]})
+    return {"data": {"file": "panel.csv", "unit": "shop", "period": "year"},
+            "model": {"outcome": "y", "regressors": [{"name": "x"}, {"name": "w"}]},
+            "method": {"equations": "difference", "steps": 1},
+            "instruments": {"form": "collapsed"},
+            "labels": {"x[t]": "staff hours", "shop": "bakeries"},
+            "audit": {"focus": ["x[t]"], **audit_keys}}
+
+
+@pytest.fixture(scope="module")
+def planted(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("planted")
+    write_planted(folder)
+    spec = spec_from_dict(model(influence="all", thresholds={"flip_share": 0.02}),
+                          base_dir=folder)
+    result = audit(spec, jobs=1)
+    write_audit(result, folder / "out")
+    return folder, result
+
+
+def test_the_planted_units_are_named_exactly(planted):
+    _, result = planted
+    inf = result.dropping.influence
+    base = result.verdict["base_variant"]
+    row = inf[(inf["variant"] == base) & (inf["term"] == "x[t]") & (inf["target"] == "sign")]
+    assert len(row) == 1 and bool(row["reached"].iloc[0])
+    assert set(row["dropped_units"].iloc[0].split()) == PLANTED
+    assert int(row["units_dropped"].iloc[0]) == 5 and row["share_dropped"].iloc[0] == 5 / 400
+    assert row["estimate"].iloc[0] <= 0  # the exact refit, not the approximation
+    # the most influential units of the base model: the planted ones lead
+    top = result.dropping.units
+    top = top[top["term"] == "x[t]"]
+    assert len(top) == 20 and list(top["rank"]) == list(range(1, 21))
+    assert len(PLANTED & set(top["unit"].iloc[:8])) >= 4
+    assert np.isclose(top["share_of_data"].iloc[0], 7 / (400 * 7))
+
+
+def test_the_rule_fires_and_the_sentence_names_the_units(planted):
+    _, result = planted
+    t = result.verdict["terms"]["x[t]"]
+    fired = {r["id"]: r for r in t["rules"]}
+    assert "few_units_flip" in fired and fired["few_units_flip"]["effect"] == "fragile"
+    fig = fired["few_units_flip"]["figures"]
+    assert fig["scope"] == "base" and fig["units_dropped"] <= 8 and fig["units"] == 400
+    assert set(fig["dropped_units"]) <= PLANTED
+    assert t["verdict"] == "fragile"
+    k = fig["units_dropped"]
+    assert (f"dropping {k} of 400 bakeries ({100 * k / 400:.1f}%) makes the effect of staff "
+            "hours insignificant in the base model") in t["reason"]
+    # the other estimated variant was analysed too ("all") and flips as well
+    assert t["figures"]["dropping"]["variants_analysed"] == 1
+    assert len(t["figures"]["dropping"]["variants_flipped"]) == 1
+
+
+def test_the_files_have_the_contract_columns(planted):
+    folder, result = planted
+    out = folder / "out"
+    manifest = json.loads((out / "manifest.json").read_text())
+    assert manifest["format_version"] == contract.FORMAT_VERSION
+    for table in contract.DROPPING_TABLES:
+        assert table.file in manifest["files"]
+        problems: list = []
+        frame = contract.read_table(table, out / table.file, (), problems)
+        assert problems == [] and list(frame.columns) == table.names()
+    inf = pd.read_csv(out / "influence.csv", dtype={"dropped_units": str})
+    assert list(inf.columns) == ["variant", "term", "target", "units_dropped",
+                                 "share_dropped", "reached", "estimate", "std_error",
+                                 "p_value", "dropped_units"]
+    assert set(inf["target"]) == {"sign", "significance", "opposite_significant"}
+    assert inf["variant"].nunique() == 2  # influence = "all": base and the other variant
+    path = pd.read_csv(out / "influence_path.csv")
+    assert (path.groupby(["variant", "term", "target"])["dropped"].min() == 0).all()
+    periods = pd.read_csv(out / "periods.csv")
+    assert sorted(periods["period"].unique()) == list(range(2001, 2009))
+
+
+def test_a_clean_panel_reaches_nothing_within_one_percent(tmp_path):
+    write_planted(tmp_path, n_planted=0, beta_rest=1.0, seed=4)
+    spec = spec_from_dict(model(max_drop_share=0.01, vary={}), base_dir=tmp_path)
+    result = audit(spec, jobs=1)
+    inf = result.dropping.influence
+    assert len(inf) == 3 and not inf["reached"].any()
+    assert (inf["units_dropped"] == 4).all()
+    t = result.verdict["terms"]["x[t]"]
+    assert "few_units_flip" in t["passed"]
+
+
+def test_influence_none_writes_no_dropping_files(tmp_path):
+    write_planted(tmp_path, n=120, n_planted=0, beta_rest=1.0)
+    spec = spec_from_dict(model(influence="none"), base_dir=tmp_path)
+    result = audit(spec, jobs=1)
+    assert result.dropping is None
+    assert "few_units_flip" in result.verdict["terms"]["x[t]"]["not_evaluated"]
+    write_audit(result, tmp_path / "out")
+    assert not (tmp_path / "out" / "influence.csv").exists()
+
+
+@pytest.mark.parametrize("keys, expected", [
+    ({"influence": "every"}, '[audit] influence = "every": must be "none", "base" or "all"'),
+    ({"influence": 1}, "[audit] influence = 1: must be"),
+    ({"max_drop_share": 1.2}, "[audit] max_drop_share = 1.2: must be above 0 and below 1"),
+    ({"max_drop_share": "5%"}, '[audit] max_drop_share = "5%": must be a number in (0, 1)'),
+    ({"thresholds": {"flip_share": -0.01}}, "[audit.thresholds] flip_share = -0.01: must be"),
+    ({"max_drop_share": 0.005},
+     "[audit.thresholds] flip_share = 0.01: is above [audit] max_drop_share = 0.005"),
+])
+def test_bad_keys_are_one_line_naming_the_key(keys, expected):
+    with pytest.raises(InputError) as info:
+        spec_from_dict(model(**keys))
+    assert len(info.value.problems) == 1
+    assert expected in info.value.problems[0] and "\n" not in info.value.problems[0]
+
+
+def test_bad_key_on_the_command_line_exits_2(tmp_path):
+    write_planted(tmp_path, n=60, n_planted=0)
+    text = (tmp_path / "m.toml")
+    text.write_text('[data]\nfile = "panel.csv"\nunit = "shop"\nperiod = "year"\n'
+                    '[model]\noutcome = "y"\n[audit]\ninfluence = "everything"\n')
+    proc = subprocess.run([sys.executable, "-m", "robustgmm", "audit", str(text), "--out",
+                           str(tmp_path / "out")], capture_output=True, text=True)
+    assert proc.returncode == 2
+    lines = proc.stderr.strip().splitlines()
+    assert len(lines) == 1 and "[audit] influence" in lines[0] and "Traceback" not in proc.stderr
