@@ -34,6 +34,10 @@ mean the same on a fast or a slow machine (issue 5 of the project):
    N = 200,000 for CSV and parquet (target ≤ 0.3), and the command line's marginal
    cost of a fit from N = 4,000 to 16,000 against the dense ``Z'Z`` of the added
    rows (target ≤ 2).
+8. **Dropping units.** At N = 5,000 (T = 10, collapsed two-step system GMM): the
+   per-unit sums and the influence of every unit on every coefficient against one
+   fit (target ≤ 2), and one greedy step (an exact refit without the units dropped
+   so far and the influence on the reduced sample) against one fit (target ≤ 0.2).
 
 Timings are the best of a few repeats (``time.perf_counter``), interleaved between
 the two sides of a ratio so that load from other processes hits both alike. The
@@ -100,6 +104,9 @@ class Sizes:
     data_units: int = 200_000
     data_periods: int = 8
     cli_marginal_units: tuple[int, int] = (4_000, 16_000)
+    #: dropping units (issue 16): influence and one greedy step against one fit
+    drop_units: int = 5_000
+    drop_periods: int = 10
 
 
 FULL = Sizes("full")
@@ -107,14 +114,15 @@ QUICK = Sizes("quick", marginal_units=(1_000, 4_000), scale_units=(5_000, 20_000
               scale_aim_units=None, audit_units=500, reference_units=500, repeats=2,
               sim_reps=20, sim_large_units=2_000, cli_small_units=1_000,
               cli_large_units=None, cli_repeats=1, data_units=20_000,
-              cli_marginal_units=(1_000, 4_000))
+              cli_marginal_units=(1_000, 4_000), drop_units=1_000)
 #: For the tests: every workload runs, in seconds.
 TINY = Sizes("tiny", marginal_units=(60, 120), marginal_periods=6, scale_units=(80, 160),
              scale_aim_units=None, scale_periods=6, audit_units=60, audit_periods=6,
              reference_units=60, reference_periods=6, repeats=1, sim_units=60,
              sim_large_units=120, sim_periods=6, sim_reps=10, sim_scale_reps=10,
              cli_small_units=None, cli_large_units=None, cli_repeats=1,
-             data_units=300, data_periods=6, cli_marginal_units=(60, 120))
+             data_units=300, data_periods=6, cli_marginal_units=(60, 120),
+             drop_units=60, drop_periods=6)
 SIZES = {"full": FULL, "quick": QUICK, "tiny": TINY}
 #: Environment variable that picks the sizes (``tiny`` for tests).
 SIZES_ENV = "ROBUSTGMM_BENCH_SIZES"
@@ -820,8 +828,48 @@ def data_layer(sizes: Sizes, echo=print) -> Outcome:
 
 
 # ---------------------------------------------------------------------------
+# 8. dropping units (issue 16)
+# ---------------------------------------------------------------------------
+def dropping(sizes: Sizes, echo=print) -> Outcome:
+    """The dropping-units analysis (robustgmm.core.influence, robustgmm.core.dropping)
+    against one fit of the same model: the per-unit sums and the influence of every
+    unit on every coefficient (targets: at most 2 fits), and one greedy step — an
+    exact refit without one more unit and the influence on the reduced sample
+    (target: at most 0.2 fits)."""
+    from .core import fit, unit_sums
+    out = Outcome("8. Dropping units: influence and one greedy step against one fit")
+    N, T = sizes.drop_units, sizes.drop_periods
+    spec = _spec(form="collapsed", last_lag=4, steps=2)
+    panel = _panel(N, T, seed=41)
+    fit(spec, panel)  # warm up
+    t_fit = t_infl = t_step = math.inf
+    for rep in range(sizes.repeats):
+        t_fit = min(t_fit, _best(lambda: fit(spec, panel)))
+        holder = {}
+
+        def influence():
+            sums = holder["sums"] = unit_sums(spec, panel)
+            sums.state(())
+        t_infl = min(t_infl, _best(influence))
+        sums = holder["sums"]
+        t_step = min(t_step, _best(lambda: sums.state((rep + 1, rep + 7))))
+    out.rows += [
+        ("model", f"two-step system GMM, collapsed instruments (lags 2-4), y[t-1], x "
+                  f"endogenous, w exogenous, time effects; N = {N:,}, T = {T}"),
+        ("one fit", _fmt_s(t_fit)),
+        ("per-unit sums + influence of every unit on every coefficient", _fmt_s(t_infl)),
+        ("one greedy step (exact refit without two units + influence)", _fmt_s(t_step)),
+    ]
+    out.ratios.append(("influence / one fit", t_infl / t_fit, 2.0, None))
+    out.ratios.append(("one greedy step / one fit", t_step / t_fit, 0.2, None))
+    out.notes.append("the influence figure includes building the moment problem (one "
+                     "first pass) and the exact refit at the full sample")
+    return out
+
+
+# ---------------------------------------------------------------------------
 WORKLOADS = (marginal_cost, scale, audit_throughput, reference, simulation, cli_parallel,
-             data_layer)
+             data_layer, dropping)
 
 
 def run(quick: bool = False, out_dir=None, *, sizes: Sizes | None = None,

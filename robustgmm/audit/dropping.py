@@ -29,7 +29,6 @@ are shared between the terms and targets of a model.
 """
 from __future__ import annotations
 
-import time
 from dataclasses import dataclass, field, replace
 from typing import Any, Mapping, Sequence
 
@@ -80,7 +79,6 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     """The dropping-units tables of the variants ``ids`` (module docstring)."""
     from .. import core
     from .grid import sample_key
-    t0 = time.perf_counter()
     by_id = {v.id: v for v in planned}
     alpha = float(spec.alpha)
     focus = list(spec.focus_terms())
@@ -108,7 +106,6 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
             failures[vid] = " ".join(str(exc).split())
             continue
         period_rows.extend(_periods(v, panel, focus))
-    t1 = time.perf_counter()
     frames = (pd.DataFrame(r, columns=t.names()) for r, t in zip(
         (rows, unit_rows, path_rows, period_rows), contract.DROPPING_TABLES))
     influence, units, path, periods = frames
@@ -118,7 +115,7 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
         for col in cols:
             frame[col] = frame[col].astype("Int64")
     run = {"scope": str(spec.influence), "max_drop_share": float(spec.max_drop_share),
-           "variants": list(ids), "failures": dict(failures), "seconds": t1 - t0,
+           "variants": list(ids), "failures": dict(failures),
            "not_searched": [t for t in focus if not (influence["term"] == t).any()]}
     return DroppingTables(influence, units, path, periods, failures, run)
 

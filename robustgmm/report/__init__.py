@@ -47,6 +47,9 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     written = [p for f in figures for p in f.paths]
     sim_section, sim_md, sim_referee = _simulation_section(audit, out, formats, written)
     context["simulation"] = sim_section
+    drop_section, drop_md = _dropping_section(audit, out, formats, written)
+    context["dropping"] = drop_section
+    context["dropping_md"] = drop_md
     context["simulation_md"] = sim_md
     written.append(atomic_write_text(out / "report.html", render_html(context)))
     written.append(atomic_write_text(out / "report.md", render_markdown(context)))
@@ -55,6 +58,20 @@ def build_report(out_dir, *, formats=("png", "svg", "pdf")) -> list[Path]:
     written.append(atomic_write_text(out / "referee.txt",
                                      referee_text(audit, summary) + sim_referee))
     return written
+
+
+def _dropping_section(audit, out: Path, formats, written: list):
+    """The section "Does a handful of units drive the result?" (:mod:`.dropping`): its
+    context and its Markdown (its referee sentences are part of the referee paragraphs,
+    :mod:`.referee`); empty when the folder holds no dropping-units files
+    (``[audit] influence = "none"``)."""
+    from . import dropping as drop_mod
+    if not audit.dropping:
+        return None, ""
+    figs = drop_mod.render_dropping_figures(audit, out / "figures", formats=formats)
+    written.extend(p for f in figs for p in f.paths)
+    ctx = drop_mod.section_context(audit, figs)
+    return ctx, drop_mod.markdown_section(ctx)
 
 
 def _simulation_section(audit, out: Path, formats, written: list):

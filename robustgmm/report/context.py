@@ -291,4 +291,5 @@ def build_context(audit: AuditFolder, figures: list[FigureFile],
         # Filled by build_report when the folder holds simulation.csv (report.simulation);
         # present here so every caller of build_context can render the templates.
         "simulation": None,
+        "dropping": None,  # filled by build_report when the folder holds influence.csv
     }

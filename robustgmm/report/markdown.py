@@ -169,6 +169,8 @@ def render_markdown(ctx: dict) -> str:
     for f in ctx["figures"]:
         md += [f"### {esc(f['title'])}", "", f"![{esc(f['title'])}]({f['png']})", "",
                f"**How to read:** {esc(f['caption'])} Files: {esc(f['files'])}.", ""]
+    if ctx.get("dropping_md"):  # where the HTML report has it: after the figures
+        md += [ctx["dropping_md"], ""]
     if ctx.get("simulation_md"):  # where the HTML report has it: after the figures
         md += [ctx["simulation_md"], ""]
     md += ["## Variants", "", esc(ctx["counts"]), ""]

@@ -331,6 +331,9 @@ def referee_paragraphs(audit: AuditFolder, summary: AuditSummary | None = None) 
     s = summary or summarize(audit)
     out = [_base_paragraph(s), _evidence_paragraph(s)]
     out += [term_paragraph(t, s) for t in s.terms]
+    if audit.dropping:  # the dropping-units sentences (report/dropping.py), from the files
+        from .dropping import referee_sentences
+        out.append(referee_sentences(audit))
     out.append(CAUTION)
     return [p for p in out if p]
 

@@ -92,8 +92,8 @@ def test_the_rule_fires_and_the_sentence_names_the_units(planted):
     assert set(fig["dropped_units"]) <= PLANTED
     assert t["verdict"] == "fragile"
     k = fig["units_dropped"]
-    assert (f"dropping {k} of 400 bakeries ({100 * k / 400:.1f}%) makes the effect of staff "
-            "hours insignificant in the base model") in t["reason"]
+    assert (f"dropping {k} of 400 bakeries ({100 * k / 400:.1f}%) makes it insignificant in "
+            "the base model") in t["reason"]
     # the other estimated variant was analysed too ("all") and flips as well
     assert t["figures"]["dropping"]["variants_analysed"] == 1
     assert len(t["figures"]["dropping"]["variants_flipped"]) == 1
@@ -119,6 +119,26 @@ def test_the_files_have_the_contract_columns(planted):
     assert (path.groupby(["variant", "term", "target"])["dropped"].min() == 0).all()
     periods = pd.read_csv(out / "periods.csv")
     assert sorted(periods["period"].unique()) == list(range(2001, 2009))
+
+
+def test_the_report_says_it_and_draws_the_path(planted):
+    from robustgmm.report import build_report
+    folder, result = planted
+    out = folder / "out"
+    build_report(out, formats=("png",))
+    fig = next(r for r in result.verdict["terms"]["x[t]"]["rules"]
+               if r["id"] == "few_units_flip")["figures"]
+    k = fig["units_dropped"]
+    referee = " ".join((out / "referee.txt").read_text().split())
+    assert (f"Dropping {k} of 400 bakeries ({100 * k / 400:.1f}%) makes the effect of staff "
+            "hours insignificant") in referee
+    assert "not which sample is right" in referee
+    assert (out / "figures" / "dropping_x_t.png").is_file()
+    html = (out / "report.html").read_text()
+    assert "Does a handful of units drive the result?" in html and 'id="fig-dropping_x_t"' in html
+    md = (out / "report.md").read_text()
+    assert "## Does a handful of units drive the result?" in md
+    assert "| sign reversed | yes | 5 of 400 bakeries (1.2%) |" in md
 
 
 def test_a_clean_panel_reaches_nothing_within_one_percent(tmp_path):

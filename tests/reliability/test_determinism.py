@@ -98,7 +98,8 @@ def test_identical_across_jobs_and_cache(project, tmp_path):
     }, tmp_path)
     reference = files["jobs1"]
     assert set(reference) == {"variants.csv", "estimates.csv", "bounds.csv", "verdict.json",
-                              "manifest.json"}
+                              "manifest.json", "influence.csv", "influence_units.csv",
+                              "influence_path.csv", "periods.csv"}
     for name in files:
         _same_files(reference, files[name], name)
     # the runs really differed in how they ran

@@ -145,7 +145,7 @@ def test_another_format_version_is_refused(writable_folder):
     manifest["format_version"] = 0
     (out / "manifest.json").write_text(json.dumps(manifest))
     with pytest.raises(InputError, match=r"manifest.json: format_version is 0, this robustgmm "
-                                         r"reads 1; rerun the audit"):
+                                         r"reads 2; rerun the audit"):
         read_audit_folder(out)
     del manifest["format_version"]
     (out / "manifest.json").write_text(json.dumps(manifest))
@@ -199,7 +199,11 @@ def test_html_parses_and_is_self_contained(built):
             assert f'id="{attrs["href"][1:]}"' in html, (tag, attrs)
         assert tag not in ("link", "iframe", "object", "embed")
     imgs = [a for t, a in parsed.tags if t == "img"]
-    assert len(imgs) == len(read_audit_folder(out).focus) + 3
+    # a specification curve per focus term, three model figures, and the dropping-units
+    # path of each searched term
+    dropping = len(list((out / "figures").glob("dropping_*.png")))
+    assert dropping == len(read_audit_folder(out).dropping["influence.csv"]["term"].unique())
+    assert len(imgs) == len(read_audit_folder(out).focus) + 3 + dropping
     assert "url(" not in html
 
 

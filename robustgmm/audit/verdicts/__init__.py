@@ -73,6 +73,15 @@ Term rules (each focus term, over its judged variants):
   *uninformative* when its standard error exceeds ``uninformative_se_ratio`` (3) base
   standard errors; uninformative variants are listed and left out of this rule and of
   ``significance_flip``. Caution.
+* ``few_units_flip`` — dropping at most ``flip_share`` (0.01; a robustgmm default) of
+  the units reverses the sign or the significance at alpha of the base model's
+  conclusion (for an insignificant estimate: makes it significant), each set found
+  by the additive approximation and the greedy search and refitted exactly
+  (:mod:`robustgmm.audit.dropping`; Broderick, Giordano & Meager 2020; Huang, Burt,
+  Shen, Nguyen & Broderick 2024). **Fragile** in the base model; a caution when it
+  happens only in other analysed variants (``[audit] influence = "all"``).
+  Evaluated in :mod:`.dropping`, and whatever the base's tests say (a property of
+  its estimate), though an inconclusive verdict stays inconclusive.
 * ``ar_outside_band`` — for an autoregressive term: the base estimate lies outside the
   [within, pooled OLS] band of its sample (Bond, Hoeffler & Temple 2001; Bond 2002).
   Caution.
@@ -84,7 +93,8 @@ How the rules combine (the same order for every term):
 
 1. **inconclusive** if ``base_not_ok``, ``base_not_acceptable`` or
    ``too_few_acceptable`` fires (the base-anchored rules are then not evaluated);
-2. otherwise **fragile** if ``sign_change`` or ``significance_flip`` fires;
+2. otherwise **fragile** if ``sign_change`` or ``significance_flip`` fires, or
+   ``few_units_flip`` fires in the base model;
 3. otherwise **robust**. Cautions never change the verdict.
 
 What drives each estimate (model influence; Young & Holsteen 2017, Sociological

@@ -83,7 +83,7 @@ def evaluate_term(term: str, base: BaseEstimate | None, c) -> tuple[Firing | Non
         hits = _hits(base_rows, base.significant, flip)
         if len(hits):
             base_hit = _figures(hits.iloc[0], base.significant, _units(c, c.base_id))
-        summary["base_smallest"] = _smallest(base_rows, base.significant)
+        summary["base_smallest"] = _smallest(base_rows, base.significant, _units(c, c.base_id))
     others = []
     analysed = [v for v in dict.fromkeys(rows["variant"].astype(str)) if v != c.base_id]
     for vid in analysed:
@@ -113,15 +113,13 @@ def _as_caution(f: Firing) -> Firing:
                   Effect.CAUTION, f.figures)
 
 
-def _smallest(rows: pd.DataFrame, significant: bool) -> dict | None:
+def _smallest(rows: pd.DataFrame, significant: bool, n_units: int | None) -> dict | None:
     """The smallest reached set of a counted target at any share (None: not reached
     within max_drop_share)."""
     hits = _hits(rows, significant, math.inf)
     if hits.empty:
         return None
-    r = hits.iloc[0]
-    return {"target": str(r["target"]), "units_dropped": int(r["units_dropped"]),
-            "share_dropped": float(r["share_dropped"])}
+    return _figures(hits.iloc[0], significant, n_units)
 
 
 def _significance(c, term: str) -> dict[str, bool]:
@@ -153,11 +151,14 @@ def units_text(k: int, n: int | None, noun: str = "units") -> str:
     return f"{k} {noun}"
 
 
-def flip_phrase(fig: dict, term_text: str, noun: str = "units") -> str:
+def flip_phrase(fig: dict, term_text: str | None = None, noun: str = "units") -> str:
     """The plain sentence of a firing: ``dropping 4 of 400 bakeries (1.0%) makes the
-    effect of staff hours insignificant``."""
+    effect of staff hours insignificant`` (``term_text`` None: "makes it
+    insignificant", for the verdict's reason, which belongs to one term already)."""
     lead = f"dropping {units_text(int(fig['units_dropped']), fig.get('units'), noun)}"
     if fig["target"] == DropTarget.SIGN.value:
-        return f"{lead} reverses the sign of the effect of {term_text}"
+        return (f"{lead} reverses its sign" if term_text is None
+                else f"{lead} reverses the sign of the effect of {term_text}")
     what = "insignificant" if fig["base_significant"] else "significant"
-    return f"{lead} makes the effect of {term_text} {what}"
+    return (f"{lead} makes it {what}" if term_text is None
+            else f"{lead} makes the effect of {term_text} {what}")

@@ -235,8 +235,8 @@ def _reason(term, verdict, base, figures, fired, c: _Context) -> str:
                      f"threshold share is {c.th['significant_share']:g})")
     if "few_units_flip" in ids and ids["few_units_flip"].effect == Effect.FRAGILE:
         f = ids["few_units_flip"].figures
-        parts.append(flip_phrase(f, dict(c.spec.labels).get(term, term), unit_noun(c.spec))
-                     + " in the base model")
+        # the term is not named: the reason belongs to it, and user text stays out
+        parts.append(flip_phrase(f, None, unit_noun(c.spec)) + " in the base model")
     if parts:
         return "; ".join(parts)
     agree = figures.get("share_agreeing_with_base")
