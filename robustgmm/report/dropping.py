@@ -219,8 +219,9 @@ def render_dropping_figures(audit: AuditFolder, out_dir, *, formats=("png", "svg
 
 
 CAPTION = ("The line is the base model's estimate of {term} as the most influential "
-           "{noun} are dropped one at a time (the greedy search towards the opposite sign; "
-           "each point an exact refit), with its {level} interval shaded; the dashed line "
+           "{noun} are dropped one at a time (the greedy search against the base model's "
+           "conclusion: towards the opposite sign when the estimate is significant, towards "
+           "significance when it is not; each point an exact refit), with its {level} interval shaded; the dashed line "
            "is the significance boundary (the estimate is significant while it lies beyond "
            "it), the dotted line the few_units_flip share. Grey lines: other acceptable "
            "variants analysed.")
