@@ -19,8 +19,9 @@ answers are tables of the audit folder (:mod:`robustgmm.contract`):
 
 Long-run effects are not searched (they are ratios of coefficients; only the
 coefficients have an influence in :mod:`robustgmm.core.influence`). A model whose
-moment problem cannot be rebuilt (an :class:`~robustgmm.errors.EstimationError`) is
-recorded in ``failures`` and never stops the audit. The rule that reads the tables,
+moment problem cannot be rebuilt or solved on a reduced sample (an
+:class:`~robustgmm.errors.EstimationError` or a singular matrix) is recorded in
+``failures`` (manifest.json ``influence``, the report) and never stops the audit. The rule that reads the tables,
 ``few_units_flip``, is evaluated in :mod:`robustgmm.audit.verdicts.dropping`.
 
 Cost: one moment problem per analysed model (about one fit), then per greedy step
@@ -102,8 +103,10 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
                                      for p in res.path)
             if v.is_base:
                 unit_rows.extend(_top_units(search, terms, panel))
-        except EstimationError as exc:
-            failures[vid] = " ".join(str(exc).split())
+        except (EstimationError, np.linalg.LinAlgError) as exc:
+            # a reduced sample the moment problem cannot solve is a property of the
+            # data, like a failing variant: recorded, and the audit goes on
+            failures[vid] = f"{type(exc).__name__}: " + " ".join(str(exc).split())
             continue
         period_rows.extend(_periods(v, panel, focus))
     frames = (pd.DataFrame(r, columns=t.names()) for r, t in zip(

@@ -141,6 +141,36 @@ def test_the_report_says_it_and_draws_the_path(planted):
     assert "| sign reversed | yes | 5 of 400 bakeries (1.2%) |" in md
 
 
+def test_only_variants_flipping_is_a_caution(planted):
+    # the same tables with the base model's sets moved beyond flip_share: the other
+    # analysed variant still flips, so the rule fires as a caution and the verdict no
+    # longer rests on it
+    from robustgmm.audit import verdicts
+    folder, result = planted
+    inf = result.dropping.influence.copy()
+    base = inf["variant"] == result.verdict["base_variant"]
+    inf.loc[base, "reached"] = False
+    ev = verdicts.evaluate(result.spec, result.variants, result.estimates, result.bounds,
+                           influence=inf).verdict
+    t = ev.term("x[t]")
+    firing = next(f for f in t.rules if f.id == "few_units_flip")
+    assert str(firing.effect) == "caution" and firing.figures["scope"] == "variants"
+    assert "in the base model" not in t.reason  # the reason no longer quotes the base set
+
+
+def test_a_listed_dropping_file_that_is_missing_is_one_line(planted, tmp_path):
+    import shutil
+    from robustgmm.report import read_audit_folder
+    folder, _ = planted
+    copy = tmp_path / "copy"
+    shutil.copytree(folder / "out", copy)
+    (copy / "influence_path.csv").unlink()
+    with pytest.raises(InputError) as info:
+        read_audit_folder(copy)
+    assert len(info.value.problems) == 1
+    assert "influence_path.csv: file missing" in info.value.problems[0]
+
+
 def test_a_clean_panel_reaches_nothing_within_one_percent(tmp_path):
     write_planted(tmp_path, n_planted=0, beta_rest=1.0, seed=4)
     spec = spec_from_dict(model(max_drop_share=0.01, vary={}), base_dir=tmp_path)
