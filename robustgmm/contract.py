@@ -219,6 +219,7 @@ PERIODS = Table("periods.csv", (
 #: The dropping-units files, written when ``[audit] influence`` is not "none" (listed
 #: in manifest.json ``files``; the report reads them when listed).
 DROPPING_TABLES = (INFLUENCE, INFLUENCE_UNITS, INFLUENCE_PATH, PERIODS)
+DROPPING_FILES = tuple(t.file for t in DROPPING_TABLES)
 
 #: The Monte Carlo of the grid (``robustgmm simulate``, ``audit --simulate``;
 #: :mod:`robustgmm.montecarlo.replicate`): one row per planned variant × focus term.

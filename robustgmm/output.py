@@ -45,13 +45,13 @@ STAGING_PREFIX = ".robustgmm-staging-"
 MANIFEST = "manifest.json"
 #: The contract files of an audit folder, in the order they are written.
 CONTRACT_FILES = contract.FILES
-#: The files an audit writes that the report only reads: the contract files and the
-#: optional Monte Carlo (rebuilding the report keeps them).
-AUDIT_DATA_FILES = CONTRACT_FILES + tuple(contract.SIMULATION_FILES)
+#: The files an audit writes that the report only reads: the contract files, the
+#: dropping-units files and the optional Monte Carlo (rebuilding the report keeps them).
+AUDIT_DATA_FILES = CONTRACT_FILES + contract.DROPPING_FILES + tuple(contract.SIMULATION_FILES)
 #: The report documents written beside them (figures go in ``figures/``).
 REPORT_FILES = ("report.html", "report.md", "table.tex", "referee.txt")
 #: Every name an audit may write at the top of its folder (inputs must not be there).
-OUTPUT_NAMES = frozenset(CONTRACT_FILES + contract.SIMULATION_FILES + REPORT_FILES
+OUTPUT_NAMES = frozenset(AUDIT_DATA_FILES + REPORT_FILES
                          + (MARKER, LOCK))
 #: A lock file without readable content (its writer died between creating and
 #: writing it, microseconds apart) counts as stale after this many seconds.

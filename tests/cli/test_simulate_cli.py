@@ -67,8 +67,12 @@ def test_audit_with_simulation(model, tmp_path, capsys):
     assert set(sim["variant"]) == set(variants.loc[variants["status"] == "ok", "variant"])
     # rebuilding the report keeps the Monte Carlo's files (it used to remove them as
     # documents it had not written) and its section
+    dropping = [f for f in contract.DROPPING_FILES if f in manifest["files"]]
+    assert dropping  # [audit] influence = "base" by default
     assert _run(capsys, "report", out)[0] == 0
     assert (out / "simulation.csv").is_file() and (out / "calibration.json").is_file()
+    # ... and the dropping-units files (the same removal hit them)
+    assert all((out / f).is_file() for f in dropping)
     assert "How these estimators behave" in (out / "report.md").read_text()
     # a later audit without --simulate removes the stale simulation files
     assert _run(capsys, "audit", model, "--out", out, "--jobs", 1)[0] == 0
