@@ -221,6 +221,8 @@ def plot_coverage(ax, sim: SimulationFolder, term: str):
     rows = rows.sort_values(["coverage", "order"], kind="mergesort")
     cov = rows["coverage"].to_numpy(float)
     err = 2 * np.nan_to_num(rows["coverage_mc_se"].to_numpy(float))
+    # A share lies in [0, 1]: the bars stop at the bounds rather than promise more.
+    err = np.vstack([cov - np.clip(cov - err, 0.0, 1.0), np.clip(cov + err, 0.0, 1.0) - cov])
     ax.axhline(1 - alpha, color=BLACK, lw=0.8, ls="--", label=f"nominal {1 - alpha:.0%}")
     ax.axhline(low, color=VERMILLION, lw=0.8, ls=":", label=f"min_coverage {low:.0%}")
     _points_with_base(ax, rows, cov, err, "coverage ± 2 Monte Carlo SE")
@@ -297,11 +299,21 @@ def _world_value(value) -> str:
     return "n/a"
 
 
+#: How to read the simulated-world table, shown under it in every document.
+WORLD_NOTE = ("Each parameter as calibrated to these data, and as the same calibration "
+              "finds it in one simulated panel. The second is one draw, so it differs from "
+              "the first by sampling noise; a gap well beyond that (often the variance of a "
+              "nearly non-stationary regressor) marks a parameter the calibration does not "
+              "recover at this sample size, where the simulated world is less like these "
+              "data.")
+
+
 def world_rows(calibration: Mapping[str, Any]) -> list[dict]:
     """The parameters of the simulated world (calibration.json): name, the value
     calibrated to the data, the same calibration re-run on a simulated panel
-    (replication 0; close values say the world reproduces what it was built from)
-    and how it was estimated."""
+    (replication 0: it differs from the first by sampling noise; a gap well beyond
+    that marks a parameter the method does not recover at this size) and how it was
+    estimated."""
     params = calibration.get("world", {}).get("parameters", {})
     return [{"name": name, "value": _world_value(p.get("value")),
              "simulated": _world_value(p.get("simulated")) if "simulated" in p else "",
@@ -337,6 +349,7 @@ def section_context(sim: SimulationFolder, figures, focus, units: int | None) ->
         "truth_source": sim.calibration.get("truth_source", ""),
         "unreliable": f"{fired} of {total} variants", "reading": READING,
         "world": world_rows(sim.calibration),
+        "world_note": WORLD_NOTE,
         "columns": columns_note(sim.calibration.get("reps"), alpha),
         "figures": [{"name": f.name, "title": f.title,
                      "caption": CAPTIONS[f.kind].format(term=f.term, level=f"{1 - alpha:.0%}"),
@@ -358,8 +371,7 @@ def markdown_section(ctx: dict) -> str:
              f"*{esc(ctx['reading'])}*", ""]
     if ctx.get("world"):
         lines += ["### The simulated world", "",
-                  "Each parameter as calibrated to these data, and as the same calibration "
-                  "finds it in a simulated panel (calibration.json).", "",
+                  f"{esc(ctx['world_note'])} Source: calibration.json.", "",
                   "| parameter | from the data | in a simulated panel | how estimated |",
                   "|---|---|---|---|"]
         lines += [f"| {esc(r['name'])} | {r['value']} | {r['simulated']} | {esc(r['method'])} |"

@@ -133,3 +133,23 @@ def test_every_column_is_explained_with_the_monte_carlo_error(folder):
                     "replications, "):
             assert col + "the " in text, (name, col)
         assert "about 6.9 points with 10 panels" in text, name
+
+
+def test_coverage_bars_stay_within_zero_and_one():
+    """A coverage is a share: its two-SE bar stops at 0 and 1 (a coverage of 0.97 from
+    20 panels has a binomial SE of 0.038, so an unclipped bar would reach 1.05)."""
+    from matplotlib.figure import Figure
+    from robustgmm.report.simulation import SimulationFolder, plot_coverage
+    rows = pd.DataFrame([
+        {"variant": v, "term": "a", "coverage": c, "order": i, "is_base": i == 0,
+         "coverage_mc_se": math.sqrt(c * (1 - c) / 20)}
+        for i, (v, c) in enumerate([("v1", 0.97), ("v2", 0.03), ("v3", 0.5)])])
+    ax = Figure().add_subplot()
+    plot_coverage(ax, SimulationFolder(rows, {"alpha": 0.05}), "a")
+    segments = ax.collections[0].get_segments()
+    lows = sorted(float(s[:, 1].min()) for s in segments)
+    highs = sorted(float(s[:, 1].max()) for s in segments)
+    assert min(lows) == pytest.approx(0.0) and max(highs) == pytest.approx(1.0)
+    # the middle bar is untouched: 0.5 +- 2 * 0.112
+    assert 0.5 - 2 * math.sqrt(0.25 / 20) == pytest.approx(lows[1])
+    assert 0.5 + 2 * math.sqrt(0.25 / 20) == pytest.approx(highs[1])
