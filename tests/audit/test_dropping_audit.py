@@ -20,27 +20,17 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from helpers_core import planted_frame
 from robustgmm import contract
 from robustgmm.audit import audit, write_audit
 from robustgmm.errors import InputError
 from robustgmm.modelfile import spec_from_dict
-from robustgmm.simulate import PanelProcess, long_frame, simulate_arrays
 
-QUIET = dict(theta=0.0, tau=0.0)
 PLANTED = {"396", "397", "398", "399", "400"}
 
 
 def write_planted(folder: Path, n=400, n_planted=5, periods=8, seed=1, beta_rest=0.0) -> None:
-    rest = simulate_arrays(np.random.default_rng(seed), n - n_planted, periods,
-                           PanelProcess(beta=beta_rest, **QUIET))
-    arrays = dict(rest)
-    if n_planted:
-        plant = simulate_arrays(np.random.default_rng(seed + 1000), n_planted, periods,
-                                PanelProcess(beta=1.0, sigma_v=5.0, rho_x=0.0, sigma_eps=0.1,
-                                             sigma_eta=0.1, **QUIET))
-        arrays = {k: np.vstack([rest[k], plant[k]]) for k in rest}
-    frame = long_frame(np.arange(1, n + 1), 2001 + np.arange(periods), arrays,
-                       unit="shop", period="year")
+    frame = planted_frame(n, n_planted, periods, seed, beta_rest, unit="shop", period="year")
     frame.to_csv(folder / "panel.csv", index=False)
 
 

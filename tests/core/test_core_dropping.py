@@ -17,36 +17,24 @@ from __future__ import annotations
 
 import itertools
 
-import numpy as np
 import pytest
 
-from helpers_core import sim_spec
+from helpers_core import planted_frame, sim_spec
 from robustgmm.core import fit
 from robustgmm.core.dropping import Search, max_drop_for, smallest_sets
 from robustgmm.core.influence import unit_sums
 from robustgmm.data import panel_from_frame
 from robustgmm.options import DropTarget
-from robustgmm.simulate import PanelProcess, long_frame, simulate_arrays
 from robustgmm.spec import Regressor
 from test_core_influence import reduced_panel
 
 EXOG = (Regressor("x", (0,), "exogenous"), Regressor("w", (0,), "exogenous"))
-QUIET = dict(theta=0.0, tau=0.0)
 
 
 def planted_panel(n=400, n_planted=5, periods=8, seed=1, beta_rest=0.0):
     """``n - n_planted`` units with effect ``beta_rest``, then the planted units:
     effect 1, x with standard deviation 5, shocks and unit effects of sd 0.1."""
-    rest = simulate_arrays(np.random.default_rng(seed), n - n_planted, periods,
-                           PanelProcess(beta=beta_rest, **QUIET))
-    arrays = {k: rest[k] for k in rest}
-    if n_planted:
-        plant = simulate_arrays(np.random.default_rng(seed + 1000), n_planted, periods,
-                                PanelProcess(beta=1.0, sigma_v=5.0, rho_x=0.0, sigma_eps=0.1,
-                                             sigma_eta=0.1, **QUIET))
-        arrays = {k: np.vstack([rest[k], plant[k]]) for k in rest}
-    df = long_frame(np.arange(1, n + 1), 2001 + np.arange(periods), arrays,
-                    unit="unit", period="period")
+    df = planted_frame(n, n_planted, periods, seed, beta_rest)
     return panel_from_frame(df, "unit", "period", ["y", "x", "w"])
 
 
