@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import numpy as np
 import pandas as pd
+from matplotlib.ticker import MaxNLocator
 
 from ..labels import mathtext_safe
 from .common import BLACK, BLUE, GREY, LIGHT, VERMILLION, critical, no_data, style
@@ -70,4 +71,6 @@ def plot_dropping_path(ax, path: pd.DataFrame, term: str, base: str, others, alp
     ax.set_ylabel(mathtext_safe(label or term), fontsize=8)
     ax.legend(fontsize=7, loc="best", frameon=False)
     style(ax)
+    # units are counted: no tick at 2.5 units
+    ax.xaxis.set_major_locator(MaxNLocator(integer=True))
     return ax
