@@ -189,6 +189,10 @@ def _p(test) -> float:
     return np.nan if test is None else float(test.p_value)
 
 
+def _df(test) -> int | None:
+    return None if test is None else test.df
+
+
 def _unavailable(fit) -> str:
     """The tests of a fit that are not reported, each with its reason ("name: reason",
     joined by " | "): e.g. Sargan in system GMM, a difference-in-Hansen group whose
@@ -257,8 +261,9 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                    parameters=v.parameters, units=v.units, observations=None)
         fit = o.fit if (o is not None and o.status == runner.OK) else None
         bnd = o.bounds if (o is not None and o.status == runner.OK) else None
-        row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, ar1_p=np.nan, ar2_p=np.nan,
-                   diff_hansen_level_p=np.nan, underid_p=np.nan, rk_f=np.nan,
+        row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, sargan_df=None, ar1_p=np.nan, ar2_p=np.nan,
+                   diff_hansen_level_p=np.nan,
+                   diff_hansen_level_df=None, underid_p=np.nan, rk_f=np.nan,
                    underid_p_transformed=np.nan, underid_p_level=np.nan, weak_f_min=np.nan,
                    weak_f_term=None, std_error_kind=None, ar_term=None,
                    ar_coefficient=np.nan, ar_ols=np.nan, ar_fe=np.nan, in_bounds=None,
@@ -267,12 +272,15 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
             c = fit.counts
             tests = fit.tests
             hansen = tests.get("hansen")
+            level_test = fit.difference_hansen.get(verdicts.LEVEL_GROUP)
             row.update(instruments=c.instruments, parameters=c.parameters, units=c.units,
                        observations=c.observations, hansen_p=_p(hansen),
-                       hansen_df=None if hansen is None else hansen.df,
-                       sargan_p=_p(tests.get("sargan")), ar1_p=_p(tests.get("ar1")),
+                       hansen_df=_df(hansen),
+                       sargan_p=_p(tests.get("sargan")), sargan_df=_df(tests.get("sargan")),
+                       ar1_p=_p(tests.get("ar1")),
                        ar2_p=_p(tests.get("ar2")),
-                       diff_hansen_level_p=_p(fit.difference_hansen.get(verdicts.LEVEL_GROUP)),
+                       diff_hansen_level_p=_p(level_test),
+                       diff_hansen_level_df=_df(level_test),
                        std_error_kind=fit.std_error_kind,
                        **_strength_columns(fit),
                        unavailable_tests=_unavailable(fit),
@@ -308,7 +316,8 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
     # the verdict columns are added by the verdicts (see audit())
     lead = [c for c in contract.VARIANTS.names(columns) if c not in contract.VERDICT_COLUMNS]
     variants = pd.DataFrame(vrows, columns=lead)
-    for col in ("instruments", "parameters", "units", "observations", "hansen_df"):
+    for col in ("instruments", "parameters", "units", "observations", "hansen_df",
+                "sargan_df", "diff_hansen_level_df"):
         variants[col] = variants[col].astype("Int64")
     variants["in_bounds"] = variants["in_bounds"].astype("boolean")
     estimates = pd.DataFrame(erows, columns=contract.ESTIMATES.names())

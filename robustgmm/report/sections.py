@@ -94,7 +94,7 @@ def base_model_table(audit: AuditFolder) -> dict:
     ]
     if "diff_hansen_level_p" in row.index:
         tests.append(("Instrument groups (difference-in-Hansen)", "level equation",
-                      value("diff_hansen_level_p", fmt_p), ""))
+                      value("diff_hansen_level_p", fmt_p), df_text("diff_hansen_level_df")))
     counts = [(name, value(col, fmt_int)) for name, col in
               (("observations", "observations"), ("units", "units"),
                ("instruments", "instruments"), ("parameters", "parameters"))

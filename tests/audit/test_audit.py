@@ -232,3 +232,21 @@ def test_command_line_bug_is_exit_1_with_an_internal_error_line(tmp_path, monkey
     lines = err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("robustgmm: internal error: TypeError: "), err
     assert not (tmp_path / "out" / "manifest.json").exists()
+
+
+def test_test_degrees_of_freedom_in_variants_csv(tmp_path):
+    """Every chi-squared test in variants.csv carries its degrees of freedom. The
+    difference-in-Hansen (C) statistic of a group of moment conditions has as many
+    degrees of freedom as the group has conditions (Hayashi 2000, sec. 3.6); with
+    collapsed instruments the level equation has one per GMM-style variable, here y
+    and the endogenous x (Roodman 2009, collapsed level instruments Delta y[t-1],
+    Delta x[t-1]). Sargan and Hansen test the same moment conditions, so their dfs
+    agree: instruments - parameters (Arellano & Bond 1991)."""
+    spec = make_spec(tmp_path, vary={"equations": ["difference", "system"]},
+                     panel_kw={"n_units": 80, "n_periods": 6}, instruments={"form": "collapsed"})
+    out = write_audit(audit(spec, jobs=1), tmp_path / "out")
+    v = pd.read_csv(out / "variants.csv").set_index("equations")
+    dif, sys_ = v.loc["difference"], v.loc["system"]
+    assert sys_["diff_hansen_level_df"] == 2 < sys_["hansen_df"]
+    assert pd.isna(dif["diff_hansen_level_df"]) and pd.isna(sys_["sargan_df"])
+    assert dif["sargan_df"] == dif["hansen_df"] == dif["instruments"] - dif["parameters"]
