@@ -30,15 +30,22 @@ READING = ("The simulated world is only as right as the model: these figures sho
            "Statistical robustness is not proof of instrument validity.")
 
 
+def coverage_mc_se(reps, alpha: float) -> float | None:
+    """The binomial Monte Carlo standard error of a coverage at the nominal level
+    1 - alpha from ``reps`` panels, sqrt(p (1 - p) / R); None without a count."""
+    try:
+        return math.sqrt((1 - alpha) * alpha / int(reps))
+    except (TypeError, ValueError, ZeroDivisionError):
+        return None
+
+
 def columns_note(reps, alpha: float) -> str:
     """What each column of the ranking tables is, with the Monte Carlo standard error
     of a coverage at the nominal level, sqrt(p (1 - p) / R): with few panels 95% and
     100% are within noise of each other."""
     level = 1 - alpha
-    try:
-        mc = f"{100 * math.sqrt(level * (1 - level) / int(reps)):.1f} points"
-    except (TypeError, ValueError, ZeroDivisionError):
-        mc = "sqrt(p (1 - p) / R)"
+    se = coverage_mc_se(reps, alpha)
+    mc = f"{100 * se:.1f} points" if se is not None else "sqrt(p (1 - p) / R)"
     return (f"The tables below rank the variants by RMSE. Columns: bias, the mean of "
             f"estimate minus truth; SD, the standard deviation "
             f"of the estimates across the panels; RMSE, the root mean squared error; "
@@ -166,6 +173,11 @@ def referee_sentences(sim: SimulationFolder, focus, units: int | None) -> str:
     text = f"{_lead(sim, units)}, {first[1]}."
     for term, clause in rest:
         text += f" For {term}, {clause}."
+    se = coverage_mc_se(sim.calibration.get("reps"), float(sim.calibration.get("alpha", 0.05)))
+    if se is not None:  # few panels: 95% and 100% may be noise apart
+        text += (f" With {sim.calibration.get('reps')} panels a coverage is known to within "
+                 f"about {200 * se:.0f} percentage points (two Monte Carlo standard errors "
+                 f"at the nominal level), and the ranking by RMSE carries the same noise.")
     return text + (" The simulated world is the base model taken as true; this says how the "
                    "estimators behave if the model is right, not that it is.")
 

@@ -84,6 +84,8 @@ def test_section_in_every_document(folder):
     assert f"by {abs(base['bias']):.2g} on average" in referee
     assert f"cover the truth {100 * base['coverage']:.0f}% of the time" in referee
     assert "60 units and 6 periods" in referee
+    # ... and says how noisy a coverage from 10 panels is: 2 * sqrt(0.95 * 0.05 / 10)
+    assert "With 10 panels a coverage is known to within about 14 percentage points" in referee
 
 
 def test_rule_reaches_the_verdict(folder):
