@@ -261,8 +261,8 @@ def _tables(spec: Spec, planned, outcomes) -> tuple[pd.DataFrame, pd.DataFrame, 
                    parameters=v.parameters, units=v.units, observations=None)
         fit = o.fit if (o is not None and o.status == runner.OK) else None
         bnd = o.bounds if (o is not None and o.status == runner.OK) else None
-        row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, sargan_df=None, ar1_p=np.nan, ar2_p=np.nan,
-                   diff_hansen_level_p=np.nan,
+        row.update(hansen_p=np.nan, hansen_df=None, sargan_p=np.nan, sargan_df=None,
+                   ar1_p=np.nan, ar2_p=np.nan, diff_hansen_level_p=np.nan,
                    diff_hansen_level_df=None, underid_p=np.nan, rk_f=np.nan,
                    underid_p_transformed=np.nan, underid_p_level=np.nan, weak_f_min=np.nan,
                    weak_f_term=None, std_error_kind=None, ar_term=None,
