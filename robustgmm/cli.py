@@ -145,6 +145,9 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("bench", help="measure speed on simulated workloads")
     p.add_argument("--quick", action="store_true", help="small workloads only")
     p.add_argument("--out", metavar="DIR", default=None, help="where to write the bench report")
+    p.add_argument("--workloads", metavar="LIST", default=None,
+                   help="only these workloads, by number, comma-separated (e.g. 5,8); "
+                        "needs --out, so reports/bench.md stays a full run")
     return parser
 
 
@@ -423,8 +426,20 @@ def cmd_bench(args) -> int:
         out = Path(args.out)
         if out.exists() and not out.is_dir():
             raise InputError(f"{args.out}: --out must be a folder; this is a file")
-    from .bench import run
-    run(quick=args.quick, out_dir=out)
+    from .bench import WORKLOADS, run
+    only = None
+    if args.workloads is not None:
+        if out is None:
+            raise InputError("--workloads: give --out as well (reports/bench.md holds only "
+                             "full runs)")
+        only = []
+        for part in args.workloads.split(","):
+            part = part.strip()
+            if not part.isdigit() or not 1 <= int(part) <= len(WORKLOADS):
+                raise InputError(f"--workloads: {part!r} is not a workload number "
+                                 f"(1 to {len(WORKLOADS)})")
+            only.append(int(part))
+    run(quick=args.quick, out_dir=out, only=only)
     return EXIT_OK
 
 

@@ -47,3 +47,20 @@ def test_the_audit_workload_estimates_the_one_by_one_variants():
     planned = grid.expand(bench._audit_base_spec(base))
     assert len(one_by_one) == len(bench.audit_specs(base)) == 64
     assert {grid.settings_hash(v.spec) for v in planned} == one_by_one
+
+
+def test_a_partial_run_writes_only_the_chosen_workloads(tmp_path, monkeypatch, capsys):
+    monkeypatch.setenv(bench.SIZES_ENV, "tiny")
+    out = tmp_path / "bench"
+    assert main(["bench", "--workloads", "4", "--out", str(out)]) == 0
+    text = (out / "bench.md").read_text(encoding="utf-8")
+    assert "## 4. Against linearmodels" in text and "Partial run" in text
+    assert "## 1. Marginal cost" not in text and "## 8." not in text
+
+
+def test_a_bad_workload_list_is_a_one_line_error(tmp_path, capsys):
+    assert main(["bench", "--workloads", "4,9", "--out", str(tmp_path)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert "'9' is not a workload number" in err and len(err.splitlines()) == 1
+    assert main(["bench", "--workloads", "4"]) == 2
+    assert "--out" in capsys.readouterr().err
