@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import argparse
 import contextlib
+import json
 import math
 import os
 import sys
@@ -336,7 +337,7 @@ def _after_audit(result, out: Path, args) -> int:
     for note in run_notes(run):
         print(note, file=sys.stderr)
     fragile = fragile_terms(result.verdict)
-    _out(audit_summary(result, out, fragile))
+    _out(audit_summary(result.verdict, out, fragile))
     _out(run_line(run, result.variants["status"]))
     if args.fail_on_fragile and fragile:
         return EXIT_FRAGILE
@@ -416,7 +417,10 @@ def cmd_demo(args) -> int:
         run_demo(out, jobs=args.jobs)
     except OSError as exc:
         raise cannot_write(args.out, exc) from None
-    _out(f"Wrote the demo audit to {out}")
+    verdict = json.loads((out / "verdict.json").read_text(encoding="utf-8"))
+    _out(audit_summary(verdict, out, fragile_terms(verdict)))
+    _out(f"Open {out / 'report.html'} for the report; the true values of the invented "
+         f"world are in {out / 'truth.json'}")
     return EXIT_OK
 
 

@@ -460,9 +460,16 @@ def run_demo(out_dir=None, *, jobs: int | None = None, reps: int | None = DEMO_R
     result = audit(spec, jobs=jobs, cache_dir=None, progress=None,
                    **({} if reps is None else {"simulate": reps, "seed": DEMO_SIM_SEED}))
     result = dataclasses.replace(result, manifest=_relative_paths(result.manifest, out))
-    write_audit(result, out, model_file=(Path("inputs") / DEMO.model_name).as_posix())
-    shutil.copyfile(out / "inputs" / TRUTH_NAME, out / TRUTH_NAME)
-    build_report(out)
+
+    def report(stage: Path) -> list[Path]:
+        # truth.json beside the audit files (the report's "Known truth" section reads
+        # it) and the report itself are published with the audit, so the folder's
+        # ownership record lists them like every other file of the audit
+        shutil.copyfile(out / "inputs" / TRUTH_NAME, stage / TRUTH_NAME)
+        return [stage / TRUTH_NAME] + list(build_report(stage))
+
+    write_audit(result, out, model_file=(Path("inputs") / DEMO.model_name).as_posix(),
+                report=report)
     return out
 
 

@@ -286,12 +286,12 @@ def fragile_terms(verdict) -> list[str]:
             if isinstance(v, dict) and v.get("verdict") == "fragile"]
 
 
-def audit_summary(result, out: Path, fragile: list[str]) -> str:
-    """What the terminal prints after an audit, read from the verdict (nothing is
-    judged here): the base model's failure first, the counts by evidence class, then
-    each focus term's verdict with its reason."""
+def audit_summary(verdict: dict, out: Path, fragile: list[str]) -> str:
+    """What the terminal prints after an audit, read from the verdict (its dict, as in
+    verdict.json; nothing is judged here): the base model's failure first, the counts
+    by evidence class, then each focus term's verdict with its reason."""
     from .audit.verdicts import AuditVerdict
-    verdict = AuditVerdict.from_dict(result.verdict)
+    verdict = AuditVerdict.from_dict(verdict)
     lines = []
     if not verdict.base_acceptable and verdict.base_statement:
         lines.append(verdict.base_statement + " Every verdict is therefore inconclusive.")

@@ -304,3 +304,15 @@ def test_fit_reports_rows_dropped_for_missing_values(project, capsys):
     code, out, err = run(["fit", project / "model.toml"], capsys)
     assert code == 0, err
     assert "Rows with a missing value in a used column: 2" in out
+
+
+def test_demo_prints_the_verdicts_and_where_to_read_them(tmp_path, capsys):
+    # the quick start's first command: the terminal says what the audit concluded
+    # (read from verdict.json, as after `robustgmm audit`) and where the report is
+    out = tmp_path / "demo"
+    code, printed, err = run(["demo", "--out", out], capsys)
+    assert code == 0, err
+    verdict = json.loads((out / "verdict.json").read_text(encoding="utf-8"))
+    for term, v in verdict["terms"].items():
+        assert f"  {term}: {v['verdict']} — " in printed
+    assert f"Open {out / 'report.html'}" in printed and "truth.json" in printed

@@ -144,6 +144,12 @@ def test_demo_regenerates_the_committed_output(tmp_path, monkeypatch):
         {t: v["verdict"] for t, v in old["terms"].items()}
     for name in ("report.html", "report.md", "table.tex", "referee.txt", "truth.json"):
         assert (out / name).is_file(), name
+    # the ownership record lists every file of the demo's audit, the report included,
+    # so that a rerun replaces them (and removes the stale ones) like an audit's
+    recorded = set(json.loads((out / ".robustgmm-output").read_text())["files"])
+    written = {p.relative_to(out).as_posix() for p in out.rglob("*")
+               if p.is_file() and p.parts[len(out.parts)] not in ("inputs", ".robustgmm-output")}
+    assert written == recorded
     manifest = json.loads((out / "manifest.json").read_text())
     assert manifest["model_file"] == "inputs/norland_bakeries.toml"
     assert not any(str(tmp_path) in str(v) for v in manifest.values())
