@@ -208,6 +208,9 @@ class Design:
         self.unit_has_rows = rows_t.any(axis=1) | rows_l.any(axis=1)
         self.n_rows = [int(rows_t.sum()), int(rows_l.sum())]
         self.complete_any = complete.any(axis=0)
+        # the time functionals depend on a unit's pattern of complete periods only
+        # (see time_gram); kept for them, one bool per unit-period
+        self._complete_all = complete
         if self.n_rows[0] == 0:
             raise EstimationError(
                 "no observations left: no unit has enough consecutive complete periods "
@@ -423,8 +426,14 @@ class Design:
     # ----------------------------------------------------------------- chunks
     def chunk(self, lo: int, hi: int) -> Chunk:
         """Build the arrays of units ``lo:hi`` (all X columns, all instruments)."""
-        values = {v: self.panel.values[v][lo:hi] for v in self.var_names}
-        n = hi - lo
+        return self._chunk({v: self.panel.values[v][lo:hi] for v in self.var_names}, hi - lo)
+
+    def chunk_of(self, units: np.ndarray) -> Chunk:
+        """The arrays of the units at positions ``units`` (as :meth:`chunk`)."""
+        units = np.asarray(units, dtype=np.intp)
+        return self._chunk({v: self.panel.values[v][units] for v in self.var_names}, len(units))
+
+    def _chunk(self, values: dict, n: int) -> Chunk:
         P = self.P
         complete = self._complete(values)
         rows_t, rows_l = self._rows_from_complete(complete)
@@ -535,6 +544,33 @@ class Design:
             prior[:, 1:] = w[:, :-1]
             A[:, :, pos] -= np.where(complete, prior, 0.0)
         return A
+
+    def time_gram(self, cols: np.ndarray) -> np.ndarray:
+        """``Σ_i A_i'A_i`` of the time functionals (:meth:`time_functionals`) over every
+        unit, for the time columns ``cols``.
+
+        ``A_i`` is built from the unit's dummy and constant columns of both equations,
+        which depend on its pattern of complete periods only (the rows follow from it,
+        and so do the first differences and forward deviations of the dummies). The sum
+        is therefore ``Σ_patterns count · A'A`` over the distinct patterns, each built
+        once from one unit that has it: a few units instead of all of them (a balanced
+        panel has one pattern). With first differences the entries are small whole
+        numbers, so the sum is exactly the unit-by-unit sum."""
+        complete = self._complete_all
+        k = len(cols)
+        N, P = complete.shape
+        if P <= 62:  # one whole number per pattern
+            codes = complete.astype(np.int64) @ (np.int64(1) << np.arange(P, dtype=np.int64))
+            _, first, counts = np.unique(codes, return_index=True, return_counts=True)
+        else:
+            _, first, counts = np.unique(np.packbits(complete, axis=1), axis=0,
+                                         return_index=True, return_counts=True)
+        ch = self.chunk_of(first)
+        x_tr, x_lv = ch.x[0], (ch.x[1] if self.system else None)
+        A = self.time_functionals(x_tr, x_lv, ch.complete, cols)
+        A2 = A.reshape(-1, k)
+        weights = np.repeat(counts.astype(np.float64), P)
+        return (A2 * weights[:, None]).T @ A2
 
     def instrument_groups(self) -> dict[str, np.ndarray]:
         """Positions (within the kept instruments) of each instrument group."""

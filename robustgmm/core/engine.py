@@ -3,10 +3,11 @@
 A :class:`MomentEngine` runs passes over chunks of units whose size follows a
 memory budget (:func:`memory_budget`), keeping the prepared chunks between passes
 only while they all fit in half the budget (DEVELOPERS.md, "Where time goes"). Its
-first pass sums ``Z'X``, ``Z'y``, ``Z'HZ`` and ``X'X`` (:func:`.moments.first_moments`)
-and, when the model has time effects, ``Σ_i A_i'A_i`` of the time-effect moments
-written as functions of the level residuals (:meth:`.design.Design.time_functionals`),
-from which redundant time moments are found. Later passes run tasks (per-unit
+first pass sums ``Z'X``, ``Z'y``, ``Z'HZ`` and ``X'X`` (:func:`.moments.first_moments`);
+when the model has time effects, ``Σ_i A_i'A_i`` of the time-effect moments written
+as functions of the level residuals (:meth:`.design.Design.time_gram`, from the
+distinct patterns of complete periods, not a pass) tells which time moments are
+redundant. Later passes run tasks (per-unit
 moments, the Windmeijer term, the AR(m) sums) per chunk, sharing residuals and
 ``G'`` between the tasks of a pass.
 """
@@ -157,19 +158,13 @@ class MomentEngine:
             zx = np.zeros((lay.L, lay.K)); zy = np.zeros(lay.L)
             zhz = np.zeros((lay.L, lay.L)); xx = np.zeros((lay.K, lay.K))
             tcols = self.time_cols
-            gram = np.zeros((len(tcols), len(tcols)))
             for pc in self.source:
                 a, b, c, e = first_moments(pc, lay)
                 zx += a; zy += b; zhz += c; xx += e
-                if len(tcols):
-                    complete = pc.complete if pc.complete is not None else pc.rows[0]
-                    A = self.design.time_functionals(
-                        pc.x[0], pc.x[1] if len(pc.x) > 1 else None, complete, tcols)
-                    A2 = A.reshape(-1, len(tcols))
-                    gram += A2.T @ A2
             self.passes += 1
             self._first = (zx, zy, zhz, xx)
-            self._time_gram = gram
+            self._time_gram = (self.design.time_gram(tcols) if len(tcols)
+                               else np.zeros((0, 0)))
         return self._first
 
     def time_gram(self) -> np.ndarray:

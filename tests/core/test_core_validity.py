@@ -206,6 +206,34 @@ def test_time_functionals_give_the_time_moments(transform):
     np.testing.assert_allclose(np.einsum("npj,np->jn", A, e_lev), gt, rtol=1e-10, atol=1e-10)
 
 
+@pytest.mark.parametrize("transform", ["fd", "fod"])
+def test_time_gram_over_patterns_is_the_sum_over_units(transform):
+    """Design.time_gram sums A'A over the distinct patterns of complete periods,
+    weighted by their counts: the same as the unit-by-unit sum of the time
+    functionals (exactly for first differences, whose entries are whole numbers), on
+    an unbalanced panel with several patterns."""
+    from robustgmm.core.moments import prepare
+
+    df = simulate_panel(90, 7, seed=6)
+    df = df[~((df["unit"] % 4 == 0) & (df["period"].isin([2001, 2004])))]
+    df = df[~((df["unit"] % 5 == 0) & (df["period"] == 2006))]
+    panel = panel_from_frame(df, "unit", "period", ["y", "x", "w"])
+    prob = GMMProblem(sim_spec(time_effects=True, transform=transform), panel)
+    eng = prob.engine
+    chunk = eng.design.chunk(0, panel.n_units)
+    pc = prepare(chunk, eng.layout)
+    cols = eng.time_cols
+    A = eng.design.time_functionals(pc.x[0], pc.x[1], chunk.complete, cols)
+    A2 = A.reshape(-1, len(cols))
+    unit_by_unit = A2.T @ A2
+    gram = eng.design.time_gram(cols)
+    if transform == "fd":
+        np.testing.assert_array_equal(gram, unit_by_unit)
+    else:
+        np.testing.assert_allclose(gram, unit_by_unit, rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(eng.time_gram(), gram)
+
+
 def test_redundant_time_moments_follow_attrition():
     """With units that enter late, the transformed time moments of their first rows
     involve level shocks without level rows too: more of them are kept than in the
