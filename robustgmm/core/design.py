@@ -100,8 +100,9 @@ class Chunk:
 
     ``y[e]`` (n, P) and ``x[e]`` (n, P, K) hold equation ``e`` (0 transformed,
     1 level) with zeros where the row is absent; ``blocks`` hold the instrument
-    values of each row, ``(block, values (n, m))``. ``ylev``/``xlev`` are the levels
-    on ``complete`` periods, used for the AR tests.
+    values of each row, ``(block, values (n, m))`` (empty for a chunk built for the
+    kernels, which read ``levels_t`` and ``augmented``). ``ylev``/``xlev`` are the
+    levels on ``complete`` periods, used for the AR tests.
     """
 
     n: int
@@ -112,6 +113,12 @@ class Chunk:
     ylev: np.ndarray
     xlev: np.ndarray
     complete: np.ndarray
+    #: (V·P, n): the raw variables (NaN where missing), row ``v·P + p`` variable ``v``
+    #: at period ``p``; the source of the lagged-level and difference instruments
+    levels_t: np.ndarray | None = None
+    #: per equation, (n, P, X columns + extra instrument terms): the source of the
+    #: "own" instrument entries (exogenous regressors, extra columns, time effects)
+    augmented: list | None = None
 
 
 def _either(kind, value, yes, no) -> bool:
@@ -424,22 +431,28 @@ class Design:
         return j if j < n_terms else k_all + (j - n_terms)
 
     # ----------------------------------------------------------------- chunks
-    def chunk(self, lo: int, hi: int) -> Chunk:
-        """Build the arrays of units ``lo:hi`` (all X columns, all instruments)."""
-        return self._chunk({v: self.panel.values[v][lo:hi] for v in self.var_names}, hi - lo)
+    def chunk(self, lo: int, hi: int, blocks: bool = True) -> Chunk:
+        """Build the arrays of units ``lo:hi`` (all X columns, all instruments).
+
+        ``blocks=False`` leaves out the per-block instrument values (``Chunk.blocks``
+        empty): the kernels lay the entries out from ``levels_t`` and ``augmented``
+        themselves (:func:`.moments.prepare`)."""
+        return self._chunk({v: self.panel.values[v][lo:hi] for v in self.var_names}, hi - lo,
+                           blocks)
 
     def chunk_of(self, units: np.ndarray) -> Chunk:
         """The arrays of the units at positions ``units`` (as :meth:`chunk`)."""
         units = np.asarray(units, dtype=np.intp)
         return self._chunk({v: self.panel.values[v][units] for v in self.var_names}, len(units))
 
-    def _chunk(self, values: dict, n: int) -> Chunk:
+    def _chunk(self, values: dict, n: int, with_blocks: bool = True) -> Chunk:
         P = self.P
         complete = self._complete(values)
         rows_t, rows_l = self._rows_from_complete(complete)
-        terms = self.terms + self.extra_terms
         n_x = len(self.x_labels_all)
-        # augmented levels: X columns then extra instrument terms, NaN-free on complete
+        # augmented levels: X columns then extra instrument terms, zero off complete
+        # periods (where every one of them is observed); masked in place, as the
+        # arrays are written once and read by every pass
         aug = np.zeros((n, P, n_x + len(self.extra_terms)))
         for j, term in enumerate(self.terms):
             aug[:, :, j] = _shift(values[term.var], term.lag)
@@ -452,35 +465,41 @@ class Design:
         for j, term in enumerate(self.extra_terms):
             aug[:, :, n_x + j] = values[term.var]
         ylev = np.where(complete, values[self.spec.outcome], 0.0)
-        aug = np.where(complete[:, :, None], aug, 0.0)
+        np.copyto(aug, 0.0, where=~complete[:, :, None])
 
         if self.fod:
             ytr, augtr = _fod(ylev, aug, complete)
         else:
-            ytr = np.zeros_like(ylev)
-            ytr[:, 1:] = ylev[:, 1:] - ylev[:, :-1]
-            augtr = np.zeros_like(aug)
-            augtr[:, 1:] = aug[:, 1:] - aug[:, :-1]
-        ytr = np.where(rows_t, ytr, 0.0)
-        augtr = np.where(rows_t[:, :, None], augtr, 0.0)
+            ytr = np.empty_like(ylev)
+            ytr[:, 0] = 0.0
+            np.subtract(ylev[:, 1:], ylev[:, :-1], out=ytr[:, 1:])
+            augtr = np.empty_like(aug)
+            augtr[:, 0] = 0.0
+            np.subtract(aug[:, 1:], aug[:, :-1], out=augtr[:, 1:])
+        np.copyto(ytr, 0.0, where=~rows_t)
+        np.copyto(augtr, 0.0, where=~rows_t[:, :, None])
         # the transform of a time-invariant term is zero: exactly (no FOD rounding)
         for j, term in enumerate(self.terms):
             if term.label in self.time_invariant:
                 augtr[:, :, j] = 0.0
-        ylv = np.where(rows_l, ylev, 0.0)
-        auglv = np.where(rows_l[:, :, None], aug, 0.0)
+        if self.system:
+            ylv = np.where(rows_l, ylev, 0.0)
+            auglv = np.where(rows_l[:, :, None], aug, 0.0)
+        else:  # no level rows (np.zeros: pages untouched until read)
+            ylv, auglv = np.zeros(ylev.shape), np.zeros(aug.shape)
 
-        stacked = np.stack([values[v] for v in self.var_names], axis=1)  # (n, V, P)
+        # the raw variables, period-major: row v·P + p holds variable v at period p
+        levels_t = np.stack([values[v].T for v in self.var_names]).reshape(-1, n)
         blocks = []
-        for block in self.blocks:
+        for block in (self.blocks if with_blocks else ()):
             eq, t = block.equation, block.t
             rmask = (rows_t if eq == TRANSFORMED else rows_l)[:, t]
             parts = []
             if block.lev_var.size:
-                parts.append(stacked[:, block.lev_var, block.lev_src])
+                parts.append(levels_t[block.lev_var * P + block.lev_src].T)
             if block.dif_var.size:
-                parts.append(stacked[:, block.dif_var, block.dif_src]
-                             - stacked[:, block.dif_var, block.dif_src - 1])
+                parts.append((levels_t[block.dif_var * P + block.dif_src]
+                              - levels_t[block.dif_var * P + block.dif_src - 1]).T)
             if block.own_idx.size:
                 src = augtr if eq == TRANSFORMED else auglv
                 parts.append(src[:, t, block.own_idx])
@@ -496,6 +515,8 @@ class Design:
             ylev=ylev,
             xlev=aug[:, :, :n_x],
             complete=complete,
+            levels_t=levels_t,
+            augmented=[augtr, auglv],
         )
 
     # ------------------------------------------------------------- summaries

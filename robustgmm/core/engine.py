@@ -86,7 +86,7 @@ class ChunkSource:
         for pos, (lo, hi) in enumerate(self.ranges):
             pc = self._cache.get(pos)
             if pc is None:
-                pc = prepare(self.design.chunk(lo, hi), self.layout)
+                pc = prepare(self.design.chunk(lo, hi, blocks=False), self.layout)
                 self.builds += 1
                 size = pc.nbytes
                 if self.cached_bytes + size <= self.cache_limit:

@@ -119,6 +119,39 @@ class Layout:
                     self.pairs.append((j, nxt, (ci[:, None] * self.L + cj[None, :]).ravel(),
                                        (cj[:, None] * self.L + ci[None, :]).ravel()))
         self.transformed_slots = slice(0, self.P)
+        self._entry_sources(design, blocks)
+
+    def _entry_sources(self, design: Design, blocks) -> None:
+        """Where :func:`prepare` reads each laid-out entry: a lagged level (row
+        ``lev_src`` of the chunk's ``levels_t``, at entry ``lev_pos``), a lagged
+        difference (rows ``dif_src`` minus ``dif_src - 1``) or an "own" entry
+        (flat column ``own_src`` = period · columns + column of the equation's
+        augmented array ``own_eq``); ``zero_*`` the skipped structural zeros."""
+        P = self.P
+        lev_pos, lev_src, dif_pos, dif_src = [], [], [], []
+        own = {0: ([], []), 1: ([], [])}
+        zero = {0: [], 1: []}
+        width = len(design.x_labels_all) + len(design.extra_terms)
+        for j, b in enumerate(blocks):
+            nl, nd = len(b.lev_var), len(b.dif_var)
+            for pos, i in enumerate(self.take[j]):
+                at = int(self.starts[j]) + pos
+                if i < nl:
+                    lev_pos.append(at)
+                    lev_src.append(int(b.lev_var[i]) * P + int(b.lev_src[i]))
+                elif i < nl + nd:
+                    dif_pos.append(at)
+                    dif_src.append(int(b.dif_var[i - nl]) * P + int(b.dif_src[i - nl]))
+                else:
+                    own[b.equation][0].append(at)
+                    own[b.equation][1].append(b.t * width + int(b.own_idx[i - nl - nd]))
+            for i in self.drop[j]:  # only own entries are structural zeros
+                zero[b.equation].append(b.t * width + int(b.own_idx[i - nl - nd]))
+        as_int = lambda v: np.asarray(v, dtype=np.intp)  # noqa: E731
+        self.lev_pos, self.lev_src = as_int(lev_pos), as_int(lev_src)
+        self.dif_pos, self.dif_src = as_int(dif_pos), as_int(dif_src)
+        self.own = {e: (as_int(p), as_int(c)) for e, (p, c) in own.items() if p}
+        self.zero = {e: as_int(c) for e, c in zero.items() if c}
 
     def scatter_rows(self, cols: np.ndarray) -> sparse.csr_matrix:
         """The rows of ``C`` of the instrument columns ``cols`` (in that order)."""
@@ -186,17 +219,27 @@ class Prepared:
 
 
 def prepare(chunk: Chunk, layout: Layout) -> Prepared:
-    """Lay a design chunk's instrument blocks side by side (the one copy made)."""
+    """Lay a design chunk's instrument entries side by side (the one copy made):
+    each entry row of ``ZT`` is gathered from the chunk's raw levels (lagged levels
+    and differences, NaN where missing) or from its augmented equation arrays (own
+    entries), then zeroed where its row is absent or its value missing, as
+    :meth:`.design.Design.chunk` does for each block."""
     n = chunk.n
     ZT = np.empty((layout.W, n))
-    for j, src in enumerate(layout.source):
-        vals = chunk.blocks[src][1]
-        drop = layout.drop[j]
-        if drop.size and np.any(vals[:, drop]):
+    lev = chunk.levels_t
+    ZT[layout.lev_pos] = lev[layout.lev_src]
+    if layout.dif_pos.size:
+        ZT[layout.dif_pos] = lev[layout.dif_src] - lev[layout.dif_src - 1]
+    for e, (pos, src) in layout.own.items():
+        flat = chunk.augmented[e].reshape(n, -1)
+        ZT[pos] = flat[:, src].T
+    for e, src in layout.zero.items():
+        if np.any(chunk.augmented[e].reshape(n, -1)[:, src]):
             raise RuntimeError("internal error: a period-dummy instrument entry assumed zero "
                                "is not (robustgmm.core.moments._structural_zeros)")
-        ZT[layout.starts[j]:layout.stops[j]] = vals[:, layout.take[j]].T
     eqs = layout.equations
+    rows_t = np.concatenate([chunk.rows[e].T for e in eqs])  # (R, n)
+    np.copyto(ZT, 0.0, where=~rows_t[layout.ent_slot] | np.isnan(ZT))
     pc = Prepared(n=n, ZT=ZT, y=[chunk.y[e] for e in eqs], x=[chunk.x[e] for e in eqs],
                   rows=[chunk.rows[e] for e in eqs])
     if not layout.fd:
