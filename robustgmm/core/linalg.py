@@ -125,11 +125,24 @@ def independent_columns(gram: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
     The Gram matrix is rescaled to unit diagonal first, so that the decision does
     not depend on the units of the columns (a regressor in units rather than
     millions must not change which dummies are kept).
+
+    A residual computed from a Gram matrix carries a rounding error of about
+    ``ε · κ`` (``κ`` the condition number of the kept columns' Gram matrix; Golub &
+    Van Loan 2013, section 5.3.8: normal equations square the condition of the
+    data). When the kept columns are themselves nearly collinear — a calendar-year
+    trend beside the constant keeps only ``var(t)/mean(t)² ≈ 1e-6`` of its norm —
+    that error can exceed ``rtol``, and an exactly dependent column (the last
+    period dummy) would pass as independent on one machine and not on another
+    (summation order). So the threshold is ``max(rtol, 100 · ε / r_min)``, with
+    ``r_min`` the smallest relative residual among the kept columns (the smallest
+    squared pivot of the Cholesky factor of the unit-diagonal Gram, ``≈ 1/κ``).
     """
     gram = np.asarray(gram, dtype=float)
     scale = _unit_diagonal_scale(np.diag(gram).copy())
     unit = rescale(gram, scale)
     kept: list[int] = []
+    smallest = 1.0
+    noise = 100.0 * np.finfo(float).eps
     for j in range(unit.shape[0]):
         if not scale[j] > 0:
             continue
@@ -140,8 +153,9 @@ def independent_columns(gram: np.ndarray, rtol: float = 1e-9) -> np.ndarray:
             resid = 1.0 - cross @ coef
         else:
             resid = 1.0
-        if resid > rtol:
+        if resid > max(rtol, noise / smallest):
             kept.append(j)
+            smallest = min(smallest, resid)
     return np.asarray(kept, dtype=int)
 
 

@@ -454,3 +454,29 @@ def test_windmeijer_d_is_the_derivative_with_a_singular_weight():
     D = res.diagnostics["windmeijer_d"]
     numeric = numeric_windmeijer_d(spec, panel, res.diagnostics["beta_one_step"], 1e-6)
     assert np.max(np.abs(D - numeric)) < 1e-4 * np.max(np.abs(numeric))
+
+
+@pytest.mark.parametrize("level", [0.0, 2_000.0, 20_000.0])
+@pytest.mark.parametrize("seed", range(5))
+def test_the_column_scan_drops_an_exactly_dependent_dummy_beside_a_calendar_trend(level, seed):
+    # A calendar-year trend beside the constant keeps only about var(t)/level² of its
+    # norm, so the Gram matrix's rounding error (normal equations square the
+    # condition number; Golub & Van Loan 2013, section 5.3.8) reaches the size of the
+    # scan's tolerance. The last period dummy is an exact linear function of the
+    # constant, the trend and the other dummies (sum of dummies = constant) and must
+    # be dropped whatever the level of the years and the order of the sums; every
+    # other column stays.
+    from robustgmm.core.linalg import independent_columns
+    rng = np.random.default_rng(seed)
+    periods = np.repeat(np.arange(7.0), 300)
+    rng.shuffle(periods)
+    x = rng.normal(size=periods.size)
+    dummies = (periods[:, None] == np.arange(1, 7)).astype(float)
+    cols = np.column_stack([x, np.ones_like(x), level + periods, dummies])
+    kept = independent_columns(cols.T @ cols)
+    # x, constant, trend and 5 of the 6 dummies: the 6 dummies with the constant span
+    # the trend, so exactly one column (the last dummy) is dependent
+    assert kept.tolist() == list(range(cols.shape[1] - 1))
+    # a genuinely independent last column (a second regressor) is kept
+    extra = np.column_stack([cols[:, :-1], rng.normal(size=x.size)])
+    assert independent_columns(extra.T @ extra).tolist() == list(range(extra.shape[1]))
