@@ -118,8 +118,8 @@ def panel_hash(units: np.ndarray, periods: np.ndarray, observed: np.ndarray,
     digest.update(_unit_bytes(units))
     digest.update(np.ascontiguousarray(periods, dtype=np.int64).tobytes())
     digest.update(np.packbits(observed).tobytes())
-    for arr in values.values():
-        digest.update(np.ascontiguousarray(arr).tobytes())
+    for arr in values.values():  # the array's own buffer, not a copy of it
+        digest.update(memoryview(np.ascontiguousarray(arr)).cast("B"))
     return digest.hexdigest()
 
 

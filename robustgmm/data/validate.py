@@ -156,8 +156,20 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
     # periods: whole numbers
     per = out[spec.period]
-    per_num = _numeric(per, spec.period, where, row, problems, "period column")
-    if per_num is not None:
+    # a column of signed whole numbers (the usual case) skips the float round trip
+    # of the checks below: it can hold no missing or fractional value
+    per_num = (per if per.dtype.kind == "i"
+               else _numeric(per, spec.period, where, row, problems, "period column"))
+    if per_num is not None and per_num.dtype.kind == "i":
+        ints = per_num.to_numpy().astype(np.int64, copy=False)
+        if per.dtype != np.int64:
+            out[spec.period] = ints
+        if np.abs(ints).max() > 1e15:
+            problems.append(f"{where}: period column {spec.period!r} holds values too "
+                            f"large to be periods ({_show(per.iloc[int(np.argmax(np.abs(ints)))])})")
+        else:
+            _check_calendar(ints, spec.period, where, problems)
+    elif per_num is not None:
         if per_num.isna().any():
             first = per_num.index[per_num.isna().to_numpy()][0]
             n = int(per_num.isna().sum())
@@ -176,27 +188,7 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
             else:
                 ints = vals.astype(np.int64)
                 out[spec.period] = ints
-                span = int(ints.max() - ints.min()) + 1
-                months = ints % 100
-                if (ints.min() >= 100001 and ints.max() <= 999912 and months.min() >= 1
-                        and months.max() <= 12 and ints.max() // 100 > ints.min() // 100):
-                    problems.append(
-                        f"{where}: period column {spec.period!r} looks like year-month codes "
-                        f"({ints.min()} to {ints.max()}); lags are taken between consecutive "
-                        "whole numbers, so use a running period number instead")
-                elif span > MAX_CALENDAR:
-                    problems.append(
-                        f"{where}: period column {spec.period!r} runs from {ints.min()} to "
-                        f"{ints.max()} ({span} periods on the calendar); lags are taken "
-                        "between consecutive whole numbers, so use years or a running "
-                        "period number")
-                elif (step := _period_step(ints)) > 1:
-                    shown = ", ".join(str(v) for v in _distinct(ints)[:3])
-                    problems.append(
-                        f"{where}: period column {spec.period!r} holds periods spaced "
-                        f"{step} apart ({shown}, ...); lags are taken between consecutive "
-                        "whole numbers, so a lag would never find its value: use a running "
-                        "period number (1, 2, 3, ...) instead")
+                _check_calendar(ints, spec.period, where, problems)
 
     # duplicate unit-period rows
     if not problems:
@@ -238,6 +230,33 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
 
 
+def _check_calendar(ints: np.ndarray, column: str, where: str, problems: list) -> None:
+    """Whole-number periods that cannot be a calendar of consecutive numbers:
+    year-month codes, a span above :data:`MAX_CALENDAR`, or a common spacing above 1."""
+    lo, hi = int(ints.min()), int(ints.max())
+    span = hi - lo + 1
+    months = ints % 100 if 100001 <= lo and hi <= 999912 else None
+    if (months is not None and months.min() >= 1 and months.max() <= 12
+            and hi // 100 > lo // 100):
+        problems.append(
+            f"{where}: period column {column!r} looks like year-month codes "
+            f"({lo} to {hi}); lags are taken between consecutive "
+            "whole numbers, so use a running period number instead")
+    elif span > MAX_CALENDAR:
+        problems.append(
+            f"{where}: period column {column!r} runs from {lo} to "
+            f"{hi} ({span} periods on the calendar); lags are taken "
+            "between consecutive whole numbers, so use years or a running "
+            "period number")
+    elif (step := _period_step(ints)) > 1:
+        shown = ", ".join(str(v) for v in _distinct(ints)[:3])
+        problems.append(
+            f"{where}: period column {column!r} holds periods spaced "
+            f"{step} apart ({shown}, ...); lags are taken between consecutive "
+            "whole numbers, so a lag would never find its value: use a running "
+            "period number (1, 2, 3, ...) instead")
+
+
 def _distinct(periods: np.ndarray) -> np.ndarray:
     """The distinct periods in order, from one count over the calendar (its span is
     at most :data:`MAX_CALENDAR` here): no sort of the rows."""
@@ -264,7 +283,7 @@ def unit_codes(units: pd.Series) -> tuple[np.ndarray, np.ndarray]:
         ids = units.to_numpy()
         lo, hi = int(ids.min()), int(ids.max())
         if hi - lo <= 4 * len(ids) + 1024:
-            offset = (ids - lo).astype(np.intp)
+            offset = (ids - lo).astype(np.intp, copy=False)
             present = np.bincount(offset, minlength=hi - lo + 1) > 0
             position = np.cumsum(present) - 1
             return position[offset], (lo + np.flatnonzero(present)).astype(ids.dtype)
@@ -281,8 +300,14 @@ def _duplicate_cells(units: pd.Series, periods: np.ndarray) -> pd.Series:
     codes, uniques = unit_codes(units)
     lo = int(periods.min())
     span = int(periods.max()) - lo + 1
-    cell = codes.astype(np.int64) * span + (periods.astype(np.int64) - lo)
+    cell = codes.astype(np.int64, copy=False) * span + (periods.astype(np.int64, copy=False) - lo)
     if len(uniques) * span <= max(8 * len(cell), 1 << 16):
+        # the usual case, no repeat, told by the number of distinct cells; the
+        # counts only when some cell repeats
+        seen = np.zeros(len(uniques) * span, dtype=bool)
+        seen[cell] = True
+        if np.count_nonzero(seen) == len(cell):
+            return pd.Series(np.zeros(len(cell), dtype=bool), index=units.index)
         dup = np.bincount(cell, minlength=len(uniques) * span)[cell] > 1
     else:
         dup = pd.Series(cell).duplicated(keep=False).to_numpy()
@@ -365,33 +390,48 @@ def degenerate_columns(frame: pd.DataFrame, spec, where: str, label: str = "") -
     ``label`` names the sample (``" in sample 'late'"``) for messages.
     """
     problems = []
-
-    def values(col):
-        v = frame[col].to_numpy(dtype=np.float64)
-        return v[~np.isnan(v)]
-
     y_all = frame[spec.outcome].to_numpy(dtype=np.float64)
-    y = y_all[~np.isnan(y_all)]
-    if len(y) and np.all(y == y[0]):
+    y_missing = np.isnan(y_all)
+    y_one = _one_value(y_all, y_missing)
+    if y_one is not None:
         problems.append(f"{where}: outcome {spec.outcome!r} has the same value "
-                        f"({_number(y[0])}) in every row{label}; there is no variation "
+                        f"({_number(y_one)}) in every row{label}; there is no variation "
                         "to explain")
     for name in dict.fromkeys(r.name for r in spec.regressors):
-        v = values(name)
-        if len(v) and np.all(v == v[0]):
+        x_all = frame[name].to_numpy(dtype=np.float64)
+        x_missing = np.isnan(x_all)
+        x_one = _one_value(x_all, x_missing)
+        if x_one is not None:
             problems.append(f"{where}: regressor {name!r} has the same value "
-                            f"({_number(v[0])}) in every row{label}; it cannot be told "
+                            f"({_number(x_one)}) in every row{label}; it cannot be told "
                             "apart from the constant: drop it from the model")
             continue
-        x_all = frame[name].to_numpy(dtype=np.float64)
-        both = ~np.isnan(x_all) & ~np.isnan(y_all)
-        if both.sum() >= 3 and _affine_copy(x_all[both], y_all[both]):
-            how = ("equals" if np.array_equal(x_all[both], y_all[both])
+        gaps = x_missing | y_missing
+        if not gaps.any():  # every row has both: no copies of the columns
+            xb, yb = x_all, y_all
+        else:
+            both = ~gaps
+            xb, yb = x_all[both], y_all[both]
+        if len(xb) >= 3 and _affine_copy(xb, yb):
+            how = ("equals" if np.array_equal(xb, yb)
                    else "is an exact linear function of")
             problems.append(f"{where}: regressor {name!r} {how} the outcome "
                             f"{spec.outcome!r} in every row{label}; a regressor cannot be "
                             "the outcome itself: drop it from the model")
     return problems
+
+
+def _one_value(v: np.ndarray, missing: np.ndarray) -> float | None:
+    """The value of every present entry of ``v`` when they are all equal (None when
+    two differ or none is present). Two different values among the first few present
+    ones decide at once, without a pass over the column."""
+    head = v[:256][~missing[:256]]
+    if head.size and np.any(head != head[0]):
+        return None
+    present = v[~missing]
+    if present.size and np.all(present == present[0]):
+        return float(present[0])
+    return None
 
 
 def _affine_copy(x: np.ndarray, y: np.ndarray) -> bool:

@@ -13,7 +13,7 @@ import pytest
 
 from robustgmm.data import build_panel
 from robustgmm.data import readers
-from robustgmm.data.validate import _affine_copy, _duplicate_cells, unit_codes
+from robustgmm.data.validate import _affine_copy, _duplicate_cells, _one_value, unit_codes
 from robustgmm.modelfile import spec_from_dict
 
 
@@ -67,14 +67,19 @@ def test_latin1_csv_is_read_by_the_c_engine(tmp_path):
     assert list(frame["id"]) == ["K\xf6ln", "K\xf6ln"]
 
 
+@pytest.mark.parametrize("repeats", [True, False])
 @pytest.mark.parametrize("ids", ["dense", "sparse", "text"])
-def test_duplicates_and_unit_codes_equal_pandas(ids):
+def test_duplicates_and_unit_codes_equal_pandas(ids, repeats):
     rng = np.random.default_rng(4)
     n = 3000
-    units = rng.integers(1, 400, size=n)
+    if repeats:
+        units, periods = rng.integers(1, 400, size=n), rng.integers(1990, 2010, size=n)
+    else:  # every cell once, in shuffled order (the path without counts)
+        cells = rng.permutation(400 * 20)[:n]
+        units, periods = 1 + cells // 20, 1990 + cells % 20
     if ids == "sparse":
         units = units * 10**9
-    frame = pd.DataFrame({"u": units, "t": rng.integers(1990, 2010, size=n)})
+    frame = pd.DataFrame({"u": units, "t": periods})
     if ids == "text":
         frame["u"] = "firm" + frame["u"].astype(str)
     want = frame.duplicated(["u", "t"], keep=False).to_numpy()
@@ -102,6 +107,27 @@ def test_hash_counts_a_row_whose_used_values_are_all_missing():
         np.testing.assert_array_equal(a.values[name], b.values[name])
     assert a.data_hash != b.data_hash  # ... but not the same rows
     assert a.dropped_missing == b.dropped_missing + 1
+
+
+@pytest.mark.parametrize("case", ["varies early", "varies late", "constant", "constant with gaps",
+                                  "all missing"])
+def test_one_value_equals_the_check_over_present_values(case):
+    """_one_value (the degenerate-column check) against its definition: the present
+    values all equal, checked on the whole column."""
+    rng = np.random.default_rng(2)
+    v = np.full(5000, 2.5)
+    if case == "varies early":
+        v = rng.normal(size=5000)
+    elif case == "varies late":  # the first rows alone would say constant
+        v[4000] = 3.0
+    elif case == "constant with gaps":
+        v[rng.random(5000) < 0.3] = np.nan
+        v[:300] = np.nan
+    elif case == "all missing":
+        v[:] = np.nan
+    present = v[~np.isnan(v)]
+    want = float(present[0]) if present.size and np.all(present == present[0]) else None
+    assert _one_value(v, np.isnan(v)) == want
 
 
 def test_affine_copy_check_matches_its_definition():
