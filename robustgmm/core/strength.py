@@ -52,7 +52,7 @@ from scipy import special
 
 from ..spec import is_deterministic_label
 from .design import LEVEL, TRANSFORMED
-from .moments import _flat_x, unit_moments_t
+from .moments import unit_moments_t
 from .results import TestResult
 
 #: the chi-squared approximation of the rank statistics is trusted only while their
@@ -117,16 +117,33 @@ class StrengthSums:
         L = prob.L
         self.sum = [np.zeros(L) for _ in self.vectors]
         self.outer = [np.zeros((L, L)) for _ in self.vectors]
+        # every vector spread over the design's columns, as rows: (m, K_all)
+        self._f_rows = (np.stack([prob.beta_all(f) for f in self.vectors])
+                        if self.vectors else np.zeros((0, prob.K_all)))
 
     def __call__(self, ctx):
         prob, pc = self.prob, ctx.pc
-        n = pc.n
-        for acc, out, f in zip(self.sum, self.outer, self.vectors):
-            f_all = prob.beta_all(f)
-            xf = np.concatenate([(_flat_x(x) @ f_all).reshape(n, -1).T for x in pc.x])
-            u = unit_moments_t(pc, ctx.layout, xf, prob.scatter, ctx.scratch())
+        if not self.vectors:
+            return
+        xf = _rows_times(pc, self._f_rows)
+        for acc, out, rows in zip(self.sum, self.outer, xf):
+            u = unit_moments_t(pc, ctx.layout, rows, prob.scatter, ctx.scratch())
             acc += u.sum(axis=1)
             out += u @ u.T
+
+
+def _rows_times(pc, f_rows: np.ndarray) -> np.ndarray:
+    """``X f`` of every row slot for each vector ``f`` (rows of ``f_rows``), laid out
+    as residual rows: (m, R, n). One small product per row slot, ``F (K × n)``, that
+    writes the slot's rows of every vector at once (no transposed copies)."""
+    m, n = len(f_rows), pc.n
+    out = np.empty((m, sum(x.shape[1] for x in pc.x), n))
+    slot = 0
+    for x in pc.x:
+        for t in range(x.shape[1]):
+            np.matmul(f_rows, x[:, t, :].T, out=out[:, slot, :])
+            slot += 1
+    return out
 
 
 def blocks(prob) -> dict:
