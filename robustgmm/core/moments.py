@@ -298,19 +298,26 @@ def residual_rows(pc: Prepared, beta_all: np.ndarray) -> np.ndarray:
 
 
 def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
-                   scatter: sparse.csr_matrix, buf: np.ndarray | None = None) -> np.ndarray:
+                   scatter: sparse.csr_matrix, buf: np.ndarray | None = None,
+                   entries: tuple[int, int] | None = None) -> np.ndarray:
     """Per-unit moment vectors as columns, ``G' = [g_1 … g_n]`` with ``g_i = Z_i' e_i``,
     restricted to the instrument columns of ``scatter`` (rows of ``C``): (L_kept, n).
 
     ``buf`` (W, n), when given, receives the entry-wise products (it is reused across
-    coefficient vectors, so a pass allocates it once per chunk)."""
+    coefficient vectors, so a pass allocates it once per chunk). ``entries = (lo,
+    hi)``: only the entries ``lo:hi`` feed the columns of ``scatter``, whose columns
+    are then those entries (the instruments of one equation: its blocks are
+    contiguous); only the blocks that hold them are multiplied."""
     if buf is None:
         buf = np.empty_like(pc.ZT)
+    lo_e, hi_e = (0, layout.W) if entries is None else entries
     ZT = pc.ZT
     for j, slot in enumerate(layout.block_slot):
         lo, hi = layout.starts[j], layout.stops[j]
+        if hi <= lo_e or lo >= hi_e:
+            continue
         np.multiply(ZT[lo:hi], resid[slot], out=buf[lo:hi])
-    return np.asarray(scatter @ buf)
+    return np.asarray(scatter @ (buf if entries is None else buf[lo_e:hi_e]))
 
 
 def windmeijer_term(pc: Prepared, layout: Layout, gt_prev: np.ndarray, a: np.ndarray,

@@ -111,7 +111,7 @@ class StrengthSums:
     For each vector ``f`` over the kept terms it sums ``u_i = Z_i'X_i f`` (L) and
     ``Σ u_i u_i'``, from which every statistic is a small computation."""
 
-    def __init__(self, prob, vectors):
+    def __init__(self, prob, vectors, rows=None):
         self.prob = prob
         self.vectors = [np.asarray(v, dtype=float) for v in vectors]
         L = prob.L
@@ -120,16 +120,40 @@ class StrengthSums:
         # every vector spread over the design's columns, as rows: (m, K_all)
         self._f_rows = (np.stack([prob.beta_all(f) for f in self.vectors])
                         if self.vectors else np.zeros((0, prob.K_all)))
+        # a vector whose statistic reads only some instruments (``rows``: one
+        # equation's) sums u over those (the rest of its sums stay zero, unread)
+        rows = [None] * len(self.vectors) if rows is None else list(rows)
+        self._parts = [_restricted(prob, r) for r in rows]
 
     def __call__(self, ctx):
         prob, pc = self.prob, ctx.pc
         if not self.vectors:
             return
         xf = _rows_times(pc, self._f_rows)
-        for acc, out, rows in zip(self.sum, self.outer, xf):
-            u = unit_moments_t(pc, ctx.layout, rows, prob.scatter, ctx.scratch())
-            acc += u.sum(axis=1)
-            out += u @ u.T
+        for acc, out, rows, (sub, scatter, entries) in zip(self.sum, self.outer, xf,
+                                                            self._parts):
+            u = unit_moments_t(pc, ctx.layout, rows, scatter, ctx.scratch(), entries)
+            if sub is None:
+                acc += u.sum(axis=1)
+                out += u @ u.T
+            else:
+                acc[sub] += u.sum(axis=1)
+                out[np.ix_(sub, sub)] += u @ u.T
+
+
+def _restricted(prob, rows):
+    """``(rows, scatter, entries)`` of :func:`.moments.unit_moments_t` for the moments
+    of the instrument positions ``rows`` only (None: all of them, the full scatter)."""
+    if rows is None or len(rows) == prob.L:
+        return None, prob.scatter, None
+    rows = np.asarray(rows, dtype=np.int64)
+    scatter = prob.scatter[rows]
+    if not scatter.nnz:
+        return rows, scatter, None
+    # the entries that feed these instruments lie in one range (an equation's
+    # blocks are contiguous); the few others in it only add zero columns
+    lo, hi = int(scatter.indices.min()), int(scatter.indices.max()) + 1
+    return rows, scatter[:, lo:hi].tocsr(), (lo, hi)
 
 
 def _rows_times(pc, f_rows: np.ndarray) -> np.ndarray:
@@ -275,9 +299,10 @@ def plan(spec, prob, A):
     ``(blocks, conditional vectors, StrengthSums task)``."""
     blks = blocks(prob)
     cond = conditional_vectors(prob, instrumented_terms(spec, prob), A)
-    vectors = [b.f for b in blks.values() if b.reason is None]
-    vectors += [f for _, f in cond.values()]
-    return blks, cond, StrengthSums(prob, vectors)
+    live = [b for b in blks.values() if b.reason is None]
+    vectors = [b.f for b in live] + [f for _, f in cond.values()]
+    rows = [b.rows for b in live] + [None] * len(cond)
+    return blks, cond, StrengthSums(prob, vectors, rows)
 
 
 def statistics(prob, planned) -> dict:
