@@ -234,12 +234,18 @@ def prepare(chunk: Chunk, layout: Layout) -> Prepared:
         flat = chunk.augmented[e].reshape(n, -1)
         ZT[pos] = flat[:, src].T
     for e, src in layout.zero.items():
-        if np.any(chunk.augmented[e].reshape(n, -1)[:, src]):
+        # one pass over the rows (the columns gathered one by one cost more)
+        if (chunk.augmented[e].reshape(n, -1) != 0).any(axis=0)[src].any():
             raise RuntimeError("internal error: a period-dummy instrument entry assumed zero "
                                "is not (robustgmm.core.moments._structural_zeros)")
     eqs = layout.equations
-    rows_t = np.concatenate([chunk.rows[e].T for e in eqs])  # (R, n)
-    np.copyto(ZT, 0.0, where=~rows_t[layout.ent_slot] | np.isnan(ZT))
+    np.copyto(ZT, 0.0, where=np.isnan(ZT))
+    # entries of absent rows: only the row slots where some unit lacks the row
+    for j, slot in enumerate(layout.block_slot):
+        e, t = divmod(int(slot), layout.P)
+        absent = ~chunk.rows[eqs[e]][:, t]
+        if absent.any():
+            ZT[layout.starts[j]:layout.stops[j], absent] = 0.0
     pc = Prepared(n=n, ZT=ZT, y=[chunk.y[e] for e in eqs], x=[chunk.x[e] for e in eqs],
                   rows=[chunk.rows[e] for e in eqs])
     if not layout.fd:

@@ -314,3 +314,23 @@ def test_memory_does_not_grow_with_units_beyond_the_raw_data():
         raws.append(sum(v.nbytes for v in panel.values.values()))
     assert peaks[1] - peaks[0] < raws[1] - raws[0]
     assert peaks[1] < 2 * 2**20 + raws[1]
+
+
+def test_prepare_refuses_a_skipped_entry_that_is_not_zero():
+    """The kernel layout skips period-dummy entries that are zero by construction
+    (moments._structural_zeros) and prepare checks them on every chunk: an entry
+    wrongly listed as zero (here the constant of the level equation, one in every
+    level row) is an internal error, never a silently dropped moment."""
+    from robustgmm.core.moments import prepare
+
+    _, panel = sim_panel(40, 6, seed=2)
+    prob = GMMProblem(sim_spec(time_effects=True), panel)
+    eng = prob.engine
+    d, lay = eng.design, eng.layout
+    const = d.x_kinds_all.index("const")
+    width = len(d.x_labels_all) + len(d.extra_terms)
+    t = int(np.flatnonzero(d.row_any[LEVEL])[0])
+    prepare(d.chunk(0, panel.n_units, blocks=False), lay)  # as laid out: fine
+    lay.zero[LEVEL] = np.append(lay.zero.get(LEVEL, np.zeros(0, np.intp)), t * width + const)
+    with pytest.raises(RuntimeError, match="assumed zero"):
+        prepare(d.chunk(0, panel.n_units, blocks=False), lay)
