@@ -100,11 +100,12 @@ class PassContext:
     ``G'`` per (problem, coefficient vector), so that family members that need the
     same arrays compute them once."""
 
-    def __init__(self, pc, layout):
+    def __init__(self, pc, layout, kept=None):
         self.pc = pc
         self.layout = layout
         self._resid: dict = {}
         self._gt: dict = {}
+        self._kept = kept  # the engine's G' of this chunk kept from earlier passes
         self._diffs = None
         self._buf = None  # scratch for the entry-wise products, reused within the pass
 
@@ -129,11 +130,46 @@ class PassContext:
     def gt(self, prob, beta):
         key = (id(prob), beta.tobytes())
         out = self._gt.get(key)
+        if out is None and self._kept is not None:
+            out = self._kept.get(key)
         if out is None:
-            out = self._gt[key] = unit_moments_t(self.pc, self.layout,
-                                                 self.resid(prob.beta_all(beta)), prob.scatter,
-                                                 self.scratch())
+            out = unit_moments_t(self.pc, self.layout, self.resid(prob.beta_all(beta)),
+                                 prob.scatter, self.scratch())
+            if self._kept is not None:
+                self._kept.offer(key, prob, out)
+        self._gt[key] = out
         return out
+
+
+class KeptMoments:
+    """``G'`` arrays kept from one pass to the next, per chunk, within a byte limit.
+
+    The two-step fit's final pass needs the one-step ``G'`` (the Windmeijer term,
+    at ``b₁``) that the weight's pass computed; kept, it is not computed twice. Keyed
+    by (problem, coefficient vector); the problem is held so its id stays its own."""
+
+    def __init__(self, limit: int):
+        self.limit = limit
+        self.nbytes = 0
+        self._chunks: dict = {}
+
+    def chunk(self, pos: int) -> "KeptChunk":
+        return KeptChunk(self, self._chunks.setdefault(pos, {}))
+
+
+class KeptChunk:
+    def __init__(self, owner: KeptMoments, store: dict):
+        self.owner, self.store = owner, store
+
+    def get(self, key):
+        hit = self.store.get(key)
+        return None if hit is None else hit[1]
+
+    def offer(self, key, prob, gt: np.ndarray) -> None:
+        if self.owner.nbytes + gt.nbytes <= self.owner.limit:
+            gt.flags.writeable = False  # shared between passes: never changed in place
+            self.store[key] = (prob, gt)
+            self.owner.nbytes += gt.nbytes
 
 
 class MomentEngine:
@@ -144,6 +180,9 @@ class MomentEngine:
         self.design = design
         self.layout = Layout(design)
         self.source = ChunkSource(design, self.layout, chunk_units, memory_budget(memory_mb))
+        # G' kept between passes: within an eighth of the budget (the kept chunks
+        # take up to half)
+        self.kept = KeptMoments(self.source.budget // 8)
         self.passes = 0
         self._first = None
         self._time_gram = None
@@ -189,8 +228,8 @@ class MomentEngine:
 
     def run_pass(self, tasks) -> None:
         """One pass over the chunks; each task is called with the chunk's context."""
-        for pc in self.source:
-            ctx = PassContext(pc, self.layout)
+        for pos, pc in enumerate(self.source):
+            ctx = PassContext(pc, self.layout, self.kept.chunk(pos))
             for task in tasks:
                 task(ctx)
         self.passes += 1
