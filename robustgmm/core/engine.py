@@ -134,7 +134,7 @@ class PassContext:
             out = self._kept.get(key)
         if out is None:
             out = unit_moments_t(self.pc, self.layout, self.resid(prob.beta_all(beta)),
-                                 prob.scatter, self.scratch())
+                                 prob.scatter, self.scratch(), plan=prob.moment_plan)
             if self._kept is not None:
                 self._kept.offer(key, prob, out)
         self._gt[key] = out

@@ -303,9 +303,54 @@ def residual_rows(pc: Prepared, beta_all: np.ndarray) -> np.ndarray:
                            for y, x in zip(pc.y, pc.x)])
 
 
+@dataclass(frozen=True)
+class MomentPlan:
+    """How the rows of ``G' = C (ZT ∘ E)`` are formed without the sparse product.
+
+    Per-period instruments give most instrument columns one entry, and the entries
+    of one block that feed consecutive columns are consecutive: a *run*
+    ``(row_lo, row_hi, entry_lo, slot)`` writes ``G'[row_lo:row_hi] = ZT[entry_lo:…] ∘
+    E[slot]`` in one product, straight into ``G'``. ``extras``: the further entries
+    of columns with several (an exogenous regressor, a time effect), added in the
+    order the sparse product adds them; ``empty``: columns with no entry (zero)."""
+
+    runs: tuple
+    extras: tuple
+    empty: np.ndarray
+    rows: int
+
+
+def moment_plan(scatter: sparse.csr_matrix, layout: Layout, offset: int = 0) -> MomentPlan | None:
+    """The :class:`MomentPlan` of the 0/1 matrix ``scatter`` (its columns are the
+    entries ``offset …``), or None when it is not a 0/1 matrix."""
+    csr = sparse.csr_matrix(scatter)
+    if csr.nnz and not np.all(csr.data == 1.0):
+        return None
+    slot_of = layout.ent_slot
+    firsts, extras, empty = [], [], []
+    for r in range(csr.shape[0]):
+        ents = csr.indices[csr.indptr[r]:csr.indptr[r + 1]] + offset
+        if not len(ents):
+            empty.append(r)
+            continue
+        firsts.append((r, int(ents[0])))
+        extras += [(r, int(e), int(slot_of[e])) for e in ents[1:]]
+    runs = []
+    for r, e in firsts:
+        if runs:
+            r0, r1, e0, slot = runs[-1]
+            if r == r1 and e == e0 + (r1 - r0) and slot_of[e] == slot:
+                runs[-1] = (r0, r1 + 1, e0, slot)
+                continue
+        runs.append((r, r + 1, e, int(slot_of[e])))
+    return MomentPlan(tuple(runs), tuple(extras), np.asarray(empty, dtype=np.intp),
+                      csr.shape[0])
+
+
 def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
                    scatter: sparse.csr_matrix, buf: np.ndarray | None = None,
-                   entries: tuple[int, int] | None = None) -> np.ndarray:
+                   entries: tuple[int, int] | None = None,
+                   plan: MomentPlan | None = None) -> np.ndarray:
     """Per-unit moment vectors as columns, ``G' = [g_1 … g_n]`` with ``g_i = Z_i' e_i``,
     restricted to the instrument columns of ``scatter`` (rows of ``C``): (L_kept, n).
 
@@ -313,7 +358,19 @@ def unit_moments_t(pc: Prepared, layout: Layout, resid: np.ndarray,
     coefficient vectors, so a pass allocates it once per chunk). ``entries = (lo,
     hi)``: only the entries ``lo:hi`` feed the columns of ``scatter``, whose columns
     are then those entries (the instruments of one equation: its blocks are
-    contiguous); only the blocks that hold them are multiplied."""
+    contiguous); only the blocks that hold them are multiplied. ``plan``: the
+    :func:`moment_plan` of ``scatter``, which forms ``G'`` row run by row run
+    (no entry-wise scratch, no sparse product; the same sums)."""
+    if plan is not None:
+        ZT = pc.ZT
+        out = np.empty((plan.rows, pc.n))
+        for r0, r1, e0, slot in plan.runs:
+            np.multiply(ZT[e0:e0 + (r1 - r0)], resid[slot], out=out[r0:r1])
+        if plan.empty.size:
+            out[plan.empty] = 0.0
+        for r, e, slot in plan.extras:
+            out[r] += ZT[e] * resid[slot]
+        return out
     if buf is None:
         buf = np.empty_like(pc.ZT)
     lo_e, hi_e = (0, layout.W) if entries is None else entries

@@ -38,7 +38,7 @@ from ..spec import Spec, is_deterministic_label
 from .design import Design
 from .engine import MomentEngine
 from .linalg import identified_columns, independent_columns, inverse_or_pinv, sym_pinv
-from .moments import ARSums, windmeijer_term
+from .moments import ARSums, moment_plan, windmeijer_term
 
 
 class NotSubset(Exception):
@@ -221,6 +221,7 @@ class GMMProblem:
         # the weight is singular (see .covariance), and it removes the units
         self.z_scale = _scale(np.diag(self.zhz))
         self.scatter = self.engine.layout.scatter_rows(cols)
+        self.moment_plan = moment_plan(self.scatter, self.engine.layout)
         n_rows = d.n_rows[0] + d.n_rows[1]
         if self.L >= n_rows:
             raise EstimationError(

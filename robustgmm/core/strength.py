@@ -52,7 +52,7 @@ from scipy import special
 
 from ..spec import is_deterministic_label
 from .design import LEVEL, TRANSFORMED
-from .moments import unit_moments_t
+from .moments import moment_plan, unit_moments_t
 from .results import TestResult
 
 #: the chi-squared approximation of the rank statistics is trusted only while their
@@ -130,9 +130,9 @@ class StrengthSums:
         if not self.vectors:
             return
         xf = _rows_times(pc, self._f_rows)
-        for acc, out, rows, (sub, scatter, entries) in zip(self.sum, self.outer, xf,
-                                                            self._parts):
-            u = unit_moments_t(pc, ctx.layout, rows, scatter, ctx.scratch(), entries)
+        for acc, out, rows, (sub, scatter, entries, plan) in zip(self.sum, self.outer, xf,
+                                                                  self._parts):
+            u = unit_moments_t(pc, ctx.layout, rows, scatter, ctx.scratch(), entries, plan)
             if sub is None:
                 acc += u.sum(axis=1)
                 out += u @ u.T
@@ -144,16 +144,18 @@ class StrengthSums:
 def _restricted(prob, rows):
     """``(rows, scatter, entries)`` of :func:`.moments.unit_moments_t` for the moments
     of the instrument positions ``rows`` only (None: all of them, the full scatter)."""
+    layout = prob.engine.layout
     if rows is None or len(rows) == prob.L:
-        return None, prob.scatter, None
+        return None, prob.scatter, None, prob.moment_plan
     rows = np.asarray(rows, dtype=np.int64)
     scatter = prob.scatter[rows]
     if not scatter.nnz:
-        return rows, scatter, None
+        return rows, scatter, None, None
     # the entries that feed these instruments lie in one range (an equation's
     # blocks are contiguous); the few others in it only add zero columns
     lo, hi = int(scatter.indices.min()), int(scatter.indices.max()) + 1
-    return rows, scatter[:, lo:hi].tocsr(), (lo, hi)
+    scatter = scatter[:, lo:hi].tocsr()
+    return rows, scatter, (lo, hi), moment_plan(scatter, layout, offset=lo)
 
 
 def _rows_times(pc, f_rows: np.ndarray) -> np.ndarray:

@@ -334,3 +334,29 @@ def test_prepare_refuses_a_skipped_entry_that_is_not_zero():
     lay.zero[LEVEL] = np.append(lay.zero.get(LEVEL, np.zeros(0, np.intp)), t * width + const)
     with pytest.raises(RuntimeError, match="assumed zero"):
         prepare(d.chunk(0, panel.n_units, blocks=False), lay)
+
+
+@pytest.mark.parametrize("form,transform", [("per-period", "fd"), ("collapsed", "fod"),
+                                            ("per-period", "fod")])
+def test_moment_plan_gives_the_sparse_product(form, transform):
+    """G' formed run by run (moments.moment_plan) equals C (ZT ∘ E), the sparse
+    product it replaces, for the problem's kept columns and for one equation's
+    columns (the strength sums), on a panel with gaps and time effects."""
+    from robustgmm.core.moments import moment_plan, prepare, residual_rows, unit_moments_t
+
+    panel = _holed_panel()
+    prob = GMMProblem(sim_spec(form=form, transform=transform, time_effects=True), panel)
+    eng = prob.engine
+    pc = prepare(eng.design.chunk(0, panel.n_units, blocks=False), eng.layout)
+    resid = residual_rows(pc, np.random.default_rng(3).normal(size=prob.K_all))
+    assert prob.moment_plan is not None
+    want = unit_moments_t(pc, eng.layout, resid, prob.scatter)
+    got = unit_moments_t(pc, eng.layout, resid, prob.scatter, plan=prob.moment_plan)
+    np.testing.assert_array_equal(got, want)
+    level = np.flatnonzero([eng.design.z_columns[j].equation == LEVEL for j in prob.design.keep_z])
+    sub = prob.scatter[level]
+    lo, hi = int(sub.indices.min()), int(sub.indices.max()) + 1
+    sub = sub[:, lo:hi].tocsr()
+    np.testing.assert_array_equal(
+        unit_moments_t(pc, eng.layout, resid, sub, plan=moment_plan(sub, eng.layout, lo)),
+        unit_moments_t(pc, eng.layout, resid, sub, entries=(lo, hi)))
