@@ -30,8 +30,10 @@ reached within the share" is an answer, not a failure). For ``significance`` wit
 base that is not significant both directions are searched and the smaller set kept.
 
 Cost per greedy step: one exact refit and one influence on the reduced sample, both
-from the stored per-unit sums plus one pass for the ``Z_i'HZ_i`` forms
-(:mod:`.influence`); the whole search is at most ``max_drop`` steps per target.
+from the stored per-unit sums, ``O(N·L·(K + L) + L³)`` with no pass over the data
+when the per-unit ``Z_i'HZ_i`` fit the memory budget (else one pass for the
+``Z_i'HZ_i`` forms; :mod:`.influence`); the whole search is at most ``max_drop``
+steps per target.
 The found set is an upper bound on the smallest set: greedy search is not exhaustive
 (the tests compare it with exhaustive search on a small panel).
 """

@@ -32,17 +32,32 @@ influence is ``(∂b/∂w_i)/se``: the standard error is held at its value (firs
 order in the estimate only); the search (:mod:`.dropping`) decides with exact refits,
 which do move the standard error.
 
-Cost: one pass over the chunks for the per-unit ``Z_i'y_i``, ``Z_i'X_i`` (``O(n·W·K)``,
-the kernel of :func:`.moments.unit_moments_t`) and one for the bilinear forms
-``p'Z_i'HZ_i q`` of the influence (``O(n·W·K)``); memory ``N·L·K`` numbers.
+Cost of the per-unit sums: one pass over the chunks. When every unit's
+``Z_i'HZ_i`` is kept (below), each unit's instrument rows are laid out densely
+(``R`` rows, one per instrument block, × ``L`` kept columns) and ``Z_i'y_i``,
+``Z_i'X_i``, ``Z_i'HZ_i`` are batched products, ``O(n·R·L·(K + L))``; otherwise the
+per-unit ``Z_i'y_i``, ``Z_i'X_i`` come from the kernel of
+:func:`.moments.unit_moments_t` (``O(n·W·K)``). Memory: ``N·L·K`` numbers (twice:
+also as one ``(N·K, L)`` matrix for ``v'Z_i'X_i``) plus ``N·L²`` for the
+``Z_i'HZ_i``. These are kept only when ``8·N·L·(L + R)`` bytes (with the dense rows
+of the chunks) fit in a quarter of the core's memory budget
+(:func:`.engine.memory_budget`, ``ROBUSTGMM_MEMORY_MB``: half of it holds the
+prepared chunks, a quarter the chunk being built); otherwise every influence costs
+a pass over the data for the bilinear forms ``p'Z_i'HZ_i q`` (:class:`_HForms`,
+``O(n·W·K)``) and a refit one one-unit chunk per dropped unit.
 
-**Exact refit** (:meth:`UnitSums.refit`) without ``D``: ``Z_i'HZ_i`` of each dropped
-unit (a one-unit chunk, :func:`.moments.first_moments`) is subtracted from ``M``,
-its stored ``Z_i'X_i``, ``Z_i'y_i`` from ``Q``, ``q``; the one-step estimate then
-costs ``O(|D|·W_i² + L³ + L²K)`` whatever N. ``S`` at the new one-step estimate (for
-the robust variance and the two-step weight) and Windmeijer's ``T`` are summed from
-the stored per-unit arrays of the kept units, ``O(N·L·(K + L))`` per evaluation (no
-pass over the data). The estimators and variances are those of the fit itself
+**Exact refit** (:meth:`UnitSums.refit`) without ``D``: the dropped units' stored
+``Z_i'HZ_i``, ``Z_i'X_i``, ``Z_i'y_i`` are subtracted from ``M``, ``Q``, ``q``; the
+one-step estimate then costs ``O(|D|·L² + L³ + L²K)`` whatever N. ``S`` at the new
+one-step estimate (for the robust variance and the two-step weight) and Windmeijer's
+``T`` are summed from the stored per-unit arrays with the units' weights (0 for the
+dropped ones), ``O(N·L·(K + L))`` per evaluation, the residual moments ``g_i(b)``
+computed once per estimate and shared by ``S``, ``T`` and the influence.
+
+**One greedy step** (:meth:`UnitSums.state`: a refit and the influence of every unit
+on it) is therefore ``O(N·L·(K + L) + L³)`` with no pass over the data: the forms
+``(AQ)'Z_i'HZ_i a₁`` are one batched product of the stored ``Z_i'HZ_i`` with ``a₁``
+(``O(N·L²)``); measured 0.12 of a fit at N = 5,000 (``robustgmm bench``, workload 8). The estimators and variances are those of the fit itself
 (:func:`.family._solution_stage`, :mod:`.covariance`), so a refit equals a fit of
 the panel without ``D`` when the reduced panel keeps the same instrument and
 regressor columns (the test checks this to 1e-10).
@@ -63,31 +78,68 @@ from .problem import GMMProblem, _scale, efficient_gmm
 
 
 class _UnitArrays:
-    """Pass task: per-unit ``Z_i'y_i`` (n, L), ``Z_i'X_i`` (n, L, K) and the
-    transformed-row sums of ``y²``, ``x y``, ``x x'`` and rows (for σ²)."""
+    """Pass task: per-unit ``Z_i'y_i`` (n, L), ``Z_i'X_i`` (n, L, K), the
+    transformed-row sums of ``y²``, ``x y``, ``x x'`` and rows (for σ²) and, with
+    ``with_zhz``, every unit's ``Z_i'HZ_i`` (n, L, L) on the kept instrument columns.
 
-    def __init__(self, prob: GMMProblem):
+    With ``with_zhz`` each unit's instrument rows are laid out densely (``Z_i``: one
+    row per laid-out block × the kept columns), and ``Z_i'y_i``, ``Z_i'X_i`` and
+    ``Z_i'(H Z_i)`` are batched products, ``H`` the one-step weight of
+    :func:`.moments.first_moments` on the blocks (their diagonal weights, −1 between
+    first-difference neighbours). Without, the moments come from the kernel
+    :func:`.moments.unit_moments_t` (no dense ``Z_i``: less memory)."""
+
+    def __init__(self, prob: GMMProblem, with_zhz: bool = False):
         self.prob = prob
+        self.with_zhz = with_zhz
         self.parts: list = []
+        if with_zhz:
+            lay = prob.engine.layout
+            pos = np.full(lay.L, -1, dtype=np.int64)
+            pos[prob.engine_cols] = np.arange(len(prob.engine_cols))
+            ent_pos = pos[lay.ent_col]
+            self.keep = np.flatnonzero(ent_pos >= 0)
+            R = len(lay.block_slot)  # a row per laid-out block, as first_moments sums them
+            self.rows = np.repeat(np.arange(R), lay.stops - lay.starts)[self.keep]
+            self.cols = ent_pos[self.keep]
+            H = np.zeros((R, R))
+            H[np.arange(R), np.arange(R)] = lay.block_diag
+            for j, k, _, _ in lay.pairs:
+                H[j, k] -= 1.0
+                H[k, j] -= 1.0
+            self.H, self.R = H, R
 
     def __call__(self, ctx):
         prob, pc, lay = self.prob, ctx.pc, ctx.layout
-        buf = ctx.scratch()
-        rows_y = np.concatenate([y.T for y in pc.y])
-        zy = unit_moments_t(pc, lay, rows_y, prob.scatter, buf).T
-        zx = np.empty((pc.n, prob.L, prob.K))
-        for j, col in enumerate(prob.keep_x):
-            rows_x = np.concatenate([x[:, :, col].T for x in pc.x])
-            zx[:, :, j] = unit_moments_t(pc, lay, rows_x, prob.scatter, buf).T
+        zhz = None
+        if self.with_zhz:
+            Z = np.zeros((pc.n, self.R, prob.L))
+            Z[:, self.rows, self.cols] = pc.ZT[self.keep].T
+            slots = lay.block_slot  # the row slot (equation · P + period) of each block
+            y = np.concatenate(pc.y, axis=1)[:, slots]
+            x = np.concatenate(pc.x, axis=1)[:, slots][:, :, prob.keep_x]
+            ZT = Z.transpose(0, 2, 1)
+            zy = np.matmul(ZT, y[:, :, None])[:, :, 0]
+            zx = np.matmul(ZT, x)
+            zhz = np.matmul(ZT, np.matmul(self.H, Z))
+        else:
+            buf = ctx.scratch()
+            rows_y = np.concatenate([y.T for y in pc.y])
+            zy = unit_moments_t(pc, lay, rows_y, prob.scatter, buf).T
+            zx = np.empty((pc.n, prob.L, prob.K))
+            for j, col in enumerate(prob.keep_x):
+                rows_x = np.concatenate([x[:, :, col].T for x in pc.x])
+                zx[:, :, j] = unit_moments_t(pc, lay, rows_x, prob.scatter, buf).T
         yt, xt = pc.y[0], pc.x[0][:, :, prob.keep_x]
         self.parts.append((zy, zx, (yt * yt).sum(axis=1), np.einsum("npk,np->nk", xt, yt),
-                           np.einsum("npk,npj->nkj", xt, xt), pc.rows[0].sum(axis=1)))
+                           np.einsum("npk,npj->nkj", xt, xt), pc.rows[0].sum(axis=1), zhz))
 
 
 class _HForms:
     """Pass task: per-unit bilinear forms ``p_j' Z_i'HZ_i q_j`` for the columns of
-    ``P`` and ``Qv`` (L, m): the per-row values ``Z_i p`` of each block, then ``H``
-    (the diagonal weights of the blocks and the first-difference neighbours), as in
+    ``P`` (L, m) and ``Qv`` (L, m, or L, 1 for one vector shared by every column):
+    the per-row values ``Z_i p`` of each block, then ``H`` (the diagonal weights of
+    the blocks and the first-difference neighbours), as in
     :func:`.moments.first_moments`."""
 
     def __init__(self, prob: GMMProblem, P: np.ndarray, Qv: np.ndarray):
@@ -100,15 +152,15 @@ class _HForms:
 
     def __call__(self, ctx):
         pc, lay = ctx.pc, ctx.layout
-        nb, m = len(lay.block_slot), self.P.shape[1]
-        hp = np.empty((nb, m, pc.n))
-        hq = np.empty((nb, m, pc.n))
+        nb = len(lay.block_slot)
+        hp = np.empty((nb, self.P.shape[1], pc.n))
+        hq = np.empty((nb, self.Q.shape[1], pc.n))
         for j in range(nb):
             lo, hi = lay.starts[j], lay.stops[j]
             cols = lay.ent_col[lo:hi]
             hp[j] = self.P[cols].T @ pc.ZT[lo:hi]
             hq[j] = self.Q[cols].T @ pc.ZT[lo:hi]
-        out = np.einsum("b,bmn,bmn->nm", lay.block_diag, hp, hq)
+        out = np.einsum("b,bmn->nm", lay.block_diag, hp * hq)
         for j, k, _, _ in lay.pairs:
             out -= (hp[j] * hq[k] + hp[k] * hq[j]).T
         self.parts.append(out)
@@ -135,16 +187,24 @@ class UnitSums:
     ``units``: positions on the panel; ``active``: units with at least one row.
     """
 
-    def __init__(self, prob: GMMProblem, spec=None):
+    def __init__(self, prob: GMMProblem, spec=None, store_zhz: bool | None = None):
         self.prob = prob
         spec = prob.spec if spec is None else spec
         self.steps = parse(Steps, spec.steps)
         self.errors = parse(Errors, spec.errors)
-        task = _UnitArrays(prob)
+        N, L, R = prob.design.panel.n_units, prob.L, len(prob.engine.layout.block_slot)
+        if store_zhz is None:  # the module docstring's memory rule
+            store_zhz = 8 * N * L * (L + R) <= prob.source.budget // 4
+        task = _UnitArrays(prob, with_zhz=store_zhz)
         prob.engine.run_pass([task])
         cat = [np.concatenate([p[j] for p in task.parts]) for j in range(6)]
         self.zy, self.zx, self.yy, self.xy, self.xx, self.n_t = cat
         self.N, self.L, self.K = self.zx.shape
+        # X_i'Z_i of every unit as one (N·K, L) matrix, so that v'Z_i'X_i for all units
+        # is one matrix-vector product (a batched one over N small matrices is slower)
+        self._xz = np.ascontiguousarray(self.zx.transpose(0, 2, 1)).reshape(-1, self.L)
+        #: every unit's Z_i'HZ_i (N, L, L) when stored, else None (forms by a pass)
+        self.zhz_units = np.concatenate([p[6] for p in task.parts]) if store_zhz else None
         self.active = prob.design.unit_has_rows.copy()
         self.rows = (prob.design.sample_mask.sum(axis=1) if hasattr(prob.design, "sample_mask")
                      else None)
@@ -153,8 +213,18 @@ class UnitSums:
         self._zhz: dict[int, np.ndarray] = {}
 
     # ----------------------------------------------------------- unit sums
+    def zx_times(self, b: np.ndarray) -> np.ndarray:
+        """``Z_i'X_i b`` of every unit (N, L)."""
+        return (self.zx.reshape(-1, self.K) @ b).reshape(self.N, self.L)
+
+    def times_zx(self, v: np.ndarray) -> np.ndarray:
+        """``v'Z_i'X_i`` of every unit (N, K)."""
+        return (self._xz @ v).reshape(self.N, self.K)
+
     def unit_zhz(self, i: int) -> np.ndarray:
         """``Z_i'HZ_i`` of unit ``i`` on the kept instrument columns (one-unit chunk)."""
+        if self.zhz_units is not None:
+            return self.zhz_units[i]
         out = self._zhz.get(i)
         if out is None:
             eng = self.prob.engine
@@ -169,9 +239,12 @@ class UnitSums:
         ``weights``, for the finite-difference checks)."""
         prob = self.prob
         lost = np.ones(len(dropped)) if weights is None else 1.0 - np.asarray(weights, float)
-        M = prob.zhz.copy()
-        for i, c in zip(dropped, lost):
-            M -= c * self.unit_zhz(int(i))
+        if self.zhz_units is not None:
+            M = prob.zhz - np.einsum("n,nlj->lj", lost, self.zhz_units[dropped])
+        else:
+            M = prob.zhz.copy()
+            for i, c in zip(dropped, lost):
+                M -= c * self.unit_zhz(int(i))
         Q = prob.zx - np.einsum("n,nlk->lk", lost, self.zx[dropped])
         q = prob.zy - lost @ self.zy[dropped]
         return M, Q, q
@@ -184,34 +257,51 @@ class UnitSums:
     # ----------------------------------------------------------- refits
     def _reduced(self, dropped, weights=None):
         """A problem-like object of the model without ``dropped`` (what
-        :func:`.family._solution_stage` and :mod:`.covariance` read)."""
+        :func:`.family._solution_stage` and :mod:`.covariance` read). Sums over the
+        stored per-unit arrays of every unit with its weight (0 for dropped units and
+        units without rows: their terms vanish), so no array is copied per step."""
         M, Q, q = self._sums(dropped, weights)
         w = self._weights(dropped, weights)
-        zy, zx = self.zy, self.zx
-        sel = np.flatnonzero(w)
         zs = _scale(np.diag(M))
+        resid: dict = {}
+
+        def g_at(beta):
+            # g_i(b) = Z_i'y_i − Z_i'X_i b for every unit, memoised per b: the one-step
+            # S, Windmeijer's T and the influence read the same residual moments
+            key = beta.tobytes()
+            if key not in resid:
+                resid[key] = self.zy - self.zx_times(beta)
+            return resid[key]
 
         def moments_at(beta):
-            g = zy[sel] - zx[sel] @ beta
-            ssr = float(w[sel] @ (self.yy[sel] - 2 * self.xy[sel] @ beta
-                                   + np.einsum("nkj,k,j->n", self.xx[sel], beta, beta)))
-            return (g * w[sel, None]).T @ g, ssr
+            g = g_at(beta)
+            xxb = (self.xx.reshape(-1, self.K) @ beta).reshape(self.N, self.K)
+            ssr = float(w @ (self.yy - 2 * self.xy @ beta + xxb @ beta))
+            return (g * w[:, None]).T @ g, ssr
+
+        products: dict = {}
+
+        def times_zx(v):
+            # v'Z_i'X_i for every unit, memoised per v: Windmeijer's first vector is the
+            # influence's a₂ = W(q − Qb₂)
+            key = v.tobytes()
+            if key not in products:
+                products[key] = self.times_zx(v)
+            return products[key]
 
         red = SimpleNamespace(zx=Q, zy=q, zhz=M, L=self.L, K=self.K, z_scale=zs,
-                              unit_moments_at=lambda b: moments_at(b),
+                              unit_moments_at=moments_at, moments_at=moments_at, g_at=g_at,
+                              times_zx=times_zx,
                               weight_from=lambda S, cols=None: sym_pinv(S, scale=zs),
-                              n_t=float(w @ self.n_t), w=w, sel=sel, warnings=[])
-        red.moments_at = moments_at
+                              n_t=float(w @ self.n_t), w=w, warnings=[])
         return red
 
     def _windmeijer_terms(self, red, beta_prev, vectors):
         """``T(v) = Σ_i w_i [Z_i'X_i (g_i'v) + g_i (v'Z_i'X_i)]`` at ``beta_prev``."""
-        sel, w = red.sel, red.w[red.sel]
-        zx = self.zx[sel]
-        g = (self.zy[sel] - zx @ beta_prev) * w[:, None]
+        g = red.g_at(beta_prev) * red.w[:, None]
         out = []
         for v in vectors:
-            out.append(np.einsum("nlk,n->lk", zx, g @ v) + g.T @ np.einsum("nlk,l->nk", zx, v))
+            out.append(np.tensordot(g @ v, self.zx, axes=(0, 0)) + g.T @ red.times_zx(v))
         return out
 
     def _solve(self, red):
@@ -263,22 +353,21 @@ class UnitSums:
         refit = self._refit_of(one, sol, inputs)
         w = red.w
         Q, q = red.zx, red.zy
-        zx, zy = self.zx, self.zy
-        # one-step: B₁ [X_i'Z_i a₁ − (AQ)' Z_i'HZ_i a₁ + (AQ)' g_i(b₁)]
-        b1 = one.beta
-        a1 = one.A @ (q - Q @ b1)
-        AQ = one.A @ Q
-        g1 = zy - zx @ b1
-        forms = self._h_forms(AQ, np.repeat(a1[:, None], self.K, axis=1))
-        d1 = (np.einsum("nlk,l->nk", zx, a1) - forms + g1 @ AQ) @ one.bread
-        if self.steps == Steps.ONE:
-            return refit, d1 * w[:, None]
+        if self.steps != Steps.ITERATED:  # the iterated influence needs no one-step part
+            # one-step: B₁ [X_i'Z_i a₁ − (AQ)' Z_i'HZ_i a₁ + (AQ)' g_i(b₁)]
+            b1 = one.beta
+            a1 = one.A @ (q - Q @ b1)
+            AQ = one.A @ Q
+            forms = self._h_forms(AQ, a1[:, None])
+            d1 = (self.times_zx(a1) - forms + red.g_at(b1) @ AQ) @ one.bread
+            if self.steps == Steps.ONE:
+                return refit, d1 * w[:, None]
         b2, b_prev = sol.beta, sol.beta_prev
         a2 = sol.weight @ (q - Q @ b2)
         WQ = sol.weight @ Q
-        gp = zy - zx @ b_prev
-        g2 = zy - zx @ b2
-        direct = (np.einsum("nlk,l->nk", zx, a2) - (gp @ WQ) * (gp @ a2)[:, None]
+        gp = red.g_at(b_prev)
+        g2 = red.g_at(b2)
+        direct = (red.times_zx(a2) - (gp @ WQ) * (gp @ a2)[:, None]
                   + g2 @ WQ) @ sol.bread
         D = inputs.D
         if self.steps == Steps.TWO:
@@ -288,11 +377,21 @@ class UnitSums:
         return refit, out * w[:, None]
 
     def _h_forms(self, P, Qv) -> np.ndarray:
+        """``p_j' Z_i'HZ_i q_j`` for every unit (N, m): ``P`` (L, m), ``Qv`` (L, m) or
+        (L, 1) (one vector for every column). From the stored ``Z_i'HZ_i`` (no pass
+        over the data) when kept, else one pass (:class:`_HForms`)."""
+        if self.zhz_units is not None:
+            hq = self.zhz_units @ Qv                      # (N, L, m or 1)
+            if Qv.shape[1] == 1:
+                return hq[:, :, 0] @ P
+            return np.einsum("nlm,lm->nm", hq, P)
         task = _HForms(self.prob, P, Qv)
         self.prob.engine.run_pass([task])
         return np.concatenate(task.parts)
 
 
-def unit_sums(spec, panel, **kw) -> UnitSums:
-    """The :class:`UnitSums` of ``spec`` on ``panel`` (its own moment problem)."""
-    return UnitSums(GMMProblem(spec, panel, **kw), spec)
+def unit_sums(spec, panel, store_zhz: bool | None = None, **kw) -> UnitSums:
+    """The :class:`UnitSums` of ``spec`` on ``panel`` (its own moment problem;
+    ``store_zhz``: keep every unit's ``Z_i'HZ_i``, by default when it fits the
+    memory rule of the module docstring)."""
+    return UnitSums(GMMProblem(spec, panel, **kw), spec, store_zhz)

@@ -81,6 +81,40 @@ def test_unit_sums_add_up(small):
     _close(sum(us.unit_zhz(i) for i in range(small.n_units)), prob.zhz)
 
 
+@pytest.mark.parametrize("name", ["system-two-step", "system-two-step-fod-time",
+                                  "difference-one-step-robust"])
+def test_stored_unit_zhz_equal_the_pass(small, name):
+    """The stored per-unit ``Z_i'HZ_i`` (no pass per step) sum to the fit's ``Z'HZ``
+    and give the same per-unit moments, forms, refits and influence as the kernels
+    and the pass over the chunks (the fallback when they do not fit the memory
+    budget): the same sums, two routes."""
+    spec = sim_spec(**SPECS[name])
+    kept, passed = unit_sums(spec, small, store_zhz=True), unit_sums(spec, small, store_zhz=False)
+    assert kept.zhz_units is not None and passed.zhz_units is None
+    _close(kept.zhz_units.sum(axis=0), kept.prob.zhz)
+    _close(kept.zx, passed.zx)  # the dense batched products against the kernel's
+    _close(kept.zy, passed.zy)
+    for i in (0, 13, 59):
+        _close(kept.unit_zhz(i), passed.unit_zhz(i))
+    rng = np.random.default_rng(1)
+    P, Qv = rng.normal(size=(kept.L, 3)), rng.normal(size=(kept.L, 3))
+    _close(kept._h_forms(P, Qv), passed._h_forms(P, Qv))
+    _close(kept._h_forms(P, Qv[:, :1]), passed._h_forms(P, np.repeat(Qv[:, :1], 3, axis=1)))
+    dropped = (4, 30)
+    (r1, d1), (r2, d2) = kept.state(dropped), passed.state(dropped)
+    _close(r1.beta, r2.beta)
+    _close(r1.std_error, r2.std_error)
+    _close(d1, d2)
+
+
+def test_a_small_memory_budget_does_not_store_the_unit_zhz(small):
+    """The memory rule: the N·L² numbers are kept only within a quarter of the
+    budget (robustgmm.core.engine.memory_budget); a tiny budget takes the pass."""
+    spec = sim_spec(steps=2)
+    assert unit_sums(spec, small).zhz_units is not None
+    assert unit_sums(spec, small, memory_mb=0.01).zhz_units is None
+
+
 @pytest.mark.parametrize("name", SPECS)
 def test_influence_is_the_weight_derivative(small, name):
     spec = sim_spec(**SPECS[name])
@@ -106,3 +140,4 @@ def test_influence_predicts_leave_one_out(name):
         assert np.corrcoef(loo[:, k], -infl[:, k])[0, 1] > 0.99
     # measured 0.08 (one-step) and 0.18 (iterated) at this seed: first order, not exact
     assert np.max(np.abs(loo + infl)) / np.max(np.abs(loo)) < 0.3
+
