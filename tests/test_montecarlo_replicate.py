@@ -132,6 +132,40 @@ def test_estimate_group_without_bounds_gives_the_same_fits(spec):
     assert [e["fit"] for e in lean] == [e["fit"] for e in full]
 
 
+def test_lean_parts_equal_the_full_fit_bit_for_bit(spec):
+    """The replications compute only what they summarise (core.Parts: no
+    instrument-strength statistics, only the level group's difference-in-Hansen) and
+    keep the FitResult instead of its record: every number they read equals the full
+    fit's record read back, exactly (self-consistency: the parts left out ride on
+    their own sums)."""
+    import dataclasses
+    from robustgmm import core
+    from robustgmm.audit import runner
+    from robustgmm.core.results import FitResult
+    from robustgmm.data import load_panel
+    from robustgmm.options import LEVEL_GROUP
+    panel = load_panel(spec)
+    specs = [dataclasses.replace(spec, equations="system", steps=s, last_lag=lag)
+             for s in (1, 2) for lag in (3, None)]
+    parts = core.Parts(strength=False, difference_hansen=(LEVEL_GROUP,))
+    full = runner.estimate_group(specs, panel, bounds=False)
+    lean = runner.estimate_group(specs, panel, bounds=False, parts=parts, records=False)
+    for f, e in zip(full, lean):
+        a, b = FitResult.from_dict(f["fit"]), e["result"]
+        assert "fit" not in e and isinstance(b, FitResult)
+        assert b.strength == {} and a.strength  # the full fit has them
+        assert list(b.difference_hansen) == [LEVEL_GROUP] and len(a.difference_hansen) > 1
+        assert b.difference_hansen[LEVEL_GROUP] == a.difference_hansen[LEVEL_GROUP]
+        assert [(t.label, t.estimate, t.std_error) for t in b.terms + b.long_run] == \
+            [(t.label, t.estimate, t.std_error) for t in a.terms + a.long_run]
+        assert b.tests == a.tests
+        np.testing.assert_array_equal(b.vcov, a.vcov)
+    # and a difference-GMM fit, which has no level group, computes no such test
+    diff = dataclasses.replace(spec, equations="difference")
+    e, = runner.estimate_group([diff], panel, bounds=False, parts=parts, records=False)
+    assert e["result"].difference_hansen == {}
+
+
 def test_too_few_reps_message_states_the_binomial_error():
     # a rate's Monte Carlo standard error is sqrt(p (1 - p) / R), at most sqrt(0.25 / R)
     import math

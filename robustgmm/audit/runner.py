@@ -164,13 +164,15 @@ class _BoundsOnce:
 FIT_EACH: Callable | None = None
 
 
-def _fits(specs, panel, fit: Callable | None) -> list:
+def _fits(specs, panel, fit: Callable | None, parts=None) -> list:
     """The group's results (an exception in place of a member that raised): one
-    :func:`robustgmm.core.fit_family` call, or ``fit`` member by member
-    (:data:`FIT_EACH`)."""
+    :func:`robustgmm.core.fit_family` call (computing ``parts``, None: every part), or
+    ``fit`` member by member (:data:`FIT_EACH`)."""
     from .. import core
     if fit is None:
-        return core.fit_family(list(specs), panel)
+        if parts is None:
+            return core.fit_family(list(specs), panel)
+        return core.fit_family(list(specs), panel, parts=parts)
     results = []
     for spec in specs:
         try:
@@ -181,7 +183,8 @@ def _fits(specs, panel, fit: Callable | None) -> list:
 
 
 def estimate_group(specs, panel, fit: Callable | None = None, on_error: str = "raise",
-                   ids: Sequence[str] | None = None, bounds: bool = True) -> list[dict]:
+                   ids: Sequence[str] | None = None, bounds: bool = True,
+                   parts=None, records: bool = True) -> list[dict]:
     """Estimate a share group of variants and their OLS/within bounds; one payload
     per member (the comment above :func:`_failure`).
 
@@ -194,7 +197,11 @@ def estimate_group(specs, panel, fit: Callable | None = None, on_error: str = "r
     (:data:`FIT_EACH`, tests) replaces it by one call per member. ``ids``: the variant
     ids, named in the
     failure records. ``bounds=False`` leaves the bounds out (``bounds`` None: the
-    Monte Carlo needs only the fits).
+    Monte Carlo needs only the fits). ``parts``: the optional parts of each fit
+    (:class:`robustgmm.core.Parts`; None: every part). ``records=False`` puts the
+    :class:`~robustgmm.core.results.FitResult` itself under ``"result"`` in place of
+    its record under ``"fit"`` (the Monte Carlo, which keeps a few numbers of each
+    fit and never stores or ships the fit; an audit's payloads are records).
     """
     from .. import core
 
@@ -208,9 +215,12 @@ def estimate_group(specs, panel, fit: Callable | None = None, on_error: str = "r
         of = (_BoundsOnce(panel, core.estimation_sample, on_error) if bounds
               else (lambda spec: None))
         out = []
-        for vid, spec, res in zip(ids, specs, _fits(specs, panel, fit)):
+        for vid, spec, res in zip(ids, specs, _fits(specs, panel, fit, parts)):
             if isinstance(res, BaseException):
                 out.append(_unexpected(res, on_error, vid))
+            elif not records:
+                out.append({"status": OK, "result": res, "bounds": of(spec),
+                            "cacheable": True})
             else:
                 try:
                     record = res.to_dict()

@@ -19,14 +19,14 @@ from ..data import Panel
 from ..spec import Spec
 from .design import Design
 from .dropping import DropResult, Search as DropSearch, smallest_sets
-from .family import fit, fit_family, invalid_reason, share_key
+from .family import ALL_PARTS, Parts, fit, fit_family, invalid_reason, share_key
 from .problem import GMMProblem
 from .influence import UnitSums, unit_sums
 from .results import Counts, FitResult, TermEstimate, TestResult
 
 # what the other layers use (the audit's grid, runner and bounds; the CLI); the
 # design and the moment problem are internals, imported from their modules
-__all__ = ["fit", "fit_family", "share_key", "invalid_reason", "count_instruments",
+__all__ = ["fit", "fit_family", "Parts", "ALL_PARTS", "share_key", "invalid_reason", "count_instruments",
            "design_counts", "estimation_sample", "FitResult", "TermEstimate", "TestResult",
            "Counts", "unit_sums", "UnitSums", "DropSearch", "DropResult", "smallest_sets"]
 

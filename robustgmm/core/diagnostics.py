@@ -120,21 +120,25 @@ def sargan(prob, one) -> TestResult | None:
     return chi2(stat, one.rank_a - prob.K, scale, one.warnings, "Sargan")
 
 
-def difference_hansen(prob, S, W, rank_w, b_full, warnings: list) -> dict:
+def difference_hansen(prob, S, W, rank_w, b_full, warnings: list, groups=None) -> dict:
     """Difference-in-Hansen per instrument group (module docstring).
 
     ``S``: the moment covariance of the weight; ``W``/``rank_w``: its inverse and
-    rank; ``b_full``: the efficient estimate with ``W``. A group whose removal leaves
-    the model unidentified is reported as not testable, with the reason."""
+    rank; ``b_full``: the efficient estimate with ``W``; ``groups``: the groups to
+    test (None: every group; each test depends on its own group only). A group whose
+    removal leaves the model unidentified is reported as not testable, with the
+    reason."""
     d = prob.design
     L, K = prob.L, prob.K
-    j_full = criterion(prob.zx, prob.zy, W, b_full)
     out = {}
+    todo = {g: pos for g, pos in d.instrument_groups().items()
+            if len(pos) and (groups is None or g in groups)}
+    if not todo:
+        return out
+    j_full = criterion(prob.zx, prob.zy, W, b_full)
     row_scale = prob.z_scale
     col_scale = np.ones(K)  # the rank decision is relative to each column's norm
-    for group, pos in d.instrument_groups().items():
-        if len(pos) == 0:
-            continue
+    for group, pos in todo.items():
         keep = np.setdiff1d(np.arange(L), pos)
         if len(keep) < K or not identified_columns(prob.zx[keep], row_scale[keep],
                                                    col_scale).all():

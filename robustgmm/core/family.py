@@ -184,15 +184,18 @@ def _solution_stage(prob: GMMProblem, one: _OneStep, steps: Steps) -> _Solution:
     return _Solution(beta, beta_prev, weight, S_w, bread, rank_w, iterations, hansen, warns)
 
 
-def _difference_hansen(prob: GMMProblem, sol: _Solution, one: _OneStep) -> tuple[dict, list]:
-    """difference-in-Hansen with the S of the solution (:func:`.diagnostics.difference_hansen`)."""
+def _difference_hansen(prob: GMMProblem, sol: _Solution, one: _OneStep,
+                       groups=None) -> tuple[dict, list]:
+    """difference-in-Hansen with the S of the solution (:func:`.diagnostics.difference_hansen`)
+    for ``groups`` (None: every instrument group)."""
     warns: list = []
     if sol.S_w is one.S:
         # S of the one-step residuals: its inverse and efficient estimate exist already
         W, rank, b_full = one.W, one.rank_s, one.beta2
     else:  # iterated: the final weight is the inverse of S_w and gave the estimate
         W, rank, b_full = sol.weight, sol.rank_w, sol.beta
-    return diagnostics.difference_hansen(prob, sol.S_w, W, rank, b_full, warns), warns
+    return diagnostics.difference_hansen(prob, sol.S_w, W, rank, b_full, warns,
+                                         groups), warns
 
 
 def _assemble(spec: Spec, prob: GMMProblem, one: _OneStep, sol: _Solution,
@@ -269,7 +272,24 @@ def share_key(spec: Spec) -> str:
     return json.dumps(key, sort_keys=True, separators=(",", ":"), default=str)
 
 
-def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> list:
+@dataclass(frozen=True)
+class Parts:
+    """Which optional parts of a fit to compute: ``strength`` (the instrument-strength
+    statistics of :mod:`.strength`) and ``difference_hansen`` (the instrument groups
+    whose difference-in-Hansen test is computed; None: every group). Leaving a part
+    out changes nothing else in the fit: its sums ride on a pass without touching the
+    others, and each difference-in-Hansen test depends on its own group only. The
+    default computes everything; the Monte Carlo asks only for what it summarises."""
+
+    strength: bool = True
+    difference_hansen: tuple[str, ...] | None = None
+
+
+ALL_PARTS = Parts()
+
+
+def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None,
+               parts: Parts = ALL_PARTS) -> list:
     """Fit specs of one share group; a failing member gives its exception."""
     out: list = [None] * len(specs)
     bad = {i: invalid_reason(s) for i, s in enumerate(specs)}
@@ -280,7 +300,8 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
     if not valid:
         return out
     if len(valid) < len(specs):
-        sub = _fit_specs([specs[i] for i in valid], panel, chunk_units, memory_mb, engine)
+        sub = _fit_specs([specs[i] for i in valid], panel, chunk_units, memory_mb, engine,
+                         parts)
         for i, r in zip(valid, sub):
             out[i] = r
         return out
@@ -315,10 +336,11 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
         by_engine.setdefault(id(p.engine), (p.engine, []))[1].append(k)
     # the sums of the instrument-strength statistics (they depend on the instrument
     # set only) ride on the same pass
-    strong = {k: strength.plan(live[k].spec, live[k], ones[k].A) for k in live}
+    strong = ({k: strength.plan(live[k].spec, live[k], ones[k].A) for k in live}
+              if parts.strength else {})
     for eng, keys in by_engine.values():
         tasks = {k: SumS(live[k], ones[k].beta) for k in keys}
-        eng.run_pass(list(tasks.values()) + [strong[k][2] for k in keys])
+        eng.run_pass(list(tasks.values()) + [strong[k][2] for k in keys if k in strong])
         for k, task in tasks.items():
             ones[k].S, ones[k].ssr = task.S, task.ssr
     for k, p in live.items():
@@ -344,7 +366,8 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
     for key, sol in sols.items():
         s_key = (key[0], id(sol.S_w))
         if s_key not in by_s:
-            by_s[s_key] = _difference_hansen(live[key[0]], sol, ones[key[0]])
+            by_s[s_key] = _difference_hansen(live[key[0]], sol, ones[key[0]],
+                                             parts.difference_hansen)
         diffs[key] = by_s[s_key]
     for i, spec in enumerate(specs):
         k = spec.last_lag
@@ -354,7 +377,7 @@ def _fit_specs(specs, panel, chunk_units=None, memory_mb=None, engine=None) -> l
         try:
             out[i] = _assemble(spec, live[k], ones[k], sols[(k, parse(Steps, spec.steps))],
                                diffs[(k, parse(Steps, spec.steps))],
-                               strength.statistics(live[k], strong[k]))
+                               strength.statistics(live[k], strong[k]) if k in strong else None)
         except Exception as exc:  # noqa: BLE001 — returned, the caller decides (its type says)
             out[i] = exc
     return out
@@ -383,7 +406,7 @@ def fit(spec: Spec, panel: Panel, *, chunk_units: int | None = None,
 
 
 def fit_family(specs, panel: Panel, *, chunk_units: int | None = None,
-               memory_mb: float | None = None) -> list:
+               memory_mb: float | None = None, parts: Parts = ALL_PARTS) -> list:
     """Fit several specs on one panel, sharing work; returns, in order, a
     :class:`FitResult` or the exception that spec raised (never raises for one
     spec): :class:`EstimationError` for a model the data cannot estimate,
@@ -396,7 +419,8 @@ def fit_family(specs, panel: Panel, *, chunk_units: int | None = None,
     are computed once, and the passes over the data of all members run together.
     Results equal those of :func:`fit` on each spec: exactly for specs differing in
     steps and errors, to rounding (sums of the same terms, ordered differently) for
-    specs differing in last_lag.
+    specs differing in last_lag. ``parts``: the optional parts to compute
+    (:class:`Parts`; default every one); the parts computed equal a full fit's.
     """
     specs = list(specs)
     out: list = [None] * len(specs)
@@ -406,12 +430,13 @@ def fit_family(specs, panel: Panel, *, chunk_units: int | None = None,
     for idx in groups.values():
         members = [specs[i] for i in idx]
         try:
-            results = _fit_specs(members, panel, chunk_units, memory_mb)
+            results = _fit_specs(members, panel, chunk_units, memory_mb, parts=parts)
         except Exception:  # noqa: BLE001 — e.g. a memory error: fall back spec by spec
             results = []
             for s in members:
                 try:
-                    results.append(_fit_specs([s], panel, chunk_units, memory_mb)[0])
+                    results.append(_fit_specs([s], panel, chunk_units, memory_mb,
+                                                  parts=parts)[0])
                 except Exception as inner:  # noqa: BLE001
                     results.append(inner)
         for i, r in zip(idx, results):

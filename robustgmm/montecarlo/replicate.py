@@ -6,9 +6,12 @@ data's frame (same units, calendar, other columns and each model column's own
 missing cells), builds the panel of every sample of the audit and estimates every
 planned variant with the audit's own estimation of a share group
 (:func:`robustgmm.audit.runner.estimate_group`, which uses the core's shared-work
-families). A replication returns, per variant, its status, each focus term's
-estimate and standard error, and the p-values of Hansen, AR(2) and the level
-difference-in-Hansen: a few numbers, never a panel.
+families), computing only the parts of each fit it keeps (:class:`robustgmm.core.Parts`:
+no instrument-strength statistics, only the level group's difference-in-Hansen; the
+parts computed equal a full fit's bit for bit) and reading them from the fit itself
+(never its JSON record, whose round trip they equal). A replication returns, per
+variant, its status, each focus term's estimate and standard error, and the p-values
+of Hansen, AR(2) and the level difference-in-Hansen: a few numbers, never a panel.
 
 **Summary** (one row per variant × focus term, :func:`summarise`), over the ``R_ok``
 replications in which the variant was estimated, with ``b`` the truth, ``b_r`` the
@@ -183,8 +186,15 @@ def simulated_frame(world: World, template: pd.DataFrame, seed: int, rep: int,
 # ---------------------------------------------------------------------------
 # one replication (runs in a worker)
 # ---------------------------------------------------------------------------
+def _num(x) -> float:
+    """A number as the fit's record reads it back: NaN for any non-finite value
+    (:mod:`robustgmm.core.results`), so a replication equals one read from a record."""
+    x = float(x)
+    return x if math.isfinite(x) else math.nan
+
+
 def _p(test) -> float | None:
-    return None if test is None else float(test.p_value)
+    return None if test is None else _num(test.p_value)
 
 
 def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: int,
@@ -195,7 +205,9 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
     from .. import core, data
     from ..audit import runner
     from ..audit.grid import sample_key
-    from ..core.results import FitResult
+    # a replication keeps a few numbers of each fit: no instrument-strength
+    # statistics, and only the level group's difference-in-Hansen
+    parts = core.Parts(strength=False, difference_hansen=(level_group,))
     spec0 = variants[0].spec
     frame = simulated_frame(world, template, seed, rep, (spec0.outcome,) + world.regressors)
     panels: dict[str, Any] = {}
@@ -216,13 +228,14 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
                 out[v.id] = {"status": runner.FAILED, "reason": panel}
             continue
         for v, entry in zip(members, runner.estimate_group([m.spec for m in members], panel,
-                                                                bounds=False)):
+                                                                bounds=False, parts=parts,
+                                                                records=False)):
             if entry["status"] != runner.OK:
                 out[v.id] = {"status": entry["status"], "reason": entry["failure"]["reason"]}
                 continue
-            fit = FitResult.from_dict(entry["fit"])  # the fit's one record, read back
-            terms = {t.label: [t.estimate, t.std_error] for t in fit.terms + fit.long_run
-                     if t.label in focus}
+            fit = entry["result"]
+            terms = {t.label: [_num(t.estimate), _num(t.std_error)]
+                     for t in fit.terms + fit.long_run if t.label in focus}
             out[v.id] = {"status": runner.OK, "terms": terms,
                          "hansen": _p(fit.tests.get("hansen")),
                          "ar2": _p(fit.tests.get("ar2")),
