@@ -16,7 +16,7 @@ import pytest
 from helpers_core import numeric_windmeijer_d, sim_panel, sim_spec
 from robustgmm.core import GMMProblem, fit, invalid_reason
 from robustgmm.core import diagnostics
-from robustgmm.core.linalg import identified_columns
+from robustgmm.core.linalg import identified_columns, independent_columns
 from robustgmm.core.problem import efficient_gmm
 from robustgmm.data import panel_from_frame
 from robustgmm.errors import InputError, RankConditionError, UnderidentifiedError
@@ -58,6 +58,45 @@ def test_identified_columns_is_a_rank_scan_free_of_units():
         assert ok.tolist() == [True, True, False, True]
     m[:, 3] = 0.0
     assert identified_columns(m, np.ones(6), np.ones(4)).tolist() == [True, True, False, False]
+
+
+def _scan_by_least_squares(gram, rtol=1e-9):
+    """The column scan by its definition: each column's residual after projection on
+    the columns kept so far, one least-squares solve per column."""
+    d = np.diag(gram)
+    scale = np.where(d > 0, 1.0 / np.sqrt(np.where(d > 0, d, 1.0)), 0.0)
+    unit = gram * scale[:, None] * scale[None, :]
+    kept, smallest, noise = [], 1.0, 100.0 * np.finfo(float).eps
+    for j in range(len(gram)):
+        if not scale[j] > 0:
+            continue
+        resid = 1.0
+        if kept:
+            cross = unit[kept, j]
+            resid = 1.0 - cross @ np.linalg.lstsq(unit[np.ix_(kept, kept)], cross, rcond=None)[0]
+        if resid > max(rtol, noise / smallest):  # the rounding floor of the docstring
+            kept.append(j)
+            smallest = min(smallest, resid)
+    return kept
+
+
+def test_independent_columns_keep_what_the_least_squares_scan_keeps():
+    """The scan reads residuals from a running inverse while it is well conditioned:
+    the columns kept are those of the definition (one least-squares solve per column)
+    on Gram matrices with exact dependencies, zero columns, near dependencies on either
+    side of the cut and columns in wildly different units."""
+    rng = np.random.default_rng(7)
+    for trial in range(200):
+        n, k = 60, int(rng.integers(2, 25))
+        x = rng.normal(size=(n, k)) * 10.0 ** rng.integers(-4, 5, k)
+        for _ in range(int(rng.integers(0, 4))):  # exact and near dependencies
+            j, a, b = rng.integers(0, k, 3)
+            x[:, j] = 2.0 * x[:, a] - x[:, b] + rng.choice([0.0, 1e-7, 1e-5, 1e-3, 0.05]) \
+                * rng.normal(size=n) * np.abs(x[:, a]).mean()
+        if rng.random() < 0.2:
+            x[:, rng.integers(0, k)] = 0.0
+        gram = x.T @ x
+        assert independent_columns(gram).tolist() == _scan_by_least_squares(gram), trial
 
 
 def test_a_term_no_instrument_moves_raises_naming_it():
