@@ -49,9 +49,11 @@ PER_ROW_INSTRUMENT = 6.5e-9
 #: the share of a full fit that each further member of a share group costs
 SIBLING_SHARE = 0.35
 #: a Monte Carlo replication (drawing its panel, building each sample's panel, then
-#: the grid's fits) against the grid's fits alone: 1.79 measured by ``robustgmm
-#: bench`` (workload 5, "one replication / audit estimation time")
-REPLICATION_FACTOR = 1.8
+#: the grid's fits with only the parts it summarises, :class:`robustgmm.core.Parts`)
+#: against the audit's fits of the grid (records, bounds, every test): 0.52 and 0.54
+#: measured in CPU time on the bench's 48-variant grid at N = 400 and 2,000, T = 10
+#: (``robustgmm bench`` workload 5, "one replication / audit estimation time")
+REPLICATION_FACTOR = 0.55
 
 
 def _widest_last(members: Sequence[Any]) -> int | None:
