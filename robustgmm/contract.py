@@ -167,7 +167,7 @@ TABLES = (VARIANTS, ESTIMATES, BOUNDS)
 #: analysed variant × focus term × target.
 INFLUENCE = Table("influence.csv", (
     Column("variant", "text", "variant id (the base model's rows first)"),
-    Column("term", "text", "a focus term (a coefficient; long-run effects are not searched)"),
+    Column("term", "text", "a focus term (a coefficient or a long-run effect)"),
     Column("target", "text",
            "sign (the estimate's sign reversed), significance (significance at alpha lost, "
            "or gained when the base is not significant) or opposite_significant (significant "

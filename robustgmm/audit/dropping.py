@@ -17,8 +17,10 @@ answers are tables of the audit folder (:mod:`robustgmm.contract`):
   period removed in turn (a structured sample filter: the period's rows are
   missing, so its lags are missing too and nothing is borrowed across the gap).
 
-Long-run effects are not searched (they are ratios of coefficients; only the
-coefficients have an influence in :mod:`robustgmm.core.influence`). A model whose
+A long-run effect is searched like a coefficient (its influence is the chain rule
+through :mod:`robustgmm.core.longrun`, its refits the long-run formula on each
+refit, :meth:`robustgmm.core.influence.UnitSums.term_influence`); one whose base
+estimate is not defined (no steady state) is listed in ``not_searched``. A model whose
 moment problem cannot be rebuilt or solved on a reduced sample (an
 :class:`~robustgmm.errors.EstimationError` or a singular matrix) is recorded in
 ``failures`` (manifest.json ``influence``, the report) and never stops the audit. The rule that reads the tables,
@@ -90,12 +92,11 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
         panel = panels[sample_key(v.spec.sample)]
         try:
             sums = core.unit_sums(v.spec, panel)
-            terms = [t for t in focus if t in sums.labels]
             search = core.DropSearch(sums, alpha, spec.max_drop_share)
+            terms = searchable_terms(search, focus)
             for term in terms:
-                k = sums.labels.index(term)
                 for target in DropTarget:
-                    res = search.run(k, target)
+                    res = search.run(term, target)
                     rows.append(_result_row(vid, res, panel))
                     path_rows.extend({"variant": vid, "term": term, "target": str(target),
                                       "dropped": p.dropped, "estimate": p.estimate,
@@ -123,6 +124,14 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     return DroppingTables(influence, units, path, periods, failures, run)
 
 
+def searchable_terms(search, focus) -> list[str]:
+    """The focus terms the model has (coefficients and long-run effects) whose base
+    estimate is defined (a long-run effect without a steady state is not)."""
+    import math
+    return [t for t in focus if t in search.sums.term_labels
+            and math.isfinite(search.base.term(t)[0])]
+
+
 def _result_row(vid: str, res, panel) -> dict:
     ids = " ".join(str(u) for u in np.asarray(panel.units)[list(res.dropped)])
     return {"variant": vid, "term": res.term, "target": str(res.target),
@@ -140,11 +149,10 @@ def _top_units(search, terms, panel) -> list[dict]:
     units = np.asarray(panel.units)
     out = []
     for term in terms:
-        k = sums.labels.index(term)
-        d = infl[:, k]
+        d = sums.term_influence(term, base, infl)
         size = np.where(sums.active & np.isfinite(d), np.abs(d), -1.0)
         order = np.argsort(-size, kind="stable")[:TOP_UNITS]
-        se = float(base.std_error[k])
+        se = base.term(term)[1]
         for rank, i in enumerate(order[size[order] >= 0], start=1):
             out.append({"term": term, "rank": rank, "unit": str(units[i]),
                         "influence": float(d[i]),

@@ -1,7 +1,8 @@
 """The smallest set of units whose removal overturns a conclusion (Broderick, Giordano
 & Meager 2020; Huang, Burt, Shen, Nguyen & Broderick 2024).
 
-For one focus term with base estimate ``b₀`` (sign ``s = sign(b₀)``, +1 at zero),
+For one focus term (a coefficient or a long-run effect, whose influence is the
+chain rule of :meth:`.influence.UnitSums.term_influence`) with base estimate ``b₀`` (sign ``s = sign(b₀)``, +1 at zero),
 t-statistic ``z₀`` and normal p-value ``p₀``, three targets
 (:class:`robustgmm.options.DropTarget`), each judged on an **exact refit**
 (:meth:`.influence.UnitSums.refit`):
@@ -127,41 +128,50 @@ class Search:
             out = self._states[key] = self.sums.state(dropped)
         return out
 
-    def run(self, k: int, target: DropTarget) -> DropResult:
-        """The smallest found set for term ``k`` and ``target`` (module docstring)."""
-        sig0 = bool(self.base.p_value[k] < self.alpha)
+    def run(self, term, target: DropTarget) -> DropResult:
+        """The smallest found set for ``term`` (a label of ``sums.term_labels``, a
+        coefficient or a long-run effect; or a coefficient position) and ``target``
+        (module docstring)."""
+        label = self.sums.labels[term] if isinstance(term, (int, np.integer)) else term
+        sig0 = bool(self.base.term(label)[3] < self.alpha)
         if target == DropTarget.SIGNIFICANCE and not sig0:
-            tries = [self._run(k, target, -1.0), self._run(k, target, +1.0)]
+            tries = [self._run(label, target, -1.0), self._run(label, target, +1.0)]
             hit = [r for r in tries if r.reached]
             return min(hit, key=lambda r: len(r.dropped)) if hit else tries[0]
-        return self._run(k, target, +1.0)
+        return self._run(label, target, +1.0)
 
-    def _run(self, k: int, target: DropTarget, d: float) -> DropResult:
+    def _run(self, label: str, target: DropTarget, d: float) -> DropResult:
         """One search. The objective ``o = d·s·q`` (``q = b`` for the sign, ``z``
         otherwise; ``d = −1`` only when gaining significance in the base's own
         direction) must fall below ``threshold``: 0 for the sign, ``z_c`` to lose
         significance, ``−z_c`` to gain it or to reach the opposite sign."""
-        sums, label = self.sums, self.sums.labels[k]
-        b0 = float(self.base.beta[k])
+        sums = self.sums
+        b0, _, _, p0 = self.base.term(label)
         s0 = 1.0 if b0 >= 0 else -1.0
-        sig0 = bool(self.base.p_value[k] < self.alpha)
+        sig0 = bool(p0 < self.alpha)
         on_b = target == DropTarget.SIGN
         threshold = 0.0 if on_b else (self.zc if (target == DropTarget.SIGNIFICANCE and sig0)
                                       else -self.zc)
 
         def objective(refit):
-            return d * s0 * float(refit.beta[k] if on_b else refit.z[k])
+            est, _, z, _ = refit.term(label)
+            return d * s0 * float(est if on_b else z)
 
         def change_of(refit, infl, mask):
             """Predicted change of ``o`` when each unit is dropped (first order; ``z``
             with the standard error held fixed), ``inf`` where not a candidate."""
-            c = -infl[:, k] if on_b else -infl[:, k] / refit.std_error[k]
+            di = sums.term_influence(label, refit, infl)
+            c = -di if on_b else -di / refit.term(label)[1]
             c = d * s0 * c
             return np.where(mask & np.isfinite(c), c, np.inf)
 
         def reached(refit):
-            return _reached(target, s0, sig0, float(refit.beta[k]), float(refit.p_value[k]),
-                            self.alpha)
+            est, _, _, p = refit.term(label)
+            return _reached(target, s0, sig0, est, p, self.alpha)
+
+        def point(n, refit):
+            est, se, _, p = refit.term(label)
+            return PathPoint(n, est, se, p)
 
         active = sums.active.copy()
         candidates = {}
@@ -181,8 +191,7 @@ class Search:
         # 2. recursive greedy search, an exact refit at every step
         dropped: tuple = ()
         refit, infl = self.base, self.base_influence
-        path = [PathPoint(0, float(refit.beta[k]), float(refit.std_error[k]),
-                          float(refit.p_value[k]))]
+        path = [point(0, refit)]
         while len(dropped) < self.max_drop:
             mask = active.copy()
             mask[list(dropped)] = False
@@ -192,19 +201,18 @@ class Search:
                 break
             dropped = dropped + (best,)
             refit, infl = self._state(dropped)
-            path.append(PathPoint(len(dropped), float(refit.beta[k]),
-                                  float(refit.std_error[k]), float(refit.p_value[k])))
+            path.append(point(len(dropped), refit))
             if reached(refit):
                 candidates["greedy"] = (dropped, refit)
                 break
         if candidates:
             method = min(candidates, key=lambda m: (len(candidates[m][0]), m != "greedy"))
             found, best_fit = candidates[method]
-            return DropResult(label, target, True, found, float(best_fit.beta[k]),
-                              float(best_fit.std_error[k]), float(best_fit.p_value[k]),
-                              self.max_drop, self.n_units, method, additive_size, tuple(path))
-        return DropResult(label, target, False, dropped, float(refit.beta[k]),
-                          float(refit.std_error[k]), float(refit.p_value[k]), self.max_drop,
+            est, se, _, p = best_fit.term(label)
+            return DropResult(label, target, True, found, est, se, p, self.max_drop,
+                              self.n_units, method, additive_size, tuple(path))
+        est, se, _, p = refit.term(label)
+        return DropResult(label, target, False, dropped, est, se, p, self.max_drop,
                           self.n_units, "", additive_size, tuple(path))
 
 
@@ -215,11 +223,7 @@ def _z_crit(alpha: float) -> float:
 
 def smallest_sets(sums: UnitSums, terms, alpha: float,
                   max_drop_share: float = MAX_DROP_SHARE) -> list[DropResult]:
-    """:class:`DropResult` for every term label in ``terms`` and every target."""
+    """:class:`DropResult` for every term label in ``terms`` (coefficients or long-run
+    effects, :attr:`.influence.UnitSums.term_labels`) and every target."""
     search = Search(sums, alpha, max_drop_share)
-    out = []
-    for label in terms:
-        k = sums.labels.index(label)
-        for target in DropTarget:
-            out.append(search.run(k, target))
-    return out
+    return [search.run(label, target) for label in terms for target in DropTarget]

@@ -62,6 +62,11 @@ workload 8). The estimators and variances are those of the fit itself
 (:func:`.family._solution_stage`, :mod:`.covariance`), so a refit equals a fit of
 the panel without ``D`` when the reduced panel keeps the same instrument and
 regressor columns (the test checks this to 1e-10).
+
+**Long-run effects** ``θ = g(b)`` (:mod:`.longrun`): the influence is the chain rule
+``∇g(b)' ∂b/∂w_i`` (:meth:`UnitSums.term_influence`), and a refit's long-run effects
+are :func:`.longrun.long_run_effects` of its ``b`` and covariance (the fit's own
+formula and delta-method standard error).
 """
 from __future__ import annotations
 
@@ -72,7 +77,7 @@ from types import SimpleNamespace
 import numpy as np
 
 from ..options import Errors, Steps, parse
-from . import covariance, diagnostics
+from . import covariance, diagnostics, longrun
 from .linalg import sym_pinv
 from .moments import first_moments, prepare, unit_moments_t
 from .problem import GMMProblem, _scale, efficient_gmm
@@ -190,6 +195,22 @@ class Refit:
     p_value: np.ndarray
     beta_one_step: np.ndarray
     warnings: tuple = ()
+    #: coefficient labels, in the order of ``beta``
+    labels: tuple = ()
+    #: the long-run effects at this refit (:func:`.longrun.long_run_effects` on its
+    #: ``beta`` and ``vcov``, the fit's own formula)
+    long_run: tuple = ()
+
+    def term(self, label: str) -> tuple[float, float, float, float]:
+        """``(estimate, std_error, z, p_value)`` of a coefficient or long-run effect."""
+        if label in self.labels:
+            k = self.labels.index(label)
+            return (float(self.beta[k]), float(self.std_error[k]), float(self.z[k]),
+                    float(self.p_value[k]))
+        for t in self.long_run:
+            if t.label == label:
+                return t.estimate, t.std_error, t.z, t.p_value
+        raise KeyError(label)
 
 
 class UnitSums:
@@ -222,6 +243,11 @@ class UnitSums:
         self.rows = (prob.design.sample_mask.sum(axis=1) if hasattr(prob.design, "sample_mask")
                      else None)
         self.labels = list(prob.design.x_labels)
+        self.spec = spec
+        #: (label, regressor term positions, AR term positions) of each long-run effect
+        self.long_run_parts = longrun.parts(spec, self.labels)
+        #: every term with an influence: the coefficients, then the long-run effects
+        self.term_labels = self.labels + [lab for lab, _, _ in self.long_run_parts]
         self.fod = prob.design.fod
         self._zhz: dict[int, np.ndarray] = {}
 
@@ -349,7 +375,9 @@ class UnitSums:
         se = np.sqrt(np.clip(np.diag(vcov), 0, None))
         z = np.where(se > 0, sol.beta / np.where(se > 0, se, 1.0), np.nan)
         p = np.asarray([diagnostics.p_normal(v) for v in z])
-        return Refit(sol.beta, vcov, se, z, p, one.beta, tuple(sol.warnings))
+        lr = longrun.long_run_effects(self.spec, self.labels, sol.beta, vcov)[0]
+        return Refit(sol.beta, vcov, se, z, p, one.beta, tuple(sol.warnings),
+                     tuple(self.labels), lr)
 
     # ----------------------------------------------------------- influence
     def influence(self, dropped=()) -> np.ndarray:
@@ -388,6 +416,20 @@ class UnitSums:
         else:  # iterated: at the fixed point b = f(b), db = (I − D)⁻¹ (direct part)
             out = direct @ np.linalg.inv(np.eye(self.K) - D).T
         return refit, out * w[:, None]
+
+    def term_influence(self, label: str, refit: Refit, infl: np.ndarray) -> np.ndarray:
+        """``∂θ/∂w_i`` (N,) of term ``label`` at a state (:meth:`state`): the column of
+        a coefficient, or for a long-run effect ``θ = g(b)`` the chain rule
+        ``∇g(b)' ∂b/∂w_i`` with the gradient of :func:`.longrun.gradient` at the
+        state's ``b`` (NaN for every unit where the effect is not defined)."""
+        if label in self.labels:
+            return infl[:, self.labels.index(label)]
+        for lab, idx, ar in self.long_run_parts:
+            if lab == label:
+                if not math.isfinite(longrun.value(refit.beta, idx, ar)):
+                    return np.full(self.N, math.nan)
+                return infl @ longrun.gradient(refit.beta, idx, ar)
+        raise KeyError(label)
 
     def _h_forms(self, P, Qv) -> np.ndarray:
         """``p_j' Z_i'HZ_i q_j`` for every unit (N, m): ``P`` (L, m), ``Qv`` (L, m) or

@@ -272,7 +272,7 @@ def markdown_section(ctx: dict | None) -> str:
              f"{esc(ctx['noun'])}; the rule few\\_units\\_flip looks at sets of at most "
              f"{ctx['flip_share']}.", "", f"*{esc(ctx['reading'])}*", ""]
     if ctx["not_searched"]:
-        lines += [f"Not searched (long-run effects): {code(ctx['not_searched'])}.", ""]
+        lines += [f"Not searched (no estimate in the analysed models, e.g. a long-run effect without a steady state): {code(ctx['not_searched'])}.", ""]
     for vid, why in ctx["failures"].items():
         lines += [f"The analysis of variant {code(vid)} could not run: {esc(why)}.", ""]
     for t in ctx["terms"]:

@@ -172,6 +172,30 @@ def test_a_clean_panel_reaches_nothing_within_one_percent(tmp_path):
     assert "few_units_flip" in t["passed"]
 
 
+def test_a_long_run_focus_term_is_searched(tmp_path):
+    """A long-run effect as a focus term gets its three searches and its most
+    influential units like a coefficient (robustgmm.core.dropping; the exactness of
+    its refits against full re-estimation is checked in tests/core). Known truth:
+    in the planted panel the long-run effect of x is significant because of the 5
+    planted units only, so its significance is lost by dropping planted units."""
+    write_planted(tmp_path)
+    spec = spec_from_dict(model(vary={}, focus=["x[t]", "x[long-run]"]), base_dir=tmp_path)
+    result = audit(spec, jobs=1)
+    inf = result.dropping.influence
+    lr = inf[inf["term"] == "x[long-run]"]
+    assert sorted(lr["target"]) == sorted(["sign", "significance", "opposite_significant"])
+    assert result.dropping.run["not_searched"] == []
+    sig = lr[lr["target"] == "significance"].iloc[0]
+    assert bool(sig["reached"]) and set(sig["dropped_units"].split()) <= PLANTED
+    top = result.dropping.units
+    top = top[top["term"] == "x[long-run]"]
+    assert len(top) == 20 and len(PLANTED & set(top["unit"].iloc[:8])) >= 4
+    est = result.estimates
+    base = est[(est["variant"] == result.verdict["base_variant"])
+               & (est["term"] == "x[long-run]")]["std_error"].iloc[0]
+    assert np.allclose(top["change_in_se"], -top["influence"] / base, rtol=1e-12)
+
+
 def test_influence_none_writes_no_dropping_files(tmp_path):
     write_planted(tmp_path, n=120, n_planted=0, beta_rest=1.0)
     spec = spec_from_dict(model(influence="none"), base_dir=tmp_path)

@@ -141,3 +141,59 @@ def test_influence_predicts_leave_one_out(name):
     # measured 0.08 (one-step) and 0.18 (iterated) at this seed: first order, not exact
     assert np.max(np.abs(loo + infl)) / np.max(np.abs(loo)) < 0.3
 
+# ------------------------------------------------------------------ long-run effects
+LONG_RUN = ["system-two-step", "difference-one-step-robust", "system-iterated-collapsed"]
+
+
+def _long_run_of(fit_result, label):
+    t = {t.label: t for t in fit_result.long_run}[label]
+    return np.array([t.estimate, t.std_error, t.p_value])
+
+
+@pytest.mark.parametrize("name", LONG_RUN)
+def test_long_run_refit_equals_the_long_run_effect_of_a_reduced_fit(small, name):
+    """An exact refit's long-run effect (estimate, delta-method SE, p) equals the
+    long-run effect the fit reports on the panel without the units (the same
+    formula, robustgmm.core.longrun, on an independently re-estimated model)."""
+    spec = sim_spec(**SPECS[name])
+    us = unit_sums(spec, small)
+    assert {"x[long-run]", "w[long-run]"} <= set(us.term_labels)
+    for label in ("x[long-run]", "w[long-run]"):
+        r0 = us.refit([]).term(label)
+        _close([r0[0], r0[1]], _long_run_of(fit(spec, small), label)[:2])
+        dropped = [3, 17, 40, 41]
+        got = us.refit(dropped).term(label)
+        want = _long_run_of(fit(spec, reduced_panel(small, dropped)), label)
+        _close([got[0], got[1]], want[:2])
+        _close([got[3]], want[2:], rel=1e-8)
+
+
+@pytest.mark.parametrize("name", LONG_RUN)
+def test_long_run_influence_is_the_weight_derivative(small, name):
+    """``∂θ/∂w_i`` of a long-run effect (gradient times ``∂b/∂w_i``) equals a central
+    finite difference of the exact refits' long-run effect in the unit's weight
+    (Broderick, Giordano & Meager 2020, section 2: the influence is that derivative)."""
+    spec = sim_spec(**SPECS[name])
+    us = unit_sums(spec, small)
+    base, infl = us.state(())
+    eps = 1e-5
+    for label in ("x[long-run]", "w[long-run]"):
+        d = us.term_influence(label, base, infl)
+        for i in (5, 22, 59):
+            up = us.refit([i], weights=[1 + eps]).term(label)[0]
+            down = us.refit([i], weights=[1 - eps]).term(label)[0]
+            fd = (up - down) / (2 * eps)
+            assert abs(d[i] - fd) <= 1e-6 * max(abs(fd), float(np.max(np.abs(d)))), (d[i], fd)
+
+
+def test_long_run_influence_is_not_defined_without_a_steady_state(small):
+    """Where the autoregressive coefficients sum to 1 or more the long-run effect is
+    not defined (robustgmm.core.longrun): its influence is NaN, not a number."""
+    from dataclasses import replace
+    spec = sim_spec(**SPECS["system-two-step"])
+    us = unit_sums(spec, small)
+    base, infl = us.state(())
+    k = us.labels.index("y[t-1]")
+    beta = base.beta.copy()
+    beta[k] = 1.2
+    assert np.isnan(us.term_influence("x[long-run]", replace(base, beta=beta), infl)).all()
