@@ -290,3 +290,37 @@ def test_the_plan_estimates_nothing(tmp_path, capsys, monkeypatch):
     assert cli.main(["audit", str(model), "--plan"]) == 0
     out = capsys.readouterr().out
     assert "8 planned" in out, out
+
+
+_HELD = []
+
+
+def _task_holding(mb: int, pause: float, parent: int) -> int:
+    """In a worker: set it up as the runner does, keep ``mb`` MB resident (as numpy's
+    freed arrays stay in the allocator's arenas) and return the worker's pid."""
+    import numpy as np
+    parallel.in_worker(parent)
+    if mb:
+        block = np.ones(mb * 2**20 // 8)
+        _HELD.append(block)
+    time.sleep(pause)
+    return os.getpid()
+
+
+def test_a_worker_holding_its_memory_budget_is_not_restarted():
+    """loky ends a worker whose resident memory grew by more than 300 MB since its
+    first task (a leak heuristic) and starts a new process; a worker may use the
+    core's memory budget (parallel.worker_footprint_mb), so the runner's workers allow
+    that much: the same process runs on after growing by 400 MB (loky's check runs
+    after a task, at most once a second)."""
+    from joblib.externals.loky import get_reusable_executor
+    executor = get_reusable_executor(max_workers=1, reuse=False, timeout=60)
+    try:
+        parent = os.getpid()
+        first = executor.submit(_task_holding, 0, 0.0, parent).result()
+        executor.submit(_task_holding, 400, 1.2, parent).result()
+        executor.submit(_task_holding, 0, 1.2, parent).result()  # the check runs after it
+        last = executor.submit(_task_holding, 0, 0.0, parent).result()
+        assert last == first
+    finally:
+        executor.shutdown(kill_workers=True)
