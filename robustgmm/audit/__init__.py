@@ -118,7 +118,9 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     ids = dropping.scope_ids(spec, base_id, base_ok, evaluation.judged)
     tables = None
     if spec.influence != "none":
-        tables = dropping.analyse(spec, planned, panels, ids, estimates)
+        tables = dropping.analyse(spec, planned, panels, ids, estimates, jobs=jobs,
+                                  backend=backend, start_workers=start_workers,
+                                  notify=notify)
         evaluation = verdicts.evaluate(spec, variants, estimates, bounds, sim_summary,
                                        tables.influence)
     t_influence = time.perf_counter()
@@ -152,7 +154,9 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
         "alpha": spec.alpha,
         "thresholds": verdicts.threshold_values(spec),
         "counts": verdict["variants"],
-        "run": stats.to_dict(),
+        "run": {**stats.to_dict(),
+                **({f"influence_{k}": v for k, v in tables.dispatch.items()}
+                   if tables is not None else {})},
         "timings": {
             "load_seconds": t_load - t0,
             "plan_seconds": t_plan - t_load,

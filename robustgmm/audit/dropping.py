@@ -27,8 +27,10 @@ moment problem cannot be rebuilt or solved on a reduced sample (an
 ``few_units_flip``, is evaluated in :mod:`robustgmm.audit.verdicts.dropping`.
 
 Cost: one moment problem per analysed model (about one fit), then per greedy step
-one exact refit and one influence pass (:mod:`robustgmm.core.dropping`); the steps
-are shared between the terms and targets of a model.
+one exact refit and the influence on the reduced sample (:mod:`robustgmm.core.dropping`);
+the steps are shared between the terms and targets of a model. The analysed models
+are one task each, run like the audit's variants (:func:`analyse`: workers only
+when the estimated work repays their start-up, the same tables whatever ``jobs``).
 """
 from __future__ import annotations
 
@@ -58,6 +60,9 @@ class DroppingTables:
     #: variant id -> why its analysis could not run
     failures: Mapping[str, str] = field(default_factory=dict)
     run: Mapping[str, Any] = field(default_factory=dict)
+    #: how the analyses ran (``jobs``, ``backend``, lost workers): run figures that
+    #: differ with ``jobs`` while the tables do not
+    dispatch: Mapping[str, Any] = field(default_factory=dict)
 
     def frames(self) -> tuple[pd.DataFrame, ...]:
         """The frames in the order of :data:`robustgmm.contract.DROPPING_TABLES`."""
@@ -77,39 +82,109 @@ def scope_ids(spec: Spec, base_id: str | None, base_ok: bool,
     return out
 
 
+#: A greedy step (an exact refit and the influence on the reduced sample) as a share
+#: of one fit: the benchmark's "one greedy step / one fit" (workload 8; 0.17 measured
+#: in CPU time at N = 5,000), rounded up to its target.
+GREEDY_STEP_SHARE = 0.2
+#: Why a variant's analysis has no result when its worker died twice.
+LOST = "the worker process analysing this variant died twice; rerun the audit to try it again"
+
+
+def analysis_seconds(v, panel, n_terms: int, max_drop_share: float,
+                     estimates=None) -> float:
+    """The estimated sequential seconds of one variant's analysis (for the worker
+    rule of :mod:`robustgmm.audit.cost`): one fit (:meth:`cost.Estimates.group_seconds`)
+    for the moment problem and the per-unit sums, one per leave-one-period-out refit,
+    and at most ``3 · n_terms · max_drop`` greedy steps of :data:`GREEDY_STEP_SHARE` of
+    a fit each (an upper bound: a search stops when it reaches its target, and the
+    searches of a model share their steps)."""
+    from . import cost
+    estimates = cost.Estimates() if estimates is None else estimates
+    fit = estimates.group_seconds([v.spec], panel)
+    n_units = getattr(panel, "n_units", 0)
+    steps = 3 * n_terms * int(max_drop_share * n_units)
+    return fit * (1 + getattr(panel, "n_periods", 0) + GREEDY_STEP_SHARE * steps)
+
+
 def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
-            estimates: pd.DataFrame | None = None) -> DroppingTables:
-    """The dropping-units tables of the variants ``ids`` (module docstring)."""
-    from .. import core
+            estimates: pd.DataFrame | None = None, *, jobs: int | None = 1,
+            backend: str | None = None, start_workers: bool = False,
+            notify=None) -> DroppingTables:
+    """The dropping-units tables of the variants ``ids`` (module docstring).
+
+    One task per variant, run like the audit's variants (:mod:`robustgmm.audit.runner`):
+    local worker processes (at most ``jobs``) only when the estimated work
+    (:func:`analysis_seconds`) repays their start-up
+    (:func:`robustgmm.audit.cost.repays_workers`), or always with ``start_workers``;
+    any other joblib ``backend`` as asked; the panels go to a dask cluster once. Each
+    analysis runs with :data:`robustgmm.audit.parallel.BLAS_THREADS` BLAS threads and
+    the tables are assembled in the order of ``ids``, so they are identical whatever
+    ``jobs`` is."""
+    import joblib
+
+    from . import cost, parallel
     from .grid import sample_key
     by_id = {v.id: v for v in planned}
-    alpha = float(spec.alpha)
     focus = list(spec.focus_terms())
+    args = (focus, float(spec.alpha), float(spec.max_drop_share))
+    panel_of = {vid: panels[sample_key(by_id[vid].spec.sample)] for vid in ids}
+    done: dict[str, dict] = {}
+
+    def record(results):
+        for vid, out in results:
+            done[vid] = out
+
+    def lost(group):
+        for vid in group:
+            done.setdefault(vid, {"failure": LOST})
+
+    groups = [[vid] for vid in ids]
+    n_jobs = -1 if jobs is None else int(jobs)
+    deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
+    n_workers, backend_used = 1, "in-process"
+    try:
+        if groups and backend is None and not start_workers and parallel._default_is_loky():
+            allowed, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
+            if allowed > 1:
+                est = cost.Estimates()
+                seconds = sum(analysis_seconds(by_id[vid], panel_of[vid], len(focus),
+                                               args[2], est) for vid in ids)
+                go = cost.repays_workers(seconds, allowed)
+                if notify is not None:
+                    notify("dropping units: " + cost.dispatch_line(seconds, allowed, go))
+                if not go:
+                    n_jobs = 1
+        if groups:
+            parent = parallel.Parent.here()
+            with parallel._backend_context(backend, list(panels.values())) as backend_used, \
+                    parallel._blas_limit():
+                n_workers, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
+
+                def task(group, marker=None):
+                    v = by_id[group[0]]
+                    return joblib.delayed(_task)(v.id, v.spec, v.is_base, panel_of[v.id],
+                                                 *args, parent, marker)
+                if n_workers == 1:
+                    backend_used = "in-process"
+                    for g in groups:
+                        v = by_id[g[0]]
+                        record(_task(v.id, v.spec, v.is_base, panel_of[v.id], *args, parent))
+                else:
+                    parallel.run_surviving_worker_deaths(
+                        groups, task, record, lambda g: g[0] in done, lost, n_workers, deaths)
+    finally:
+        parallel.remove_memmaps()
     rows, unit_rows, path_rows, period_rows = [], [], [], []
     failures: dict[str, str] = {}
-    for vid in ids:
-        v = by_id[vid]
-        panel = panels[sample_key(v.spec.sample)]
-        try:
-            sums = core.unit_sums(v.spec, panel)
-            search = core.DropSearch(sums, alpha, spec.max_drop_share)
-            terms = searchable_terms(search, focus)
-            for term in terms:
-                for target in DropTarget:
-                    res = search.run(term, target)
-                    rows.append(_result_row(vid, res, panel))
-                    path_rows.extend({"variant": vid, "term": term, "target": str(target),
-                                      "dropped": p.dropped, "estimate": p.estimate,
-                                      "std_error": p.std_error, "p_value": p.p_value}
-                                     for p in res.path)
-            if v.is_base:
-                unit_rows.extend(_top_units(search, terms, panel))
-        except (EstimationError, np.linalg.LinAlgError) as exc:
-            # a reduced sample the moment problem cannot solve is a property of the
-            # data, like a failing variant: recorded, and the audit goes on
-            failures[vid] = f"{type(exc).__name__}: " + " ".join(str(exc).split())
+    for vid in ids:  # plan order, whatever order the tasks finished in
+        out = done[vid]
+        if "failure" in out:
+            failures[vid] = out["failure"]
             continue
-        period_rows.extend(_periods(v, panel, focus))
+        rows += out["rows"]
+        unit_rows += out["units"]
+        path_rows += out["path"]
+        period_rows += out["periods"]
     frames = (pd.DataFrame(r, columns=t.names()) for r, t in zip(
         (rows, unit_rows, path_rows, period_rows), contract.DROPPING_TABLES))
     influence, units, path, periods = frames
@@ -121,7 +196,51 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     run = {"scope": str(spec.influence), "max_drop_share": float(spec.max_drop_share),
            "variants": list(ids), "failures": dict(failures),
            "not_searched": [t for t in focus if not (influence["term"] == t).any()]}
-    return DroppingTables(influence, units, path, periods, failures, run)
+    dispatch = {"jobs": n_workers, "backend": backend_used,
+                **{k: v for k, v in deaths.items() if v}}
+    return DroppingTables(influence, units, path, periods, failures, run, dispatch)
+
+
+def _task(vid, vspec, is_base, panel, focus, alpha, max_drop_share, parent,
+          marker=None) -> list:
+    """One variant's analysis, in this process or a worker: ``[(vid, tables' rows)]``
+    or ``[(vid, {"failure": reason})]``."""
+    from . import parallel
+    if marker is not None:  # "this task has started" (run_surviving_worker_deaths)
+        try:
+            open(marker, "a").close()
+        except OSError:
+            pass
+    parallel.in_worker(parent)
+    return [(vid, analyse_variant(vid, vspec, is_base, panel, focus, alpha, max_drop_share))]
+
+
+def analyse_variant(vid, vspec, is_base, panel, focus, alpha, max_drop_share) -> dict:
+    """The rows of the dropping tables of one variant (``rows``, ``units``, ``path``,
+    ``periods``), or ``{"failure": reason}`` when its moment problem cannot be solved
+    on a reduced sample."""
+    from .. import core
+    rows, unit_rows, path_rows = [], [], []
+    try:
+        sums = core.unit_sums(vspec, panel)
+        search = core.DropSearch(sums, alpha, max_drop_share)
+        terms = searchable_terms(search, focus)
+        for term in terms:
+            for target in DropTarget:
+                res = search.run(term, target)
+                rows.append(_result_row(vid, res, panel))
+                path_rows.extend({"variant": vid, "term": term, "target": str(target),
+                                  "dropped": p.dropped, "estimate": p.estimate,
+                                  "std_error": p.std_error, "p_value": p.p_value}
+                                 for p in res.path)
+        if is_base:
+            unit_rows.extend(_top_units(search, terms, panel))
+    except (EstimationError, np.linalg.LinAlgError) as exc:
+        # a reduced sample the moment problem cannot solve is a property of the
+        # data, like a failing variant: recorded, and the audit goes on
+        return {"failure": f"{type(exc).__name__}: " + " ".join(str(exc).split())}
+    return {"rows": rows, "units": unit_rows, "path": path_rows,
+            "periods": _periods(vid, vspec, panel, focus)}
 
 
 def searchable_terms(search, focus) -> list[str]:
@@ -173,16 +292,16 @@ def without_period(panel, position: int):
     return replace(panel, values=values, data_hash=f"{panel.data_hash}-without-{position}")
 
 
-def _periods(v, panel, focus) -> list[dict]:
-    """Leave-one-period-out refits of variant ``v`` (one :func:`core.fit` each)."""
+def _periods(vid, vspec, panel, focus) -> list[dict]:
+    """Leave-one-period-out refits of variant ``vid`` (one :func:`core.fit` each)."""
     from .. import core
     out = []
     for pos, period in enumerate(np.asarray(panel.periods)):
         try:
-            fit = core.fit(v.spec, without_period(panel, pos))
+            fit = core.fit(vspec, without_period(panel, pos))
         except EstimationError as exc:
             reason = " ".join(str(exc).split())
-            out.extend({"variant": v.id, "period": int(period), "term": t,
+            out.extend({"variant": vid, "period": int(period), "term": t,
                         "estimate": np.nan, "std_error": np.nan, "p_value": np.nan,
                         "reason": reason} for t in focus)
             continue
@@ -191,7 +310,7 @@ def _periods(v, panel, focus) -> list[dict]:
             est = terms.get(t)
             if est is None:
                 continue
-            out.append({"variant": v.id, "period": int(period), "term": t,
+            out.append({"variant": vid, "period": int(period), "term": t,
                         "estimate": est.estimate, "std_error": est.std_error,
                         "p_value": est.p_value, "reason": ""})
     return out
