@@ -107,23 +107,22 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     t_sim = time.perf_counter()
     variants, estimates, bounds = _tables(spec, planned, outcomes)
     sim_summary = None if simulation is None else simulation.summary
-    evaluation = verdicts.evaluate(spec, variants, estimates, bounds,  # every rule, once
-                                   sim_summary)
+    # the variant-level rules name the judged variants the dropping-units analysis
+    # covers; the term rules (few_units_flip among them) then read its tables: every
+    # rule evaluated once
+    classified = verdicts.classify(spec, variants, estimates, bounds, sim_summary)
     t_verdict = time.perf_counter()
-    # dropping units needs the judged variants, and few_units_flip needs its tables:
-    # the second evaluation is the one written (the first only names the variants)
     base_row = variants[variants["is_base"].astype(bool)]
     base_id = str(base_row["variant"].iloc[0]) if len(base_row) else None
     base_ok = bool(len(base_row)) and str(base_row["status"].iloc[0]) == runner.OK
-    ids = dropping.scope_ids(spec, base_id, base_ok, evaluation.judged)
+    ids = dropping.scope_ids(spec, base_id, base_ok, classified.judged)
     tables = None
     if spec.influence != "none":
         tables = dropping.analyse(spec, planned, panels, ids, estimates, jobs=jobs,
                                   backend=backend, start_workers=start_workers,
                                   notify=notify)
-        evaluation = verdicts.evaluate(spec, variants, estimates, bounds, sim_summary,
-                                       tables.influence)
     t_influence = time.perf_counter()
+    evaluation = verdicts.conclude(classified, None if tables is None else tables.influence)
     verdict = evaluation.verdict.to_dict()
     extra = evaluation.columns
     variants = contract.frame_in_order(

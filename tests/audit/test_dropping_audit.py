@@ -148,6 +148,25 @@ def test_only_variants_flipping_is_a_caution(planted):
     assert "in the base model" not in t.reason  # the reason no longer quotes the base set
 
 
+def test_the_audit_verdict_is_the_one_evaluation_of_every_rule(planted):
+    """The audit classifies the variants once (to name the judged variants the
+    analysis covers) and concludes the terms once with the influence tables: the
+    same verdict as evaluating every rule at once on the finished tables, and the
+    judged variants are the ones analysed."""
+    import json
+    from robustgmm.audit import verdicts
+    _, result = planted
+    whole = verdicts.evaluate(result.spec, result.variants, result.estimates, result.bounds,
+                              influence=result.dropping.influence)
+    assert (json.dumps(whole.verdict.to_dict(), sort_keys=True, default=str)
+            == json.dumps(result.verdict, sort_keys=True, default=str))
+    classified = verdicts.classify(result.spec, result.variants, result.estimates,
+                                   result.bounds)
+    analysed = result.dropping.run["variants"]  # influence = "all": base, then judged
+    assert analysed[0] == result.verdict["base_variant"] and len(analysed) >= 2
+    assert set(analysed) == set(classified.judged) | {analysed[0]}
+
+
 def test_a_listed_dropping_file_that_is_missing_is_one_line(planted, tmp_path):
     import shutil
     from robustgmm.report import read_audit_folder

@@ -118,7 +118,7 @@ from ..records import (AuditVerdict, BaseEstimate, Driver, Evaluation, Firing, I
                        Rule, TermVerdict)
 from .rules import BASE_ANCHORED, COMBINATION, DISCLAIMER, DUPLICATE_TOLERANCE, EFFECT_CAUTION, EFFECT_EXCLUDE, EFFECT_FRAGILE, EFFECT_INCONCLUSIVE, FRAGILE, HANSEN_NEAR_ONE, INCONCLUSIVE, MIN_ACCEPTABLE, REJECTION_RULES, ROBUST, RULES, RULE_BY_ID, VARIANT_RULES, _fired, p_text, threshold_values, value_text  # noqa: F401
 from .flags import _column, _is_system, find_duplicates, variant_flags  # noqa: F401
-from .evaluation import _setting_columns, evaluate, judge, variant_columns  # noqa: F401
+from .evaluation import Classified, _setting_columns, classify, conclude, evaluate, judge, variant_columns  # noqa: F401
 from .context import _Context  # noqa: F401
 from .base import _SECTION, _base_statement, _missing_tests, _toml_value, closest_acceptable, model_file_lines  # noqa: F401
 from .terms import _drivers, _influence, _judge_term, _key_driver, _of, _reason, _share_outside  # noqa: F401

@@ -2,7 +2,7 @@
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import Any, Mapping, Sequence
 
 import numpy as np
@@ -25,6 +25,22 @@ from .caution import _diagnostics, _model_flags
 # ---------------------------------------------------------------------------
 # the evaluation
 # ---------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Classified:
+    """The variant-level part of the evaluation (:func:`classify`): each variant's
+    evidence, duplicates and flags, the judged variants, the base model and every
+    verdict field but the focus terms. :func:`conclude` adds the terms' verdicts, so
+    the audit can name the judged variants to the dropping-units analysis before the
+    term rules read its tables, each rule still evaluated once."""
+
+    ctx: _Context
+    columns: pd.DataFrame
+    #: the judged variants (acceptable, not duplicates; plan order)
+    judged: tuple[str, ...]
+    #: the :class:`AuditVerdict` fields other than ``terms``
+    verdict_fields: Mapping[str, Any]
+
+
 def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
              bounds: pd.DataFrame | None = None,
              simulation: pd.DataFrame | None = None,
@@ -39,7 +55,15 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
     ``simulation``: the rows of simulation.csv, when the audit ran a Monte Carlo
     (the rule ``unreliable_at_this_size``); ``influence``: the rows of influence.csv,
     when the audit ran the dropping-units analysis (the rule ``few_units_flip``).
+    The same as :func:`conclude` of :func:`classify`.
     """
+    return conclude(classify(spec, variants, estimates, bounds, simulation), influence)
+
+
+def classify(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
+             bounds: pd.DataFrame | None = None,
+             simulation: pd.DataFrame | None = None) -> Classified:
+    """The variant-level rules (arguments as in :func:`evaluate`)."""
     th = threshold_values(spec)
     alpha = float(spec.alpha)
     variants = variants.reset_index(drop=True)
@@ -83,9 +107,7 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
                    estimates=estimates, bounds=bounds, base_id=base_id, base_pos=base_pos,
                    base_ok=base_ok, base_acceptable=base_acceptable, statement=statement,
                    judged_ids=judged_ids, ok_ids=ok_ids, settings=settings,
-                   evidence=dict(zip(ids, evidence)), duplicate_of=dict(zip(ids, duplicate_of)),
-                   influence=influence)
-    terms = tuple(_judge_term(term, ctx) for term in spec.focus_terms())
+                   evidence=dict(zip(ids, evidence)), duplicate_of=dict(zip(ids, duplicate_of)))
     counts = {
         "total": int(len(variants)),
         "ok": int(variants["status"].astype(str).eq("ok").sum()),
@@ -99,14 +121,23 @@ def evaluate(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
         "judged": int(len(judged_ids)),
         "count_untestable": bool(th["count_untestable"]),
     }
-    verdict = AuditVerdict(
+    fields = dict(
         alpha=alpha, base_variant=base_id, base_acceptable=base_acceptable,
         base_evidence=base_evidence, base_statement=statement, closest_acceptable=closest,
         thresholds=th, variants=counts, diagnostics=_diagnostics(variants, flags, th),
-        terms=terms, model=_model_flags(variants, flags, th, base_pos, ids, unreliable),
+        model=_model_flags(variants, flags, th, base_pos, ids, unreliable),
         rules=RULES, combination=COMBINATION, disclaimer=DISCLAIMER)
-    return Evaluation(columns=columns, verdict=verdict,
-                      judged=tuple(i for i in ids if i in judged_ids))
+    return Classified(ctx=ctx, columns=columns,
+                      judged=tuple(i for i in ids if i in judged_ids), verdict_fields=fields)
+
+
+def conclude(classified: Classified, influence: pd.DataFrame | None = None) -> Evaluation:
+    """The focus terms' verdicts on top of :func:`classify` (``influence``: the rows of
+    influence.csv for the rule ``few_units_flip``, None without the analysis)."""
+    ctx = replace(classified.ctx, influence=influence)
+    terms = tuple(_judge_term(term, ctx) for term in ctx.spec.focus_terms())
+    verdict = AuditVerdict(terms=terms, **classified.verdict_fields)
+    return Evaluation(columns=classified.columns, verdict=verdict, judged=classified.judged)
 
 
 def judge(spec: Spec, variants: pd.DataFrame, estimates: pd.DataFrame,
