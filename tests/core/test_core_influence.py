@@ -141,6 +141,7 @@ def test_influence_predicts_leave_one_out(name):
     # measured 0.08 (one-step) and 0.18 (iterated) at this seed: first order, not exact
     assert np.max(np.abs(loo + infl)) / np.max(np.abs(loo)) < 0.3
 
+
 # ------------------------------------------------------------------ long-run effects
 LONG_RUN = ["system-two-step", "difference-one-step-robust", "system-iterated-collapsed"]
 
