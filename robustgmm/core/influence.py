@@ -96,11 +96,12 @@ class _UnitArrays:
     first-difference neighbours); without (less memory), ``Z_i'y_i`` and
     ``Z_i'X_i`` come from the kernel :func:`.moments.unit_moments_t`."""
 
-    def __init__(self, prob: GMMProblem, with_zhz: bool = False):
+    def __init__(self, prob: GMMProblem, with_zhz: bool = False, with_ssr: bool = True):
         self.prob = prob
         N, L, K = prob.design.panel.n_units, prob.L, prob.K
         self.zy, self.zx, self.zxl = np.empty((N, L)), np.empty((N, L, K)), np.empty((L, N, K))
-        self.yy, self.xy, self.xx = np.empty(N), np.empty((N, K)), np.empty((N, K, K))
+        self.yy, self.xy, self.xx = ((np.empty(N), np.empty((N, K)), np.empty((N, K, K)))
+                                     if with_ssr else (None, None, None))
         self.n_t = np.empty(N)
         self.zhz = np.empty((N, L, L)) if with_zhz else None
         self.lo = 0
@@ -144,11 +145,12 @@ class _UnitArrays:
                 gx = unit_moments_t(pc, lay, rows_x, prob.scatter, buf, plan=prob.moment_plan)
                 self.zx[lo:hi, :, j] = gx.T
         self.zxl[:, lo:hi] = self.zx[lo:hi].transpose(1, 0, 2)
-        yt, xt = pc.y[0], pc.x[0][:, :, prob.keep_x]
-        xtt = xt.transpose(0, 2, 1)
-        self.yy[lo:hi] = (yt * yt).sum(axis=1)
-        np.matmul(xtt, yt[:, :, None], out=self.xy[lo:hi, :, None])
-        np.matmul(xtt, xt, out=self.xx[lo:hi])
+        if self.yy is not None:
+            yt, xt = pc.y[0], pc.x[0][:, :, prob.keep_x]
+            xtt = xt.transpose(0, 2, 1)
+            self.yy[lo:hi] = (yt * yt).sum(axis=1)
+            np.matmul(xtt, yt[:, :, None], out=self.xy[lo:hi, :, None])
+            np.matmul(xtt, xt, out=self.xx[lo:hi])
         self.n_t[lo:hi] = pc.rows[0].sum(axis=1)
 
 
@@ -228,7 +230,10 @@ class UnitSums:
         N, L, R = prob.design.panel.n_units, prob.L, len(prob.engine.layout.block_slot)
         if store_zhz is None:  # the module docstring's memory rule
             store_zhz = 8 * N * L * (L + R) <= prob.source.budget // 4
-        task = _UnitArrays(prob, with_zhz=store_zhz)
+        # the sum of squared residuals only feeds σ², which only the conventional
+        # one-step variance reads: its per-unit sums are skipped otherwise
+        with_ssr = covariance.estimator(self.steps, self.errors) is covariance.ConventionalOneStep
+        task = _UnitArrays(prob, with_zhz=store_zhz, with_ssr=with_ssr)
         prob.engine.run_pass([task])
         self.zy, self.zx, self.yy, self.xy, self.xx, self.n_t = (
             task.zy, task.zx, task.yy, task.xy, task.xx, task.n_t)
@@ -314,6 +319,8 @@ class UnitSums:
 
         def moments_at(beta):
             g = g_at(beta)
+            if self.xx is None:  # not needed by this model's variance (σ² unused)
+                return (g * w[:, None]).T @ g, math.nan
             xxb = (self.xx.reshape(-1, self.K) @ beta).reshape(self.N, self.K)
             ssr = float(w @ (self.yy - 2 * self.xy @ beta + xxb @ beta))
             return (g * w[:, None]).T @ g, ssr
