@@ -37,8 +37,8 @@ Cost of the per-unit sums: one pass over the chunks. When every unit's
 (``R`` rows, one per instrument block, × ``L`` kept columns) and ``Z_i'y_i``,
 ``Z_i'X_i``, ``Z_i'HZ_i`` are batched products, ``O(n·R·L·(K + L))``; otherwise the
 per-unit ``Z_i'y_i``, ``Z_i'X_i`` come from the kernel of
-:func:`.moments.unit_moments_t` (``O(n·W·K)``). Memory: ``N·L·K`` numbers (twice:
-also as one ``(L, N·K)`` matrix for ``v'Z_i'X_i``) plus ``N·L²`` for the
+:func:`.moments.unit_moments_t` (``O(n·W·K)``). Memory: ``N·L·K`` numbers (laid
+out as ``(L, N, K)``, so that ``v'Z_i'X_i`` is one matrix-vector product) plus ``N·L²`` for the
 ``Z_i'HZ_i``. These are kept only when ``8·N·L·(L + R)`` bytes (with the dense rows
 of the chunks) fit in a quarter of the core's memory budget
 (:func:`.engine.memory_budget`, ``ROBUSTGMM_MEMORY_MB``: half of it holds the
@@ -57,7 +57,7 @@ computed once per estimate and shared by ``S``, ``T`` and the influence.
 **One greedy step** (:meth:`UnitSums.state`: a refit and the influence of every unit
 on it) is therefore ``O(N·L·(K + L) + L³)`` with no pass over the data: the forms
 ``(AQ)'Z_i'HZ_i a₁`` are one batched product of the stored ``Z_i'HZ_i`` with ``a₁``
-(``O(N·L²)``); measured 0.17 of a fit (CPU time) at N = 5,000 (``robustgmm bench``,
+(``O(N·L²)``); measured 0.16-0.17 of a fit (CPU time) at N = 5,000 (``robustgmm bench``,
 workload 8). The estimators and variances are those of the fit itself
 (:func:`.family._solution_stage`, :mod:`.covariance`), so a refit equals a fit of
 the panel without ``D`` when the reduced panel keeps the same instrument and
@@ -99,7 +99,8 @@ class _UnitArrays:
     def __init__(self, prob: GMMProblem, with_zhz: bool = False, with_ssr: bool = True):
         self.prob = prob
         N, L, K = prob.design.panel.n_units, prob.L, prob.K
-        self.zy, self.zx, self.zxl = np.empty((N, L)), np.empty((N, L, K)), np.empty((L, N, K))
+        # Z_i'X_i is stored as (L, N, K) only (UnitSums.zx is its (N, L, K) view)
+        self.zy, self.zxl = np.empty((N, L)), np.empty((L, N, K))
         self.yy, self.xy, self.xx = ((np.empty(N), np.empty((N, K)), np.empty((N, K, K)))
                                      if with_ssr else (None, None, None))
         self.n_t = np.empty(N)
@@ -133,7 +134,7 @@ class _UnitArrays:
             y = np.concatenate(pc.y, axis=1)[:, slots]
             x = np.concatenate(pc.x, axis=1)[:, slots[:, None], prob.keep_x[None, :]]
             np.matmul(ZT, y[:, :, None], out=self.zy[lo:hi, :, None])
-            np.matmul(ZT, x, out=self.zx[lo:hi])
+            np.matmul(ZT, x, out=self.zxl[:, lo:hi].transpose(1, 0, 2))
             np.matmul(ZT, np.matmul(self.H, Z), out=self.zhz[lo:hi])
         else:
             buf = ctx.scratch()
@@ -143,8 +144,7 @@ class _UnitArrays:
             for j, col in enumerate(prob.keep_x):
                 rows_x = np.concatenate([x[:, :, col].T for x in pc.x])
                 gx = unit_moments_t(pc, lay, rows_x, prob.scatter, buf, plan=prob.moment_plan)
-                self.zx[lo:hi, :, j] = gx.T
-        self.zxl[:, lo:hi] = self.zx[lo:hi].transpose(1, 0, 2)
+                self.zxl[:, lo:hi, j] = gx
         if self.yy is not None:
             yt, xt = pc.y[0], pc.x[0][:, :, prob.keep_x]
             xtt = xt.transpose(0, 2, 1)
@@ -235,13 +235,13 @@ class UnitSums:
         with_ssr = covariance.estimator(self.steps, self.errors) is covariance.ConventionalOneStep
         task = _UnitArrays(prob, with_zhz=store_zhz, with_ssr=with_ssr)
         prob.engine.run_pass([task])
-        self.zy, self.zx, self.yy, self.xy, self.xx, self.n_t = (
-            task.zy, task.zx, task.yy, task.xy, task.xx, task.n_t)
-        self.N, self.L, self.K = self.zx.shape
-        # Z_i'X_i of every unit as one (L, N·K) matrix, so that v'Z_i'X_i for all units
-        # is one matrix-vector product over long rows (measured about 2× faster than
-        # a batched product over N small matrices or over (N·K, L))
-        self._zxl = task.zxl.reshape(self.L, -1)
+        self.zy, self.yy, self.xy, self.xx, self.n_t = (
+            task.zy, task.yy, task.xy, task.xx, task.n_t)
+        # Z_i'X_i of every unit stored as (L, N, K): v'Z_i'X_i for all units is then one
+        # matrix-vector product over long rows (measured about 2× faster than a batched
+        # product over N small matrices), Z_i'X_i b one over (L·N, K)
+        self._zxl = task.zxl
+        self.L, self.N, self.K = self._zxl.shape
         #: every unit's Z_i'HZ_i (N, L, L) when stored, else None (forms by a pass)
         self.zhz_units = task.zhz
         self.active = prob.design.unit_has_rows.copy()
@@ -257,13 +257,22 @@ class UnitSums:
         self._zhz: dict[int, np.ndarray] = {}
 
     # ----------------------------------------------------------- unit sums
+    @property
+    def zx(self) -> np.ndarray:
+        """Every unit's ``Z_i'X_i`` (N, L, K), a view of the stored (L, N, K) array."""
+        return self._zxl.transpose(1, 0, 2)
+
     def zx_times(self, b: np.ndarray) -> np.ndarray:
         """``Z_i'X_i b`` of every unit (N, L)."""
-        return (self.zx.reshape(-1, self.K) @ b).reshape(self.N, self.L)
+        return (self._zxl.reshape(-1, self.K) @ b).reshape(self.L, self.N).T
 
     def times_zx(self, v: np.ndarray) -> np.ndarray:
         """``v'Z_i'X_i`` of every unit (N, K)."""
-        return (v @ self._zxl).reshape(self.N, self.K)
+        return (v @ self._zxl.reshape(self.L, -1)).reshape(self.N, self.K)
+
+    def weighted_zx(self, c: np.ndarray) -> np.ndarray:
+        """``Σ_i c_i Z_i'X_i`` (L, K)."""
+        return np.matmul(c, self._zxl)
 
     def unit_zhz(self, i: int) -> np.ndarray:
         """``Z_i'HZ_i`` of unit ``i`` on the kept instrument columns (one-unit chunk)."""
@@ -289,7 +298,7 @@ class UnitSums:
             M = prob.zhz.copy()
             for i, c in zip(dropped, lost):
                 M -= c * self.unit_zhz(int(i))
-        Q = prob.zx - np.einsum("n,nlk->lk", lost, self.zx[dropped])
+        Q = prob.zx - np.matmul(lost, self._zxl[:, dropped])
         q = prob.zy - lost @ self.zy[dropped]
         return M, Q, q
 
@@ -347,7 +356,7 @@ class UnitSums:
         g = red.g_at(beta_prev) * red.w[:, None]
         out = []
         for v in vectors:
-            out.append(np.tensordot(g @ v, self.zx, axes=(0, 0)) + g.T @ red.times_zx(v))
+            out.append(self.weighted_zx(g @ v) + g.T @ red.times_zx(v))
         return out
 
     def _solve(self, red):
