@@ -18,7 +18,8 @@ mean the same on a fast or a slow machine (issue 5 of the project):
    transform) on N = 2,000, T = 10: shared work (:func:`robustgmm.core.fit_family`
    over :func:`robustgmm.core.share_key` groups) and the audit itself against the
    same variants fitted one by one (target ≤ 0.6), and ``jobs=2`` against
-   ``jobs=1`` (target ≤ 0.75 on two cores).
+   ``jobs=1`` (target ≤ 0.75 on two cores); the audit without the dropping-units
+   analysis (``influence = "none"``), which the one-by-one side does not do.
 4. **Reference library.** Our two-step fit against linearmodels ``IVGMM`` with a
    weight clustered by unit on the identical stacked forward-orthogonal-deviations
    problem (target ≤ 0.5). Our time includes building the transformed rows and
@@ -37,7 +38,9 @@ mean the same on a fast or a slow machine (issue 5 of the project):
 8. **Dropping units.** At N = 5,000 (T = 10, collapsed two-step system GMM): the
    per-unit sums and the influence of every unit on every coefficient against one
    fit (target ≤ 2), and one greedy step (an exact refit without the units dropped
-   so far and the influence on the reduced sample) against one fit (target ≤ 0.2).
+   so far and the influence on the reduced sample) against one fit (target ≤ 0.2);
+   and a 48-variant audit (N = 400, T = 10, the grid of workload 5) with the base
+   model's dropping-units analysis against the same audit without it (target ≤ 2).
 
 Timings are the best of a few repeats (``time.perf_counter``), interleaved between
 the two sides of a ratio so that load from other processes hits both alike. The
@@ -444,7 +447,10 @@ def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
     out.rows.append((f"shared work (fit_family over {groups} share_key groups)",
                      _fmt_s(t_family)))
     out.ratios.append(("core shared work / one by one", t_family / t_single, 0.6, None))
-    spec = _audit_base_spec(base)
+    # the variants' throughput: the one-by-one side fits the variants only, so the
+    # audit runs without the dropping-units searches (their cost is workload 8's and
+    # part of workload 6's command-line audits)
+    spec = dataclasses.replace(_audit_base_spec(base), influence="none")
     with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
         from .simulate import simulate_panel
         path = Path(tmp) / "panel.parquet"
@@ -469,13 +475,12 @@ def audit_throughput(sizes: Sizes, echo=print) -> Outcome:
     out.rows.append(("of which estimating the variants, jobs = 1 / 2 (manifest run_seconds)",
                      f"{_fmt_s(phases[1].get('run_seconds', math.nan))} / "
                      f"{_fmt_s(phases[2].get('run_seconds', math.nan))}"))
-    out.rows.append(("of which dropping units, jobs = 1 / 2 (manifest influence_seconds)",
-                     f"{_fmt_s(phases[1].get('influence_seconds', math.nan))} / "
-                     f"{_fmt_s(phases[2].get('influence_seconds', math.nan))}"))
     out.ratios.append(("audit (jobs = 1) / one-by-one fits", t_jobs[1] / t_single, 0.6, None))
     out.ratios.append(("audit jobs = 2 / jobs = 1", t_jobs[2] / t_jobs[1], 0.75, None))
     out.notes.append("the audit also reads the data file, plans the grid and estimates the "
                      "OLS/within bounds of every variant; the one-by-one sum is fits only")
+    out.notes.append("the audit runs with [audit] influence = \"none\": the one-by-one side "
+                     "has no dropping-units searches (workload 8 measures them)")
     return out
 
 
@@ -897,6 +902,30 @@ def dropping(sizes: Sizes, echo=print) -> Outcome:
     ]
     out.ratios.append(("influence / one fit", t_infl / t_fit, 2.0, None))
     out.ratios.append(("one greedy step / one fit", t_step / t_fit, 0.2, None))
+    # issue 16: a 48-variant audit (the Monte Carlo workload's grid) with the default
+    # dropping-units analysis of the base model against the same audit without it
+    from .audit import audit as run_audit
+    from .simulate import simulate_panel
+    from .spec import Vary
+    n_a, t_a = sizes.sim_units, sizes.sim_periods
+    grid_spec = dataclasses.replace(_spec(form="collapsed", last_lag=4),
+                                    vary=Vary(**{k: tuple(v) for k, v in SIM_VARY.items()}))
+    audits = {"base": math.inf, "none": math.inf}
+    with tempfile.TemporaryDirectory(prefix="robustgmm-bench-") as tmp:
+        path = Path(tmp) / "panel.parquet"
+        simulate_panel(n_a, t_a, seed=43).to_parquet(path, index=False)
+        grid_spec = dataclasses.replace(grid_spec, data_file=path, source=str(path))
+        for _ in range(max(2, sizes.repeats)):
+            for scope in ("base", "none"):
+                w0 = time.perf_counter()
+                run_audit(dataclasses.replace(grid_spec, influence=scope), jobs=1,
+                          cache_dir=None, progress=False)
+                audits[scope] = min(audits[scope], time.perf_counter() - w0)
+    out.rows.append((f"48-variant audit, N = {n_a:,}, T = {t_a}, jobs = 1: with the base "
+                     "model's dropping units / without", f"{_fmt_s(audits['base'])} / "
+                     f"{_fmt_s(audits['none'])}"))
+    out.ratios.append(("48-variant audit with dropping units / without",
+                       audits["base"] / audits["none"], 2.0, None))
     out.notes.append(f"in CPU time: influence / one fit {cpu['infl'] / cpu['fit']:.2f}, "
                      f"one greedy step / one fit {cpu['step'] / cpu['fit']:.3f}")
     out.notes.append("the influence figure includes building the moment problem (one "

@@ -28,7 +28,8 @@ def test_bench_quick_writes_every_workload(tmp_path, monkeypatch, capsys):
     for expected in ("extra fit time / extra dense Z'Z time", "peak memory at N = 160 / 3 GB",
                      "core shared work / one by one", "audit jobs = 2 / jobs = 1",
                      "robustgmm / linearmodels", "one replication / audit estimation time",
-                     "replications jobs = 2 / jobs = 1"):
+                     "replications jobs = 2 / jobs = 1", "one greedy step / one fit",
+                     "48-variant audit with dropping units / without"):
         assert expected in names, names
     for r in rows:  # a number (nan only where tiny timings drown in noise)
         value = r.split("|")[3].strip()
