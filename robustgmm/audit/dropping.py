@@ -28,9 +28,10 @@ moment problem cannot be rebuilt or solved on a reduced sample (an
 
 Cost: one moment problem per analysed model (about one fit), then per greedy step
 one exact refit and the influence on the reduced sample (:mod:`robustgmm.core.dropping`);
-the steps are shared between the terms and targets of a model. The analysed models
-are one task each, run like the audit's variants (:func:`analyse`: workers only
-when the estimated work repays their start-up, the same tables whatever ``jobs``).
+the steps are shared between the targets of a term. Each analysed model is one task
+per focus term and one for its leave-one-period-out refits (:func:`tasks_of`), run
+like the audit's variants (:func:`analyse`: workers only when the estimated work
+repays their start-up, the same tables whatever ``jobs``).
 """
 from __future__ import annotations
 
@@ -90,20 +91,35 @@ GREEDY_STEP_SHARE = 0.2
 LOST = "the worker process analysing this variant died twice; rerun the audit to try it again"
 
 
-def analysis_seconds(v, panel, n_terms: int, max_drop_share: float,
-                     estimates=None) -> float:
-    """The estimated sequential seconds of one variant's analysis (for the worker
-    rule of :mod:`robustgmm.audit.cost`): one fit (:meth:`cost.Estimates.group_seconds`)
-    for the moment problem and the per-unit sums, one per leave-one-period-out refit,
-    and at most ``3 · n_terms · max_drop`` greedy steps of :data:`GREEDY_STEP_SHARE` of
-    a fit each (an upper bound: a search stops when it reaches its target, and the
-    searches of a model share their steps)."""
+def task_seconds(v, panel, key, max_drop_share: float, estimates=None) -> float:
+    """The estimated seconds of one task (:func:`tasks_of`), in fits of the variant
+    (:meth:`cost.Estimates.group_seconds`): a term's searches one fit for the moment
+    problem and the per-unit sums plus at most ``3 · max_drop`` greedy steps of
+    :data:`GREEDY_STEP_SHARE` of a fit each (its greedy path of at most ``max_drop``
+    steps per target: an upper bound, as a search stops when it reaches its target
+    and the targets share their steps); the leave-one-period-out refits one fit per
+    period."""
     from . import cost
     estimates = cost.Estimates() if estimates is None else estimates
     fit = estimates.group_seconds([v.spec], panel)
-    n_units = getattr(panel, "n_units", 0)
-    steps = 3 * n_terms * int(max_drop_share * n_units)
-    return fit * (1 + getattr(panel, "n_periods", 0) + GREEDY_STEP_SHARE * steps)
+    if key[1] == PERIODS:
+        return fit * getattr(panel, "n_periods", 0)
+    steps = 3 * int(max_drop_share * getattr(panel, "n_units", 0))
+    return fit * (1 + GREEDY_STEP_SHARE * steps)
+
+
+#: The kinds of task of a variant's analysis (:func:`tasks_of`).
+TERM, PERIODS = "term", "periods"
+
+
+def tasks_of(vid: str, focus: Sequence[str]) -> list[tuple[str, str, str]]:
+    """The tasks of variant ``vid``'s analysis: ``(vid, "term", term)`` per focus term
+    (its three targets in one task: they follow the same greedy path, the unit of
+    largest helpful first-order change, whose refits the task's
+    :class:`~robustgmm.core.DropSearch` shares) and ``(vid, "periods", "")``, the
+    leave-one-period-out refits. The searches of different terms share no path, so
+    they run side by side; each task builds its own per-unit sums (about one fit)."""
+    return [(vid, TERM, t) for t in focus] + [(vid, PERIODS, "")]
 
 
 def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
@@ -112,43 +128,54 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
             notify=None) -> DroppingTables:
     """The dropping-units tables of the variants ``ids`` (module docstring).
 
-    One task per variant, run like the audit's variants (:mod:`robustgmm.audit.runner`):
-    local worker processes (at most ``jobs``) only when the estimated work
-    (:func:`analysis_seconds`) repays their start-up
+    One task per variant and focus term and one per variant's leave-one-period-out
+    refits (:func:`tasks_of`), run like the audit's variants
+    (:mod:`robustgmm.audit.runner`): local worker processes (at most ``jobs``) only
+    when the estimated work (:func:`task_seconds`) repays their start-up
     (:func:`robustgmm.audit.cost.repays_workers`), or always with ``start_workers``;
     any other joblib ``backend`` as asked; the panels go to a dask cluster once. Each
-    analysis runs with :data:`robustgmm.audit.parallel.BLAS_THREADS` BLAS threads and
-    the tables are assembled in the order of ``ids``, so they are identical whatever
-    ``jobs`` is."""
+    task runs with :data:`robustgmm.audit.parallel.BLAS_THREADS` BLAS threads, its
+    refits do not depend on which refits its search holds
+    (:class:`robustgmm.core.DropSearch`), and the tables are assembled in the order of
+    ``ids``, terms and targets, so they are identical whatever ``jobs`` is."""
     import joblib
 
     from . import cost, parallel
     from .grid import sample_key
     by_id = {v.id: v for v in planned}
     focus = list(spec.focus_terms())
-    args = (focus, float(spec.alpha), float(spec.max_drop_share))
+    args = (float(spec.alpha), float(spec.max_drop_share))
     panel_of = {vid: panels[sample_key(by_id[vid].spec.sample)] for vid in ids}
-    done: dict[str, dict] = {}
+    done: dict[tuple, dict] = {}
 
     def record(results):
-        for vid, out in results:
-            done[vid] = out
+        for key, out in results:
+            done[key] = out
 
     def lost(group):
-        for vid in group:
-            done.setdefault(vid, {"failure": LOST})
+        for key in group:
+            done.setdefault(key, {"failure": LOST})
 
-    groups = [[vid] for vid in ids]
+    keys = {vid: tasks_of(vid, focus) for vid in ids}
+    # the longest tasks first (the terms' searches of every variant, then the
+    # periods), so that no worker is left with a long search at the end
+    groups = [[k] for vid in ids for k in keys[vid] if k[1] == TERM] \
+        + [[k] for vid in ids for k in keys[vid] if k[1] == PERIODS]
     n_jobs = -1 if jobs is None else int(jobs)
     deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
     n_workers, backend_used = 1, "in-process"
+
+    def call(key, marker=None, parent=None):
+        v = by_id[key[0]]
+        return (v.id, v.spec, v.is_base, panel_of[v.id], key[1], key[2], focus, *args,
+                parent, marker)
     try:
         if groups and backend is None and not start_workers and parallel._default_is_loky():
             allowed, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
             if allowed > 1:
                 est = cost.Estimates()
-                seconds = sum(analysis_seconds(by_id[vid], panel_of[vid], len(focus),
-                                               args[2], est) for vid in ids)
+                seconds = sum(task_seconds(by_id[g[0][0]], panel_of[g[0][0]], g[0], args[1],
+                                           est) for g in groups)
                 go = cost.repays_workers(seconds, allowed)
                 if notify is not None:
                     notify("dropping units: " + cost.dispatch_line(seconds, allowed, go))
@@ -161,14 +188,11 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
                 n_workers, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
 
                 def task(group, marker=None):
-                    v = by_id[group[0]]
-                    return joblib.delayed(_task)(v.id, v.spec, v.is_base, panel_of[v.id],
-                                                 *args, parent, marker)
+                    return joblib.delayed(_task)(*call(group[0], marker, parent))
                 if n_workers == 1:
                     backend_used = "in-process"
                     for g in groups:
-                        v = by_id[g[0]]
-                        record(_task(v.id, v.spec, v.is_base, panel_of[v.id], *args, parent))
+                        record(_task(*call(g[0], None, parent)))
                 else:
                     parallel.run_surviving_worker_deaths(
                         groups, task, record, lambda g: g[0] in done, lost, n_workers, deaths)
@@ -176,15 +200,17 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
         parallel.remove_memmaps()
     rows, unit_rows, path_rows, period_rows = [], [], [], []
     failures: dict[str, str] = {}
-    for vid in ids:  # plan order, whatever order the tasks finished in
-        out = done[vid]
-        if "failure" in out:
-            failures[vid] = out["failure"]
+    for vid in ids:  # plan order, then term order, whatever order the tasks finished in
+        outs = [done[k] for k in keys[vid]]
+        failed = [o["failure"] for o in outs if "failure" in o]
+        if failed:  # the first failing term's reason, as one search of the terms would
+            failures[vid] = failed[0]
             continue
-        rows += out["rows"]
-        unit_rows += out["units"]
-        path_rows += out["path"]
-        period_rows += out["periods"]
+        for out in outs:
+            rows += out.get("rows", [])
+            unit_rows += out.get("units", [])
+            path_rows += out.get("path", [])
+            period_rows += out.get("periods", [])
     frames = (pd.DataFrame(r, columns=t.names()) for r, t in zip(
         (rows, unit_rows, path_rows, period_rows), contract.DROPPING_TABLES))
     influence, units, path, periods = frames
@@ -201,10 +227,10 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     return DroppingTables(influence, units, path, periods, failures, run, dispatch)
 
 
-def _task(vid, vspec, is_base, panel, focus, alpha, max_drop_share, parent,
+def _task(vid, vspec, is_base, panel, kind, term, focus, alpha, max_drop_share, parent,
           marker=None) -> list:
-    """One variant's analysis, in this process or a worker: ``[(vid, tables' rows)]``
-    or ``[(vid, {"failure": reason})]``."""
+    """One task of :func:`tasks_of`, in this process or a worker:
+    ``[((vid, kind, term), rows of the tables)]`` or ``[(key, {"failure": reason})]``."""
     from . import parallel
     if marker is not None:  # "this task has started" (run_surviving_worker_deaths)
         try:
@@ -212,19 +238,24 @@ def _task(vid, vspec, is_base, panel, focus, alpha, max_drop_share, parent,
         except OSError:
             pass
     parallel.in_worker(parent)
-    return [(vid, analyse_variant(vid, vspec, is_base, panel, focus, alpha, max_drop_share))]
+    if kind == PERIODS:
+        out = {"periods": _periods(vid, vspec, panel, focus)}
+    else:
+        out = analyse_term(vid, vspec, is_base, panel, term, alpha, max_drop_share)
+    return [((vid, kind, term), out)]
 
 
-def analyse_variant(vid, vspec, is_base, panel, focus, alpha, max_drop_share) -> dict:
-    """The rows of the dropping tables of one variant (``rows``, ``units``, ``path``,
-    ``periods``), or ``{"failure": reason}`` when its moment problem cannot be solved
-    on a reduced sample."""
+def analyse_term(vid, vspec, is_base, panel, term, alpha, max_drop_share) -> dict:
+    """The rows of the dropping tables for one focus term of one variant (``rows``,
+    ``path``, and for the base model ``units``; none when the model has no such
+    term or its base estimate is not defined), or ``{"failure": reason}`` when its
+    moment problem cannot be solved on a reduced sample."""
     from .. import core
     rows, unit_rows, path_rows = [], [], []
     try:
         sums = core.unit_sums(vspec, panel)
         search = core.DropSearch(sums, alpha, max_drop_share)
-        terms = searchable_terms(search, focus)
+        terms = searchable_terms(search, [term])
         for term in terms:
             for target in DropTarget:
                 res = search.run(term, target)
@@ -239,8 +270,7 @@ def analyse_variant(vid, vspec, is_base, panel, focus, alpha, max_drop_share) ->
         # a reduced sample the moment problem cannot solve is a property of the
         # data, like a failing variant: recorded, and the audit goes on
         return {"failure": f"{type(exc).__name__}: " + " ".join(str(exc).split())}
-    return {"rows": rows, "units": unit_rows, "path": path_rows,
-            "periods": _periods(vid, vspec, panel, focus)}
+    return {"rows": rows, "units": unit_rows, "path": path_rows}
 
 
 def searchable_terms(search, focus) -> list[str]:

@@ -122,10 +122,15 @@ class Search:
         self._states: dict[tuple, tuple[Refit, np.ndarray]] = {(): (self.base, self.base_influence)}
 
     def _state(self, dropped: tuple) -> tuple[Refit, np.ndarray]:
+        # computed on the sorted set, never in the order dropped: the sums over the
+        # dropped units then do not depend on which search reached the set first, so
+        # a refit is the same to the last bit with or without this cache, and
+        # searches split over several Search objects (the audit's tasks per term)
+        # give the tables of one Search
         key = tuple(sorted(dropped))
         out = self._states.get(key)
         if out is None:
-            out = self._states[key] = self.sums.state(dropped)
+            out = self._states[key] = self.sums.state(key)
         return out
 
     def run(self, term, target: DropTarget) -> DropResult:
@@ -185,7 +190,7 @@ class Search:
             additive_size = int(below[0]) + 1
             prop = tuple(int(i) for i in helpful[:additive_size])
             key = tuple(sorted(prop))
-            refit = self._states[key][0] if key in self._states else sums.refit(prop)
+            refit = self._states[key][0] if key in self._states else sums.refit(key)
             if reached(refit):
                 candidates["additive"] = (prop, refit)
         # 2. recursive greedy search, an exact refit at every step
