@@ -17,6 +17,9 @@ from .errors import InputError
 #: same word as robustgmm.output.MARKER, written out so that the checks run before
 #: output (which imports pandas through the folder contract) is imported.
 OUTPUT_MARKER = ".robustgmm-output"
+#: The lock and the staging-folder prefix of robustgmm.output (LOCK, STAGING_PREFIX).
+OUTPUT_LOCK = ".robustgmm-lock"
+OUTPUT_STAGING_PREFIX = ".robustgmm-staging-"
 
 
 def check_model_path(path: str) -> Path:
@@ -57,7 +60,8 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
         except OSError as exc:
             raise InputError(f"{path}: cannot read the {what} folder ({exc.strerror or exc})") from None
         ours = OUTPUT_MARKER in entries or (
-            "manifest.json" in entries and _is_our_manifest(out / "manifest.json"))
+            "manifest.json" in entries and _is_our_manifest(out / "manifest.json")) or (
+            entries and all(_in_progress_name(e) for e in entries))
         if entries and not ours and not force:
             raise InputError(
                 f"{path}: folder exists, is not empty and holds no robustgmm output; "
@@ -75,6 +79,16 @@ def check_output_folder(path: str, force: bool, what: str = "--out") -> Path:
         raise InputError(f"{path}: cannot write into the {what} folder "
                          f"({exc.strerror or type(exc).__name__})") from None
     return out
+
+
+def _in_progress_name(name: str) -> bool:
+    """A file robustgmm creates in a folder it is starting to use, before its marker is
+    in place: the marker's temporary file (robustgmm.atomic: ``.<name>.<random>.tmp``,
+    renamed a moment later), the lock and a staging folder. A second audit started at
+    the same moment must see such a folder as robustgmm's, so that the lock (not this
+    check) decides which of the two runs."""
+    return ((name.startswith(f".{OUTPUT_MARKER}.") and name.endswith(".tmp"))
+            or name == OUTPUT_LOCK or name.startswith(OUTPUT_STAGING_PREFIX))
 
 
 def _is_our_manifest(path: Path) -> bool:

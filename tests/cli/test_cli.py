@@ -234,8 +234,16 @@ class _FakeResult:
 @pytest.fixture
 def fake_audit(monkeypatch):
     import types
+    # the command line reads submodules of the package (the grid's checks, the cluster
+    # backend) before the audit runs: the fake package keeps the real one's path and
+    # submodules, whatever ran before this test, and replaces only the audit itself
+    import robustgmm.audit.cluster  # noqa: F401
+    import robustgmm.audit.grid  # noqa: F401
+    real = sys.modules["robustgmm.audit"]  # (robustgmm.audit the attribute is the function)
     calls = {}
     mod = types.ModuleType("robustgmm.audit")
+    mod.__path__ = real.__path__
+    mod.__dict__.update({k: v for k, v in vars(real).items() if isinstance(v, types.ModuleType)})
 
     def audit(spec, *, jobs=None, cache_dir=None, progress=None, start_workers=False,
               notify=None):
@@ -278,8 +286,9 @@ def test_audit_wiring_and_fail_on_fragile(project, capsys, fake_audit):
 def test_interrupted_audit_folder_can_be_reused(project, capsys, fake_audit):
     # an interrupted run leaves the marker and a cache but no manifest.json; the
     # command line's checks know the marker by the word the writer uses
-    from robustgmm.output import MARKER
+    from robustgmm.output import LOCK, MARKER, STAGING_PREFIX
     assert paths.OUTPUT_MARKER == MARKER
+    assert (paths.OUTPUT_LOCK, paths.OUTPUT_STAGING_PREFIX) == (LOCK, STAGING_PREFIX)
     out = project / "audit"
     out.mkdir()
     (out / paths.OUTPUT_MARKER).write_text("{}")
@@ -316,3 +325,20 @@ def test_demo_prints_the_verdicts_and_where_to_read_them(tmp_path, capsys):
     for term, v in verdict["terms"].items():
         assert f"  {term}: {v['verdict']} — " in printed
     assert f"Open {out / 'report.html'}" in printed and "truth.json" in printed
+
+
+def test_a_folder_another_audit_is_just_starting_to_use_counts_as_ours(tmp_path):
+    # two audits started at once into a new folder: the first has created it and is
+    # writing its marker (robustgmm.atomic's temporary file, renamed a moment later);
+    # the second must not call the folder foreign but go on to the lock, which stops
+    # one of them with "is writing into this folder"
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "..robustgmm-output.k2j3h4.tmp").write_text("{")
+    assert paths.check_output_folder(str(out), force=False) == out
+    # a user's file beside it, or a temporary file that is not the marker's, is foreign
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / ".thesis.docx.k2j3h4.tmp").write_text("draft")
+    with pytest.raises(cli.InputError, match="holds no robustgmm output"):
+        paths.check_output_folder(str(other), force=False)
