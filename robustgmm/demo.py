@@ -433,9 +433,8 @@ def _relative_paths(manifest, out: Path):
 
 #: Replications of the demo's small Monte Carlo (the report's section "How these
 #: estimators behave at this sample size"). Few, to keep the quick start quick: one
-#: replication of the 48 variants costs about one audit's estimation time (about 1 s
-#: here), so 20 add about 20 s with one worker (measured under load, robustgmm bench
-#: gives the ratio). With 20 a coverage rate has a Monte Carlo SE of about 0.05 at
+#: replication of the 48 variants costs about half an audit's estimation time
+#: (robustgmm bench, workload 5: 0.11 s on an idle core), so 20 add a few seconds. With 20 a coverage rate has a Monte Carlo SE of about 0.05 at
 #: 95%; `robustgmm simulate --reps 200` is the real run.
 DEMO_REPS = 20
 DEMO_SIM_SEED = 1
