@@ -418,6 +418,11 @@ class Reader:
             head = f"[audit.vary.{key}]"
             pairs = []
             for name, raw in self.table(table, key, head, path + (key,)).items():
+                if not name.strip():
+                    # the key names the regressor whose settings are tried
+                    self.add(f"{head} {key_text(name)}", "the key is empty: each key is the "
+                             "name of a regressor of the model", raw, path + (key, name))
+                    continue
                 got = self._vary_list(raw, check, f"{head} {key_text(name)}", path + (key, name))
                 if got is not None:
                     pairs.append((name, got))
