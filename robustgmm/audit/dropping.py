@@ -161,41 +161,25 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     # periods), so that no worker is left with a long search at the end
     groups = [[k] for vid in ids for k in keys[vid] if k[1] == TERM] \
         + [[k] for vid in ids for k in keys[vid] if k[1] == PERIODS]
-    n_jobs = -1 if jobs is None else int(jobs)
     deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
-    n_workers, backend_used = 1, "in-process"
 
     def call(key, marker=None, parent=None):
         v = by_id[key[0]]
         return (v.id, v.spec, v.is_base, panel_of[v.id], key[1], key[2], focus, *args,
                 parent, marker)
-    try:
-        if groups and backend is None and not start_workers and parallel._default_is_loky():
-            allowed, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
-            if allowed > 1:
-                est = cost.Estimates()
-                seconds = sum(task_seconds(by_id[g[0][0]], panel_of[g[0][0]], g[0], args[1],
-                                           est) for g in groups)
-                go = cost.repays_workers(seconds, allowed)
-                if notify is not None:
-                    notify("dropping units: " + cost.dispatch_line(seconds, allowed, go))
-                if not go:
-                    n_jobs = 1
-        if groups:
-            parent = parallel.Parent.here()
-            with parallel._backend_context(backend, list(panels.values())) as backend_used, \
-                    parallel._blas_limit():
-                n_workers, _ = parallel.worker_count(n_jobs, len(groups), panel_of[ids[0]])
 
-                def task(group, marker=None):
-                    return joblib.delayed(_task)(*call(group[0], marker, parent))
-                if n_workers == 1:
-                    backend_used = "in-process"
-                    for g in groups:
-                        record(_task(*call(g[0], None, parent)))
-                else:
-                    parallel.run_surviving_worker_deaths(
-                        groups, task, record, lambda g: g[0] in done, lost, n_workers, deaths)
+    def estimate():
+        est = cost.Estimates()
+        return sum(task_seconds(by_id[g[0][0]], panel_of[g[0][0]], g[0], args[1], est)
+                   for g in groups)
+    parent = parallel.Parent.here() if groups else None
+    try:
+        n_workers, backend_used, _ = parallel.dispatch(
+            groups, lambda g, marker=None: joblib.delayed(_task)(*call(g[0], marker, parent)),
+            record, lambda g: g[0] in done, lost, deaths, jobs=jobs, backend=backend,
+            shared=list(panels.values()), panel=panel_of[ids[0]] if ids else None,
+            estimate=estimate, start_workers=start_workers, notify=notify,
+            what="dropping units: ")
     finally:
         parallel.remove_memmaps()
     rows, unit_rows, path_rows, period_rows = [], [], [], []
@@ -232,12 +216,7 @@ def _task(vid, vspec, is_base, panel, kind, term, focus, alpha, max_drop_share, 
     """One task of :func:`tasks_of`, in this process or a worker:
     ``[((vid, kind, term), rows of the tables)]`` or ``[(key, {"failure": reason})]``."""
     from . import parallel
-    if marker is not None:  # "this task has started" (run_surviving_worker_deaths)
-        try:
-            open(marker, "a").close()
-        except OSError:
-            pass
-    parallel.in_worker(parent)
+    parallel.task_started(marker, parent)
     if kind == PERIODS:
         out = {"periods": _periods(vid, vspec, panel, focus)}
     else:

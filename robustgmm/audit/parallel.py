@@ -362,6 +362,59 @@ def remove_stale_memmaps() -> list[Path]:
     return removed
 
 
+def task_started(marker: str | None, parent) -> None:
+    """What every task does first, in this process or a worker: leave the "this task
+    has started" mark of :func:`run_surviving_worker_deaths` (none on a remote worker
+    without the parent's folder) and set the worker up (:func:`in_worker`)."""
+    if marker is not None:
+        try:
+            open(marker, "a").close()
+        except OSError:
+            pass
+    in_worker(parent)
+
+
+def dispatch(groups: Sequence, delayed: Callable, record: Callable, finished: Callable,
+             lost: Callable, deaths: dict, *, jobs: int | None, backend: str | None,
+             shared: Sequence, panel, estimate: Callable[[], float], start_workers: bool,
+             notify: Callable[[str], None] | None, what: str = "") -> tuple[int, str, str | None]:
+    """Run ``groups`` (each ``delayed(group, marker=None)``, a joblib delayed call whose
+    result goes to ``record``); return the workers used, the backend's name and why
+    fewer workers ran than asked (None when not).
+
+    With local worker processes (the default loky backend) the workers start only
+    when the ``estimate()`` of the sequential seconds repays their start-up
+    (:func:`robustgmm.audit.cost.repays_workers`; the one-line note, prefixed by
+    ``what``, goes to ``notify``), unless ``start_workers``; any other backend
+    (threads, a dask cluster, which gets the ``shared`` objects once) is used as
+    asked. Never more workers than groups, cores or the free memory holds at
+    ``panel``'s footprint (:func:`worker_count`); with several, a lost worker's
+    groups are retried (:func:`run_surviving_worker_deaths`: ``finished``, ``lost``,
+    ``deaths``)."""
+    from . import cost
+    n_jobs = -1 if jobs is None else int(jobs)
+    if groups and backend is None and _default_is_loky() and not start_workers:
+        allowed, _ = worker_count(n_jobs, len(groups), panel)
+        if allowed > 1:
+            seconds = estimate()
+            start = cost.repays_workers(seconds, allowed)
+            if notify is not None:
+                notify(what + cost.dispatch_line(seconds, allowed, start))
+            if not start:
+                n_jobs = 1
+    if not groups:
+        return 1, "in-process", None
+    with _backend_context(backend, shared) as backend_used, _blas_limit():
+        n_workers, capped = worker_count(n_jobs, len(groups), panel)
+        if n_workers == 1:  # in this process: nothing to lose but ourselves
+            for results in _parallel(1)(delayed(g) for g in groups):
+                record(results)
+        else:
+            run_surviving_worker_deaths(groups, delayed, record, finished, lost, n_workers,
+                                        deaths)
+    return n_workers, ("in-process" if n_workers == 1 else backend_used), capped
+
+
 # ---------------------------------------------------------------------------
 # lost workers
 # ---------------------------------------------------------------------------

@@ -60,7 +60,6 @@ import shutil
 import sys
 import time
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Mapping, Sequence
 
 import joblib
@@ -492,38 +491,16 @@ class _Tasks:
 def _dispatch(pending: list, tasks: _Tasks, outcomes: _Outcomes, jobs: int | None,
               backend: str | None, estimate: float, start_workers: bool,
               notify: Callable[[str], None] | None) -> tuple[int, str, str | None]:
-    """Run the ``pending`` groups; return the workers used, the backend's name and
-    why fewer workers ran than asked (None when not).
-
-    With local worker processes (the default loky backend) the workers start only
-    when the ``estimate`` of the sequential seconds repays their start-up
-    (:func:`robustgmm.audit.cost.repays_workers`), unless ``start_workers``; any
-    other backend (threads, a dask cluster) is used as asked."""
-    n_jobs = -1 if jobs is None else int(jobs)
-    if pending and backend is None and parallel._default_is_loky() and not start_workers:
-        allowed, _ = parallel.worker_count(n_jobs, len(pending), _panel_of(pending[0], tasks.panels))
-        if allowed > 1:
-            start = cost.repays_workers(estimate, allowed)
-            if notify is not None:
-                notify(cost.dispatch_line(estimate, allowed, start))
-            if not start:
-                n_jobs = 1
-    if not pending:
-        return 1, "in-process", None
+    """Run the ``pending`` groups through :func:`robustgmm.audit.parallel.dispatch`
+    (workers only when the ``estimate`` of the sequential seconds repays their
+    start-up, unless ``start_workers``); return the workers used, the backend's name
+    and why fewer workers ran than asked (None when not)."""
     # the panels go to a dask cluster once, not with every task
-    shared = list(tasks.panels.values())
-    with parallel._backend_context(backend, shared) as backend_used, parallel._blas_limit():
-        # never more workers than tasks, cores or the free memory holds
-        n_workers, capped = parallel.worker_count(n_jobs, len(pending),
-                                                  _panel_of(pending[0], tasks.panels))
-        if n_workers == 1:  # in this process: nothing to lose but ourselves
-            for results in parallel._parallel(1)(tasks.delayed(g) for g in pending):
-                outcomes.record(results)
-        else:
-            parallel.run_surviving_worker_deaths(
-                pending, tasks.delayed, outcomes.record, outcomes.finished,
-                outcomes.record_lost, n_workers, outcomes.deaths)
-    return n_workers, ("in-process" if n_workers == 1 else backend_used), capped
+    return parallel.dispatch(
+        pending, tasks.delayed, outcomes.record, outcomes.finished, outcomes.record_lost,
+        outcomes.deaths, jobs=jobs, backend=backend, shared=list(tasks.panels.values()),
+        panel=_panel_of(pending[0], tasks.panels) if pending else None,
+        estimate=lambda: estimate, start_workers=start_workers, notify=notify)
 
 
 def _run_stats(ordered: Mapping[str, Outcome], cache: Cache | None, n_workers: int,
@@ -544,12 +521,7 @@ def _run_stats(ordered: Mapping[str, Outcome], cache: Cache | None, n_workers: i
 
 def _task(ids, specs, panel, fit, parent_pid: int, marker: str | None = None,
           on_error: str = "raise"):
-    if marker is not None:  # "this group has started" (see run_surviving_worker_deaths)
-        try:
-            Path(marker).touch()
-        except OSError:  # e.g. a remote worker without the parent's folder
-            pass
-    parallel.in_worker(parent_pid)
+    parallel.task_started(marker, parent_pid)
     return list(zip(ids, estimate_group(specs, panel, fit, on_error, ids)))
 
 

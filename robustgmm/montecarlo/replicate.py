@@ -253,12 +253,7 @@ def replicate(world: World, template: pd.DataFrame, variants, seed: int, rep: in
 def _block_task(world, template, variants, seed, reps, focus, level_group, cache_dir,
                 world_key, parent_pid, marker=None):
     from ..audit import parallel
-    if marker is not None:
-        try:
-            open(marker, "a").close()
-        except OSError:
-            pass
-    parallel.in_worker(parent_pid)
+    parallel.task_started(marker, parent_pid)
     cache = _open_cache(cache_dir)
     results = []
     for rep in reps:
