@@ -69,6 +69,30 @@ def test_deterministic_across_jobs_and_cache(spec, tmp_path):
     assert set(one.calibration["truth"]) == {"y[t-1]", "x[t]", "w[t]"}
 
 
+def _blas_threads() -> set[int]:
+    from threadpoolctl import threadpool_info
+    return {p["num_threads"] for p in threadpool_info() if p["user_api"] == "blas"}
+
+
+def test_same_simulation_whatever_the_callers_blas_threads(spec):
+    """The calibration's base-model fit ran at the calling process's BLAS thread
+    count (the cores, or OMP_NUM_THREADS / OPENBLAS_NUM_THREADS), so a simulation's
+    truth moved in the 14th digit with it: a cluster run whose client process had
+    OPENBLAS_NUM_THREADS=1 in its environment differed from a local one. Every step
+    runs at robustgmm.audit.parallel.BLAS_THREADS, and the caller's setting is
+    restored afterwards."""
+    from threadpoolctl import threadpool_limits
+    runs = {}
+    for threads in (1, 2):
+        with threadpool_limits(limits=threads, user_api="blas"):
+            assert _blas_threads() == {threads}  # the caller's setting really differs
+            sim = rp.simulate(spec, reps=10, seed=5, jobs=1)
+            assert _blas_threads() == {threads}  # and is the same after the call
+        runs[threads] = sim
+    assert runs[1].calibration == runs[2].calibration
+    pd.testing.assert_frame_equal(runs[1].summary, runs[2].summary)
+
+
 def test_resume_after_interruption(spec, tmp_path, monkeypatch):
     """Interrupted at the eighth replication, the rerun computes only the
     replications not finished."""

@@ -519,47 +519,51 @@ def simulate(spec, *, reps: int = DEFAULT_REPS, seed: int = 0, jobs: int | None 
     Raises :class:`InputError` (one line each) for bad ``reps``/``seed``/``truth``/
     ``initial`` and when the base model is needed and cannot be estimated."""
     from .. import data
-    from ..audit import grid
+    from ..audit import grid, parallel
     from ..options import LEVEL_GROUP
 
     reps, seed = check_reps(reps, seed)
     grid.check_base(spec)
-    if panels is None:
-        panels = grid.load_panels(spec)
-    if planned is None:
-        planned = grid.plan(spec, panels, counts=False)
-    variants = [v for v in planned if v.status == grid.PLANNED]
-    frame = data.read_frame(spec)
-    base_panel = panels[grid.sample_key(spec.sample)]
-    world, truth_terms, truth_source = build_world(spec, frame, base_panel, truth=truth,
-                                                   initial=initial,
-                                                   heteroskedastic=heteroskedastic)
-    focus = tuple(spec.focus_terms())
-    records, run = run_replications(world, frame, variants, reps=reps, seed=seed, focus=focus,
-                                    level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
-                                    cache_dir=cache_dir, progress=progress, backend=backend,
-                                    panels=panels, start_workers=start_workers,
-                                    notify=notify)
-    summary = summarise(records, variants, focus, truth_terms, spec.alpha)
-    settings = tuple(grid.setting_columns(spec))
-    shown = {v.id: v.settings_dict() for v in variants}
-    for col in settings:
-        summary.insert(summary.columns.get_loc("term"), col,
-                       [shown[vid].get(col) for vid in summary["variant"]])
-    columns = (spec.outcome,) + world.regressors
-    from .. import contract
-    first = simulated_frame(world, frame, seed, 0, columns)
-    calibration = {
-        "format_version": contract.FORMAT_VERSION,
-        "seed": seed, "reps": reps, "alpha": spec.alpha,
-        "truth": {t: truth_terms[t] for t in focus if t in truth_terms},
-        "truth_source": truth_source,
-        # each parameter beside the same calibration run on replication 0
-        "world": world.to_dict(simulated=recalibrate(world, first)),
-        "fit": fit_summary(frame, first, columns, unit=spec.unit, period=spec.period),
-        "failed": {v.id: sum(1 for r in records if r["variants"][v.id]["status"] != "ok")
-                   for v in variants},
-    }
+    # every step at parallel.BLAS_THREADS, whatever the calling process's BLAS threads
+    # (its cores, OMP_NUM_THREADS / OPENBLAS_NUM_THREADS; restored after): the truth is
+    # the base model's fit, which moved in the 14th digit with them
+    with parallel._blas_limit():
+        if panels is None:
+            panels = grid.load_panels(spec)
+        if planned is None:
+            planned = grid.plan(spec, panels, counts=False)
+        variants = [v for v in planned if v.status == grid.PLANNED]
+        frame = data.read_frame(spec)
+        base_panel = panels[grid.sample_key(spec.sample)]
+        world, truth_terms, truth_source = build_world(spec, frame, base_panel, truth=truth,
+                                                       initial=initial,
+                                                       heteroskedastic=heteroskedastic)
+        focus = tuple(spec.focus_terms())
+        records, run = run_replications(world, frame, variants, reps=reps, seed=seed, focus=focus,
+                                        level_group=LEVEL_GROUP, alpha=spec.alpha, jobs=jobs,
+                                        cache_dir=cache_dir, progress=progress, backend=backend,
+                                        panels=panels, start_workers=start_workers,
+                                        notify=notify)
+        summary = summarise(records, variants, focus, truth_terms, spec.alpha)
+        settings = tuple(grid.setting_columns(spec))
+        shown = {v.id: v.settings_dict() for v in variants}
+        for col in settings:
+            summary.insert(summary.columns.get_loc("term"), col,
+                           [shown[vid].get(col) for vid in summary["variant"]])
+        columns = (spec.outcome,) + world.regressors
+        from .. import contract
+        first = simulated_frame(world, frame, seed, 0, columns)
+        calibration = {
+            "format_version": contract.FORMAT_VERSION,
+            "seed": seed, "reps": reps, "alpha": spec.alpha,
+            "truth": {t: truth_terms[t] for t in focus if t in truth_terms},
+            "truth_source": truth_source,
+            # each parameter beside the same calibration run on replication 0
+            "world": world.to_dict(simulated=recalibrate(world, first)),
+            "fit": fit_summary(frame, first, columns, unit=spec.unit, period=spec.period),
+            "failed": {v.id: sum(1 for r in records if r["variants"][v.id]["status"] != "ok")
+                       for v in variants},
+        }
     return Simulation(summary=summary, calibration=calibration, run=run, settings=settings,
                       records=records)
 

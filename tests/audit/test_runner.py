@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import os
 
 import pytest
 
@@ -217,8 +218,22 @@ def test_threading_backend_gives_the_same_results(planned):
     assert outcome_text(threads) == outcome_text(one)
 
 
+@pytest.fixture
+def restored_environ():
+    """This process's environment as it was before the test. A LocalCluster's nannies
+    run in this process and set their workers' environment in it before spawning them
+    (distributed 2026.8: OMP_NUM_THREADS, OPENBLAS_NUM_THREADS and MKL_NUM_THREADS = 1,
+    MALLOC_TRIM_THRESHOLD_, PYTHONHASHSEED, __DASK_PARENT_PID), and leave it there:
+    every process a later test starts would inherit it."""
+    saved = dict(os.environ)
+    yield
+    for key in set(os.environ) - set(saved):
+        del os.environ[key]
+    os.environ.update(saved)
+
+
 @pytest.mark.slow
-def test_dask_backend_gives_the_same_results(planned):
+def test_dask_backend_gives_the_same_results(planned, restored_environ):
     distributed = pytest.importorskip("distributed")
     import joblib
     spec, panels, variants = planned
