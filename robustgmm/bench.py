@@ -761,8 +761,9 @@ def cli_parallel(sizes: Sizes, echo=print) -> Outcome:
             out.rows.append((f"{name} audit: {n_variants} variants, N = {N:,}, T = {T}",
                              f"--jobs 1 {_fmt_s(best[1])}, --jobs 2 {_fmt_s(best[2])} "
                              f"(--jobs 2 said: {where[2]}); of which estimating the "
-                             f"variants {_fmt_s(estimation[1])} and {_fmt_s(estimation[2])}, "
-                             f"dropping units (the base model) {_fmt_s(influence[1])} and "
+                             f"variants beside the base model's dropping units "
+                             f"{_fmt_s(estimation[1])} and {_fmt_s(estimation[2])}, the "
+                             f"rest of the dropping units {_fmt_s(influence[1])} and "
                              f"{_fmt_s(influence[2])}"))
             out.ratios.append((f"{name} audit ({n_variants} variants) --jobs 2 / --jobs 1",
                                best[2] / best[1], limit, None))

@@ -91,10 +91,18 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     # counts come with each estimation; planning here only does the cheap checks
     planned = grid.plan(spec, panels, counts=False)
     t_plan = time.perf_counter()
+    # the base model's dropping-units analysis needs only its specification: it runs
+    # in the variants' pool (its searches are the longest tasks of most audits, and
+    # run after the variants they would leave a worker idle); kept when the base
+    # model estimates, else dropped with it
+    base_done: dict = {}
+    planned_base = [v.id for v in planned if v.is_base and v.status == grid.PLANNED]
+    alongside = ([dropping.work(spec, planned, panels, planned_base, base_done)]
+                 if spec.influence != "none" and planned_base else [])
     outcomes, stats = runner.run_variants(planned, panels, jobs=jobs, cache_dir=cache_dir,
                                           progress=progress, backend=backend,
                                           on_error=on_error, start_workers=start_workers,
-                                          notify=notify)
+                                          notify=notify, alongside=alongside)
     t_run = time.perf_counter()
     simulation = None
     if simulate is not None:
@@ -120,7 +128,8 @@ def audit(spec: Spec, *, jobs: int | None = None, cache_dir=None, progress: bool
     if spec.influence != "none":
         tables = dropping.analyse(spec, planned, panels, ids, estimates, jobs=jobs,
                                   backend=backend, start_workers=start_workers,
-                                  notify=notify)
+                                  notify=notify, done=base_done if base_ok else None,
+                                  earlier={"jobs": stats.jobs, "backend": stats.backend})
     t_influence = time.perf_counter()
     evaluation = verdicts.conclude(classified, None if tables is None else tables.influence)
     verdict = evaluation.verdict.to_dict()

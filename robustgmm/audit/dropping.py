@@ -122,10 +122,53 @@ def tasks_of(vid: str, focus: Sequence[str]) -> list[tuple[str, str, str]]:
     return [(vid, TERM, t) for t in focus] + [(vid, PERIODS, "")]
 
 
+def work(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
+         done: dict, parent=None, deaths: dict | None = None):
+    """The tasks of the analyses of the variants ``ids`` (:func:`tasks_of`) as one kind
+    of work of a run (:class:`robustgmm.audit.parallel.Work`); their results go into
+    ``done`` (task key → rows, or ``{"failure": reason}``) as they arrive; tasks whose
+    worker died twice count in ``deaths["lost"]`` when given. The audit
+    runs the base model's analysis as work alongside its variants
+    (:func:`robustgmm.audit.runner.run_variants`): it needs only the base model's
+    specification, and it is the longest single task of most audits."""
+    from . import cost, parallel
+    from .grid import sample_key
+    by_id = {v.id: v for v in planned}
+    focus = list(spec.focus_terms())
+    args = (float(spec.alpha), float(spec.max_drop_share))
+    panel_of = {vid: panels[sample_key(by_id[vid].spec.sample)] for vid in ids}
+    parent = parallel.Parent.here() if parent is None and ids else parent
+
+    def record(results):
+        for key, out in results:
+            done[key] = out
+
+    def lost(group):
+        for key in group:
+            if key not in done and deaths is not None:
+                deaths["lost"] += 1
+            done.setdefault(key, {"failure": LOST})
+
+    def delayed(group, marker=None):
+        import joblib
+        v = by_id[group[0][0]]
+        return joblib.delayed(_task)(v.id, v.spec, v.is_base, panel_of[v.id], group[0][1],
+                                     group[0][2], focus, *args, parent, marker)
+
+    groups = [[k] for vid in ids for k in tasks_of(vid, focus)]
+    est = cost.Estimates()
+    seconds = [task_seconds(by_id[g[0][0]], panel_of[g[0][0]], g[0], args[1], est)
+               for g in groups]
+    return parallel.Work(groups, delayed, record, lambda g: g[0] in done, lost, seconds,
+                         panel=max(panel_of.values(), key=lambda p: getattr(p, "n_units", 0))
+                         if ids else None)
+
+
 def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
             estimates: pd.DataFrame | None = None, *, jobs: int | None = 1,
             backend: str | None = None, start_workers: bool = False,
-            notify=None) -> DroppingTables:
+            notify=None, done: Mapping | None = None,
+            earlier: Mapping[str, Any] | None = None) -> DroppingTables:
     """The dropping-units tables of the variants ``ids`` (module docstring).
 
     One task per variant and focus term and one per variant's leave-one-period-out
@@ -137,51 +180,28 @@ def analyse(spec: Spec, planned, panels: Mapping[str, Any], ids: Sequence[str],
     task runs with :data:`robustgmm.audit.parallel.BLAS_THREADS` BLAS threads, its
     refits do not depend on which refits its search holds
     (:class:`robustgmm.core.DropSearch`), and the tables are assembled in the order of
-    ``ids``, terms and targets, so they are identical whatever ``jobs`` is."""
-    import joblib
+    ``ids``, terms and targets, so they are identical whatever ``jobs`` is.
 
-    from . import cost, parallel
-    from .grid import sample_key
-    by_id = {v.id: v for v in planned}
+    ``done``: results of tasks that already ran (the base model's analysis, run
+    alongside the variants by :func:`work`), with ``earlier``, how that run went
+    (``{"jobs": ..., "backend": ...}``); only the other tasks run here."""
+    from . import parallel
     focus = list(spec.focus_terms())
-    args = (float(spec.alpha), float(spec.max_drop_share))
-    panel_of = {vid: panels[sample_key(by_id[vid].spec.sample)] for vid in ids}
-    done: dict[tuple, dict] = {}
-
-    def record(results):
-        for key, out in results:
-            done[key] = out
-
-    def lost(group):
-        for key in group:
-            done.setdefault(key, {"failure": LOST})
-
+    done = dict(done or {})
     keys = {vid: tasks_of(vid, focus) for vid in ids}
-    # the longest tasks first (the terms' searches of every variant, then the
-    # periods), so that no worker is left with a long search at the end
-    groups = [[k] for vid in ids for k in keys[vid] if k[1] == TERM] \
-        + [[k] for vid in ids for k in keys[vid] if k[1] == PERIODS]
+    todo = [vid for vid in ids if not all(k in done for k in keys[vid])]
     deaths = {"worker_deaths": 0, "retried_alone": 0, "lost": 0}
-
-    def call(key, marker=None, parent=None):
-        v = by_id[key[0]]
-        return (v.id, v.spec, v.is_base, panel_of[v.id], key[1], key[2], focus, *args,
-                parent, marker)
-
-    def estimate():
-        est = cost.Estimates()
-        return sum(task_seconds(by_id[g[0][0]], panel_of[g[0][0]], g[0], args[1], est)
-                   for g in groups)
-    parent = parallel.Parent.here() if groups else None
     try:
         n_workers, backend_used, _ = parallel.dispatch(
-            groups, lambda g, marker=None: joblib.delayed(_task)(*call(g[0], marker, parent)),
-            record, lambda g: g[0] in done, lost, deaths, jobs=jobs, backend=backend,
-            shared=list(panels.values()), panel=panel_of[ids[0]] if ids else None,
-            estimate=estimate, start_workers=start_workers, notify=notify,
+            [work(spec, planned, panels, todo, done, deaths=deaths)], deaths, jobs=jobs,
+            backend=backend,
+            shared=list(panels.values()), start_workers=start_workers, notify=notify,
             what="dropping units: ")
     finally:
         parallel.remove_memmaps()
+    if earlier is not None and (not todo or earlier.get("jobs", 1) > n_workers):
+        # where the analyses ran: the run with the most workers
+        n_workers, backend_used = earlier["jobs"], earlier["backend"]
     rows, unit_rows, path_rows, period_rows = [], [], [], []
     failures: dict[str, str] = {}
     for vid in ids:  # plan order, then term order, whatever order the tasks finished in

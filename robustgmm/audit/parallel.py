@@ -374,29 +374,70 @@ def task_started(marker: str | None, parent) -> None:
     in_worker(parent)
 
 
-def dispatch(groups: Sequence, delayed: Callable, record: Callable, finished: Callable,
-             lost: Callable, deaths: dict, *, jobs: int | None, backend: str | None,
-             shared: Sequence, panel, estimate: Callable[[], float], start_workers: bool,
+@dataclass(frozen=True)
+class Work:
+    """The tasks of one kind in a run and where their results go: the variants' share
+    groups (:mod:`robustgmm.audit.runner`) or the dropping-units analyses
+    (:mod:`robustgmm.audit.dropping`). :func:`dispatch` runs several kinds in one
+    pool, so that a worker free of one kind takes tasks of the other."""
+
+    groups: Sequence
+    #: ``delayed(group, marker=None)``: the joblib delayed call of one group
+    delayed: Callable
+    #: ``record(results)``: keeps the results of one task as they arrive
+    record: Callable
+    #: ``finished(group)``: whether every member of ``group`` has a result
+    finished: Callable
+    #: ``lost(group)``: records the members of a group whose worker died twice
+    lost: Callable
+    #: the estimated sequential seconds of each group (same order as ``groups``)
+    seconds: Sequence[float]
+    #: the largest panel the tasks use (the worker footprint of :func:`worker_count`)
+    panel: object = None
+
+
+def _tagged(index: int, function: Callable, *args, **kwargs):
+    """A task of the ``index``-th :class:`Work` of a :func:`dispatch`, and its result
+    tagged with that index. The task's own arguments stay top-level arguments: joblib's
+    dask backend replaces a scattered panel by its reference only there."""
+    return index, function(*args, **kwargs)
+
+
+def dispatch(works: Sequence[Work], deaths: dict, *, jobs: int | None, backend: str | None,
+             shared: Sequence, start_workers: bool,
              notify: Callable[[str], None] | None, what: str = "") -> tuple[int, str, str | None]:
-    """Run ``groups`` (each ``delayed(group, marker=None)``, a joblib delayed call whose
-    result goes to ``record``); return the workers used, the backend's name and why
-    fewer workers ran than asked (None when not).
+    """Run the groups of every :class:`Work` in one pool, the longest estimated first
+    (whatever their kind, so that no worker is left with a long task at the end; the
+    results do not depend on the order); return the workers used, the backend's name
+    and why fewer workers ran than asked (None when not).
 
     With local worker processes (the default loky backend) the workers start only
-    when the ``estimate()`` of the sequential seconds repays their start-up
+    when the estimated sequential seconds repay their start-up
     (:func:`robustgmm.audit.cost.repays_workers`; the one-line note, prefixed by
     ``what``, goes to ``notify``), unless ``start_workers``; any other backend
     (threads, a dask cluster, which gets the ``shared`` objects once) is used as
-    asked. Never more workers than groups, cores or the free memory holds at
-    ``panel``'s footprint (:func:`worker_count`); with several, a lost worker's
-    groups are retried (:func:`run_surviving_worker_deaths`: ``finished``, ``lost``,
-    ``deaths``)."""
+    asked. Never more workers than groups, cores or the free memory holds at the
+    largest panel's footprint (:func:`worker_count`); with several, a lost worker's
+    groups are retried (:func:`run_surviving_worker_deaths`, counted in ``deaths``)."""
     from . import cost
+    tagged = [(k, g, s) for k, w in enumerate(works) for g, s in zip(w.groups, w.seconds)]
+    tagged.sort(key=lambda t: -t[2])  # stable: equal estimates keep their order
+    groups = [(k, g) for k, g, _ in tagged]
+    panels = [w.panel for w in works if w.groups and w.panel is not None]
+    panel = max(panels, key=lambda p: getattr(p, "n_units", 0)) if panels else None
+
+    def delayed(item, marker=None):
+        function, args, kwargs = works[item[0]].delayed(item[1], marker)
+        return _tagged, (item[0], function, *args), kwargs
+
+    def record(result):
+        works[result[0]].record(result[1])
+
     n_jobs = -1 if jobs is None else int(jobs)
     if groups and backend is None and _default_is_loky() and not start_workers:
         allowed, _ = worker_count(n_jobs, len(groups), panel)
         if allowed > 1:
-            seconds = estimate()
+            seconds = float(sum(s for _, _, s in tagged))
             start = cost.repays_workers(seconds, allowed)
             if notify is not None:
                 notify(what + cost.dispatch_line(seconds, allowed, start))
@@ -407,11 +448,12 @@ def dispatch(groups: Sequence, delayed: Callable, record: Callable, finished: Ca
     with _backend_context(backend, shared) as backend_used, _blas_limit():
         n_workers, capped = worker_count(n_jobs, len(groups), panel)
         if n_workers == 1:  # in this process: nothing to lose but ourselves
-            for results in _parallel(1)(delayed(g) for g in groups):
-                record(results)
+            for result in _parallel(1)(delayed(g) for g in groups):
+                record(result)
         else:
-            run_surviving_worker_deaths(groups, delayed, record, finished, lost, n_workers,
-                                        deaths)
+            run_surviving_worker_deaths(
+                groups, delayed, record, lambda item: works[item[0]].finished(item[1]),
+                lambda item: works[item[0]].lost(item[1]), n_workers, deaths)
     return n_workers, ("in-process" if n_workers == 1 else backend_used), capped
 
 

@@ -311,6 +311,7 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
                  backend: str | None = None, on_error: str = "raise",
                  start_workers: bool = False,
                  notify: Callable[[str], None] | None = None,
+                 alongside: Sequence[parallel.Work] = (),
                  ) -> tuple[dict[str, Outcome], RunStats]:
     """Estimate every planned variant; return ``{variant id: Outcome}`` and run figures.
 
@@ -327,6 +328,11 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     :func:`robustgmm.core.fit_family`. A group runs when any member is missing from
     the cache; it always runs whole, so that its results do not depend on what was
     cached (members already cached keep their cached result, which is identical).
+
+    ``alongside``: other work (:class:`robustgmm.audit.parallel.Work`, e.g. the base
+    model's dropping-units analysis) run in the same pool as the groups, the longest
+    tasks first whatever their kind; its results go where it says. The run's figures
+    (workers, worker deaths) cover it too.
     """
     check_on_error(on_error)
     start = time.perf_counter()
@@ -337,18 +343,21 @@ def run_variants(variants: Sequence[Variant], panels: Mapping[str, Any], *,
     outcomes = _Outcomes(cache)
     pending = [g for g in groups
                if outcomes.look_up(g, _panel_of(g, panels), shared=fit is None)]
-    # the heaviest groups first, so parallel workers finish close together (the order
-    # of results does not depend on it)
+    # the dispatch runs the heaviest groups first, so parallel workers finish close
+    # together (the order of results does not depend on it)
     estimates = cost.Estimates()
-    seconds = {id(g): estimates.group_seconds([v.spec for v in g], _panel_of(g, panels))
-               for g in pending}
-    pending.sort(key=lambda g: -seconds[id(g)])
+    seconds = [estimates.group_seconds([v.spec for v in g], _panel_of(g, panels))
+               for g in pending]
     tasks = _Tasks(panels, fit, on_error, parallel.Parent.here())
+    variants_work = parallel.Work(
+        pending, tasks.delayed, outcomes.record, outcomes.finished, outcomes.record_lost,
+        seconds, panel=_panel_of(pending[0], panels) if pending else None)
     outcomes.bar = _progress_bar(progress, total=len(todo), initial=len(outcomes.by_id))
     try:
-        n_workers, backend_used, capped = _dispatch(
-            pending, tasks, outcomes, jobs, backend, sum(seconds.values()),
-            start_workers, notify)
+        # the panels go to a dask cluster once, not with every task
+        n_workers, backend_used, capped = parallel.dispatch(
+            [variants_work, *alongside], outcomes.deaths, jobs=jobs, backend=backend,
+            shared=list(panels.values()), start_workers=start_workers, notify=notify)
     finally:
         parallel.remove_memmaps()  # every exit path: done, interrupted, a bug
         outcomes.close()
@@ -486,21 +495,6 @@ class _Tasks:
 
     def delayed(self, group, marker: str | None = None):
         return joblib.delayed(_task)(*self._args(group, marker))
-
-
-def _dispatch(pending: list, tasks: _Tasks, outcomes: _Outcomes, jobs: int | None,
-              backend: str | None, estimate: float, start_workers: bool,
-              notify: Callable[[str], None] | None) -> tuple[int, str, str | None]:
-    """Run the ``pending`` groups through :func:`robustgmm.audit.parallel.dispatch`
-    (workers only when the ``estimate`` of the sequential seconds repays their
-    start-up, unless ``start_workers``); return the workers used, the backend's name
-    and why fewer workers ran than asked (None when not)."""
-    # the panels go to a dask cluster once, not with every task
-    return parallel.dispatch(
-        pending, tasks.delayed, outcomes.record, outcomes.finished, outcomes.record_lost,
-        outcomes.deaths, jobs=jobs, backend=backend, shared=list(tasks.panels.values()),
-        panel=_panel_of(pending[0], tasks.panels) if pending else None,
-        estimate=lambda: estimate, start_workers=start_workers, notify=notify)
 
 
 def _run_stats(ordered: Mapping[str, Outcome], cache: Cache | None, n_workers: int,

@@ -265,6 +265,56 @@ def test_terms_and_periods_as_separate_tasks_give_the_same_bytes(tmp_path, scope
         assert (a / table.file).read_bytes() == (b / table.file).read_bytes(), table.file
 
 
+def test_the_base_model_is_analysed_in_the_variants_pool(tmp_path, monkeypatch):
+    """The base model's analysis needs only its specification, so the audit runs its
+    tasks in the same dispatch as the variants' share groups (the longest tasks first,
+    whatever their kind: robustgmm.audit.parallel.dispatch), not after them; its
+    tables are the ones the analysis run on its own gives, byte for byte."""
+    from robustgmm.audit import dropping, grid, parallel
+    write_planted(tmp_path, n=150)
+    spec = spec_from_dict(model(influence="base", vary={"steps": [1, 2]},
+                                focus=["x[t]", "w[t]"]), base_dir=tmp_path)
+    calls: list[list[int]] = []
+    real = parallel.dispatch
+
+    def spy(works, *args, **kw):
+        calls.append([len(w.groups) for w in works])
+        return real(works, *args, **kw)
+    monkeypatch.setattr(parallel, "dispatch", spy)
+    result = audit(spec, jobs=2, start_workers=True)
+    # one share group of two variants beside the base's two term tasks and its
+    # periods task; nothing left for the analysis after the variants
+    assert calls == [[1, 3], [0]]
+    assert result.dropping.dispatch == {"jobs": 2, "backend": "loky"}
+    assert result.manifest["run"]["influence_jobs"] == 2
+    monkeypatch.setattr(parallel, "dispatch", real)
+    panels = grid.load_panels(spec)
+    planned = grid.plan(spec, panels, counts=False)
+    alone = dropping.analyse(spec, planned, panels, [result.verdict["base_variant"]], jobs=1)
+    for ours, theirs, table in zip(result.dropping.frames(), alone.frames(),
+                                   contract.DROPPING_TABLES):
+        assert len(ours) and ours.to_csv() == theirs.to_csv(), table.file
+
+
+def test_a_base_model_that_fails_leaves_no_analysis(tmp_path, monkeypatch):
+    """The base model's analysis runs beside its estimation; when the estimation fails
+    (here made to, through the runner's test seam) the analysis is dropped with it:
+    no rows, no variant analysed, and the other variants are audited as usual."""
+    from helpers_audit import CountingFit
+    from robustgmm.audit import runner
+    from robustgmm.errors import EstimationError
+    write_planted(tmp_path, n=150)
+    spec = spec_from_dict(model(influence="base", vary={"steps": [1, 2]}),
+                          base_dir=tmp_path)
+    monkeypatch.setattr(runner, "FIT_EACH", CountingFit(
+        fail=[(lambda s: s.steps == 1, EstimationError("made to fail"))]))
+    result = audit(spec, jobs=1)
+    status = dict(zip(result.variants["steps"], result.variants["status"]))
+    assert status == {1: runner.FAILED, 2: runner.OK}
+    assert result.dropping.run["variants"] == []
+    assert all(len(frame) == 0 for frame in result.dropping.frames())
+
+
 def test_influence_none_writes_no_dropping_files(tmp_path):
     write_planted(tmp_path, n=120, n_planted=0, beta_rest=1.0)
     spec = spec_from_dict(model(influence="none"), base_dir=tmp_path)
