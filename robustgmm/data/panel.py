@@ -143,18 +143,30 @@ def panel_from_frame(frame: pd.DataFrame, unit: str, period: str, columns,
     periods = np.arange(p0, p1 + 1, dtype=np.int64)
     n_units, n_periods = len(unit_ids), len(periods)
     cell = codes.astype(np.int64) * n_periods + (per - p0)
-    observed = np.zeros(n_units * n_periods, dtype=bool)
-    observed[cell] = True
+    # a balanced panel sorted by unit and period (the usual file) fills every cell
+    # in order: cell == arange, so each column is a copy, not a scatter
+    in_order = len(cell) == n_units * n_periods and bool(np.all(cell[1:] > cell[:-1]))
+    if in_order:
+        observed = np.ones(n_units * n_periods, dtype=bool)
+    else:
+        observed = np.zeros(n_units * n_periods, dtype=bool)
+        observed[cell] = True
     values = {}
     n_missing_rows = np.zeros(len(frame), dtype=bool)
     for name in columns:
-        col = frame[name].to_numpy(dtype=np.float64)
-        missing = np.isnan(col)
+        if in_order:
+            arr = frame[name].to_numpy(dtype=np.float64, copy=True)
+            missing = np.isnan(arr)
+            if missing.any():  # one NaN bit pattern, whatever the reader left
+                arr[missing] = np.nan
+        else:
+            col = frame[name].to_numpy(dtype=np.float64)
+            missing = np.isnan(col)
+            arr = np.full(n_units * n_periods, np.nan)
+            arr[cell] = col
+            if missing.any():  # one NaN bit pattern, whatever the reader left
+                arr[cell[missing]] = np.nan
         n_missing_rows |= missing
-        arr = np.full(n_units * n_periods, np.nan)
-        arr[cell] = col
-        if missing.any():  # one NaN bit pattern, whatever the reader left
-            arr[cell[missing]] = np.nan
         values[name] = arr.reshape(n_units, n_periods)
     units = np.asarray(unit_ids)
     return Panel(

@@ -297,6 +297,10 @@ def _duplicate_cells(units: pd.Series, periods: np.ndarray) -> pd.Series:
     ``code(unit) × span + period − first`` counted with one ``bincount``
     (:func:`unit_codes`); when the calendar is much sparser than the rows, a
     hash-based count of the cell numbers instead."""
+    if units.dtype.kind in "iu" and _sorted_cells(units.to_numpy(), periods):
+        # rows in strictly increasing (unit, period) order (the usual file): no
+        # cell repeats, told without the unit codes
+        return pd.Series(np.zeros(len(units), dtype=bool), index=units.index)
     codes, uniques = unit_codes(units)
     lo = int(periods.min())
     span = int(periods.max()) - lo + 1
@@ -312,6 +316,15 @@ def _duplicate_cells(units: pd.Series, periods: np.ndarray) -> pd.Series:
     else:
         dup = pd.Series(cell).duplicated(keep=False).to_numpy()
     return pd.Series(dup, index=units.index)
+
+
+def _sorted_cells(units: np.ndarray, periods: np.ndarray) -> bool:
+    """Whether the rows are in strictly increasing (unit, period) order: each row's
+    unit above the previous row's, or the same unit and a later period."""
+    u0, u1 = units[:-1], units[1:]
+    later = u1 > u0
+    later |= (u1 == u0) & (periods[1:] > periods[:-1])
+    return bool(later.all())
 
 
 def _text_mask(units: pd.Series) -> np.ndarray:
@@ -397,6 +410,7 @@ def degenerate_columns(frame: pd.DataFrame, spec, where: str, label: str = "") -
         problems.append(f"{where}: outcome {spec.outcome!r} has the same value "
                         f"({_number(y_one)}) in every row{label}; there is no variation "
                         "to explain")
+    y_full = None
     for name in dict.fromkeys(r.name for r in spec.regressors):
         x_all = frame[name].to_numpy(dtype=np.float64)
         x_missing = np.isnan(x_all)
@@ -407,12 +421,16 @@ def degenerate_columns(frame: pd.DataFrame, spec, where: str, label: str = "") -
                             "apart from the constant: drop it from the model")
             continue
         gaps = x_missing | y_missing
+        y_sums = None
         if not gaps.any():  # every row has both: no copies of the columns
             xb, yb = x_all, y_all
+            if y_full is None:  # the outcome's shifted sums, shared by the regressors
+                y_full = _shifted_sums(y_all)
+            y_sums = y_full
         else:
             both = ~gaps
             xb, yb = x_all[both], y_all[both]
-        if len(xb) >= 3 and _affine_copy(xb, yb):
+        if len(xb) >= 3 and _affine_copy(xb, yb, y_sums):
             how = ("equals" if np.array_equal(xb, yb)
                    else "is an exact linear function of")
             problems.append(f"{where}: regressor {name!r} {how} the outcome "
@@ -434,7 +452,14 @@ def _one_value(v: np.ndarray, missing: np.ndarray) -> float | None:
     return None
 
 
-def _affine_copy(x: np.ndarray, y: np.ndarray) -> bool:
+def _shifted_sums(v: np.ndarray) -> tuple:
+    """``(v − v[0], its sum, its sum of squares about the mean)`` of :func:`_affine_copy`."""
+    vd = v - v[0]
+    s = vd.sum()
+    return vd, s, vd @ vd - s * s / len(v)
+
+
+def _affine_copy(x: np.ndarray, y: np.ndarray, y_sums: tuple | None = None) -> bool:
     """Whether ``x = a + b·y`` holds in every row, to rounding (b ≠ 0).
 
     Both are centred and scaled to unit spread first, so the check does not depend
@@ -445,10 +470,10 @@ def _affine_copy(x: np.ndarray, y: np.ndarray) -> bool:
     # shifted by their first (no spread lost to a large level) rejects every column
     # far from a copy without the row-by-row residuals; the 1e-6 margin lies far
     # above the rounding of those sums.
-    xd, yd = x - x[0], y - y[0]
+    # ``y_sums``: :func:`_shifted_sums` of ``y``, when already at hand
     n = len(x)
-    sx_, sy_ = xd.sum(), yd.sum()
-    vx, vy = xd @ xd - sx_ * sx_ / n, yd @ yd - sy_ * sy_ / n
+    xd, sx_, vx = _shifted_sums(x)
+    yd, sy_, vy = _shifted_sums(y) if y_sums is None else y_sums
     if vx <= 0 or vy <= 0:
         return False
     r2 = (xd @ yd - sx_ * sy_ / n) ** 2 / (vx * vy)

@@ -138,3 +138,58 @@ def test_affine_copy_check_matches_its_definition():
     near[17] += 1e-3                          # one row off: not a copy
     assert not _affine_copy(near, y)
     assert not _affine_copy(rng.normal(size=5000), y)
+
+
+@pytest.mark.parametrize("ids", ["dense", "sparse", "text"])
+@pytest.mark.parametrize("repeats", [True, False])
+def test_duplicates_of_sorted_rows_equal_pandas(ids, repeats):
+    """Rows in (unit, period) order (the shortcut that skips the unit codes), with and
+    without a repeated cell, against ``DataFrame.duplicated(keep=False)``."""
+    units = np.repeat(np.arange(1, 301), 6)
+    periods = np.tile(np.arange(2000, 2006), 300)
+    if repeats:  # the same unit-period twice, next to each other: still sorted
+        units, periods = np.insert(units, 50, units[50]), np.insert(periods, 50, periods[50])
+    if ids == "sparse":
+        units = units * 10**9
+    frame = pd.DataFrame({"u": units, "t": periods})
+    if ids == "text":
+        frame["u"] = "firm" + frame["u"].astype(str)
+    want = frame.duplicated(["u", "t"], keep=False).to_numpy()
+    got = _duplicate_cells(frame["u"], frame["t"].to_numpy()).to_numpy()
+    np.testing.assert_array_equal(got, want)
+    assert got.any() == repeats
+
+
+@pytest.mark.parametrize("balanced", [True, False])
+def test_layout_of_sorted_rows_equals_the_layout_of_shuffled_rows(balanced):
+    """A balanced frame in (unit, period) order is laid out by copying its columns;
+    the same rows shuffled go through the scatter: the arrays (bit for bit, one NaN
+    pattern), the rows with all values missing and the hash are the same."""
+    from robustgmm.data import panel_from_frame
+    rng = np.random.default_rng(5)
+    df = pd.DataFrame({"unit": np.repeat(np.arange(1, 41), 7),
+                       "period": np.tile(np.arange(1990, 1997), 40)})
+    df["y"], df["x"] = rng.normal(size=len(df)), rng.normal(size=len(df))
+    y = df["y"].to_numpy().copy()
+    y[[3, 100]] = np.nan
+    y[[5]] = -np.nan  # another NaN bit pattern: laid out as the one pattern
+    df["y"] = y
+    if not balanced:
+        df = df.drop(index=[10, 11, 200]).reset_index(drop=True)
+    shuffled = df.sample(frac=1.0, random_state=3)
+    a = panel_from_frame(df, "unit", "period", ["y", "x"])
+    b = panel_from_frame(shuffled, "unit", "period", ["y", "x"])
+    for name in ("y", "x"):
+        assert a.values[name].tobytes() == b.values[name].tobytes()
+    assert np.isnan(a.values["y"]).sum() == 3 + (0 if balanced else 3)
+    assert a.data_hash == b.data_hash and a.dropped_missing == b.dropped_missing == 3
+
+
+def test_affine_copy_with_the_outcome_sums_at_hand_is_the_same_check():
+    from robustgmm.data.validate import _shifted_sums
+    rng = np.random.default_rng(6)
+    y = rng.normal(size=4000) * 1e-3 + 50.0
+    near = 1.0 + 4.0 * y
+    near[9] += 1e-6
+    for x in (1.0 + 4.0 * y, near, rng.normal(size=4000)):
+        assert _affine_copy(x, y, _shifted_sums(y)) == _affine_copy(x, y)
