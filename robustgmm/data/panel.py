@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import InputError
-from .validate import _show, degenerate_columns, unit_codes, validate_frame
+from .validate import _show, _sorted_cells, degenerate_columns, unit_codes, validate_frame
 
 
 def _read_only(arr) -> np.ndarray:
@@ -123,6 +123,22 @@ def panel_hash(units: np.ndarray, periods: np.ndarray, observed: np.ndarray,
     return digest.hexdigest()
 
 
+def _balanced_in_order(units: pd.Series, per: np.ndarray, n_periods: int) -> np.ndarray | None:
+    """The sorted distinct ids when whole-number ids and the periods are in strictly
+    increasing (unit, period) order and every unit has every one of the ``n_periods``
+    periods (then row ``i`` is calendar cell ``i``); else None."""
+    if units.dtype.kind not in "iu" or not len(units):
+        return None
+    ids = units.to_numpy()
+    if not _sorted_cells(ids, per):
+        return None
+    change = ids[1:] != ids[:-1]
+    n_units = 1 + int(np.count_nonzero(change))
+    if n_units * n_periods != len(ids):
+        return None
+    return ids[np.concatenate([[0], np.flatnonzero(change) + 1])]
+
+
 def panel_from_frame(frame: pd.DataFrame, unit: str, period: str, columns,
                      source: str = "<data>") -> Panel:
     """Lay a validated long frame (one row per unit-period) out on the calendar.
@@ -132,20 +148,26 @@ def panel_from_frame(frame: pd.DataFrame, unit: str, period: str, columns,
     on the row order of the file: the one sort of the layout is that of the distinct
     ids (:func:`~robustgmm.data.validate.unit_codes`; none for whole-number ids over
     a narrow range); every column is then one scatter into its
-    flat N × P array, and the hash reads the arrays (:func:`panel_hash`).
+    flat N × P array (a copy for a balanced panel already in that order), and the
+    hash reads the arrays (:func:`panel_hash`).
     """
     columns = list(dict.fromkeys(columns))
     if frame.empty:
         raise InputError(f"{source}: no rows left to estimate on")
-    codes, unit_ids = unit_codes(frame[unit])
     per = frame[period].to_numpy().astype(np.int64, copy=False)
     p0, p1 = int(per.min()), int(per.max())
     periods = np.arange(p0, p1 + 1, dtype=np.int64)
-    n_units, n_periods = len(unit_ids), len(periods)
-    cell = codes.astype(np.int64) * n_periods + (per - p0)
+    n_periods = len(periods)
     # a balanced panel sorted by unit and period (the usual file) fills every cell
-    # in order: cell == arange, so each column is a copy, not a scatter
-    in_order = len(cell) == n_units * n_periods and bool(np.all(cell[1:] > cell[:-1]))
+    # in order (cell == arange), so each column is a copy, not a scatter; with
+    # whole-number ids that is told without the unit codes
+    unit_ids = _balanced_in_order(frame[unit], per, n_periods)
+    in_order = unit_ids is not None
+    if not in_order:
+        codes, unit_ids = unit_codes(frame[unit])
+        cell = codes.astype(np.int64) * n_periods + (per - p0)
+        in_order = len(cell) == len(unit_ids) * n_periods and bool(np.all(cell[1:] > cell[:-1]))
+    n_units = len(unit_ids)
     if in_order:
         observed = np.ones(n_units * n_periods, dtype=bool)
     else:

@@ -134,7 +134,8 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
     # unit ids: present; one type so that sorting works
     units = out[spec.unit]
-    if units.isna().any():
+    # numpy integer ids hold no missing value: no pass over them
+    if units.dtype.kind not in "iu" and units.isna().any():
         first = units.index[units.isna().to_numpy()][0]
         n = int(units.isna().sum())
         problems.append(f"{where}: unit column {spec.unit!r} is empty at {row(first)}"
@@ -210,14 +211,16 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
         num = _numeric(out[col], col, where, row, problems, "column")
         if num is None:
             continue
-        inf = np.isinf(num.to_numpy())
+        vals = num.to_numpy()
+        inf = np.isinf(vals)
         if inf.any():
             first = num.index[inf][0]
             problems.append(f"{where}: column {col!r} holds an infinite value "
                             f"({num[first]}) at {row(first)}"
                             + (f" and {int(inf.sum()) - 1} more" if inf.sum() > 1 else ""))
             continue
-        if num.isna().all():
+        # a present first value settles it without a pass over the column
+        if len(vals) and np.isnan(vals[0]) and np.isnan(vals).all():
             problems.append(f"{where}: column {col!r} is missing in every row")
             continue
         out[col] = num
@@ -320,7 +323,10 @@ def _duplicate_cells(units: pd.Series, periods: np.ndarray) -> pd.Series:
 
 def _sorted_cells(units: np.ndarray, periods: np.ndarray) -> bool:
     """Whether the rows are in strictly increasing (unit, period) order: each row's
-    unit above the previous row's, or the same unit and a later period."""
+    unit above the previous row's, or the same unit and a later period. (The first
+    rows are looked at first: a shuffled file is told at once.)"""
+    if len(units) > 4096 and not _sorted_cells(units[:4096], periods[:4096]):
+        return False
     u0, u1 = units[:-1], units[1:]
     later = u1 > u0
     later |= (u1 == u0) & (periods[1:] > periods[:-1])

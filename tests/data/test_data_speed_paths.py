@@ -160,15 +160,20 @@ def test_duplicates_of_sorted_rows_equal_pandas(ids, repeats):
     assert got.any() == repeats
 
 
+@pytest.mark.parametrize("ids", ["dense", "sparse", "text"])
 @pytest.mark.parametrize("balanced", [True, False])
-def test_layout_of_sorted_rows_equals_the_layout_of_shuffled_rows(balanced):
-    """A balanced frame in (unit, period) order is laid out by copying its columns;
-    the same rows shuffled go through the scatter: the arrays (bit for bit, one NaN
-    pattern), the rows with all values missing and the hash are the same."""
+def test_layout_of_sorted_rows_equals_the_layout_of_shuffled_rows(balanced, ids):
+    """A balanced frame in (unit, period) order is laid out by copying its columns
+    (whole-number ids: told without the unit codes); the same rows shuffled go
+    through the scatter: the ids, the arrays (bit for bit, one NaN pattern), the rows
+    with all values missing and the hash are the same."""
     from robustgmm.data import panel_from_frame
     rng = np.random.default_rng(5)
-    df = pd.DataFrame({"unit": np.repeat(np.arange(1, 41), 7),
-                       "period": np.tile(np.arange(1990, 1997), 40)})
+    units = np.repeat(np.arange(1, 701), 7)  # 4,900 rows: past the first-rows look
+    if ids == "sparse":
+        units = units * 10**9
+    df = pd.DataFrame({"unit": units if ids != "text" else [f"u{u:04d}" for u in units],
+                       "period": np.tile(np.arange(1990, 1997), 700)})
     df["y"], df["x"] = rng.normal(size=len(df)), rng.normal(size=len(df))
     y = df["y"].to_numpy().copy()
     y[[3, 100]] = np.nan
@@ -179,6 +184,8 @@ def test_layout_of_sorted_rows_equals_the_layout_of_shuffled_rows(balanced):
     shuffled = df.sample(frac=1.0, random_state=3)
     a = panel_from_frame(df, "unit", "period", ["y", "x"])
     b = panel_from_frame(shuffled, "unit", "period", ["y", "x"])
+    assert a.units.dtype == b.units.dtype
+    np.testing.assert_array_equal(a.units, b.units)
     for name in ("y", "x"):
         assert a.values[name].tobytes() == b.values[name].tobytes()
     assert np.isnan(a.values["y"]).sum() == 3 + (0 if balanced else 3)
