@@ -165,11 +165,12 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
         ints = per_num.to_numpy().astype(np.int64, copy=False)
         if per.dtype != np.int64:
             out[spec.period] = ints
-        if np.abs(ints).max() > 1e15:
+        bounds = int(ints.min()), int(ints.max())  # one pass each, no |ints| copy
+        if max(abs(bounds[0]), abs(bounds[1])) > 1e15:
             problems.append(f"{where}: period column {spec.period!r} holds values too "
                             f"large to be periods ({_show(per.iloc[int(np.argmax(np.abs(ints)))])})")
         else:
-            _check_calendar(ints, spec.period, where, problems)
+            _check_calendar(ints, spec.period, where, problems, bounds)
     elif per_num is not None:
         if per_num.isna().any():
             first = per_num.index[per_num.isna().to_numpy()][0]
@@ -233,10 +234,12 @@ def validate_frame(frame: pd.DataFrame, spec, source: str | None = None,
 
 
 
-def _check_calendar(ints: np.ndarray, column: str, where: str, problems: list) -> None:
+def _check_calendar(ints: np.ndarray, column: str, where: str, problems: list,
+                    bounds: tuple[int, int] | None = None) -> None:
     """Whole-number periods that cannot be a calendar of consecutive numbers:
-    year-month codes, a span above :data:`MAX_CALENDAR`, or a common spacing above 1."""
-    lo, hi = int(ints.min()), int(ints.max())
+    year-month codes, a span above :data:`MAX_CALENDAR`, or a common spacing above 1.
+    ``bounds``: the first and last period, when already known."""
+    lo, hi = (int(ints.min()), int(ints.max())) if bounds is None else bounds
     span = hi - lo + 1
     months = ints % 100 if 100001 <= lo and hi <= 999912 else None
     if (months is not None and months.min() >= 1 and months.max() <= 12
@@ -251,8 +254,8 @@ def _check_calendar(ints: np.ndarray, column: str, where: str, problems: list) -
             f"{hi} ({span} periods on the calendar); lags are taken "
             "between consecutive whole numbers, so use years or a running "
             "period number")
-    elif (step := _period_step(ints)) > 1:
-        shown = ", ".join(str(v) for v in _distinct(ints)[:3])
+    elif (step := _period_step(ints, lo, hi)) > 1:
+        shown = ", ".join(str(v) for v in _distinct(ints, lo, hi)[:3])
         problems.append(
             f"{where}: period column {column!r} holds periods spaced "
             f"{step} apart ({shown}, ...); lags are taken between consecutive "
@@ -260,17 +263,21 @@ def _check_calendar(ints: np.ndarray, column: str, where: str, problems: list) -
             "period number (1, 2, 3, ...) instead")
 
 
-def _distinct(periods: np.ndarray) -> np.ndarray:
+def _distinct(periods: np.ndarray, lo: int | None = None, hi: int | None = None) -> np.ndarray:
     """The distinct periods in order, from one count over the calendar (its span is
-    at most :data:`MAX_CALENDAR` here): no sort of the rows."""
-    lo = int(periods.min())
+    at most :data:`MAX_CALENDAR` here): no sort of the rows. Periods from 0 to a
+    small last one (years) are counted as they are, without shifting a copy."""
+    lo = int(periods.min()) if lo is None else lo
+    hi = int(periods.max()) if hi is None else hi
+    if 0 <= lo and hi < 1 << 17:
+        return lo + np.flatnonzero(np.bincount(periods, minlength=hi + 1)[lo:])
     return lo + np.flatnonzero(np.bincount(periods - lo))
 
 
-def _period_step(periods: np.ndarray) -> int:
+def _period_step(periods: np.ndarray, lo: int | None = None, hi: int | None = None) -> int:
     """The common spacing of the distinct periods (1 for consecutive years; 2 for
     biennial waves): the greatest common divisor of their differences."""
-    distinct = _distinct(periods)
+    distinct = _distinct(periods, lo, hi)
     if len(distinct) < 2:
         return 1
     return int(reduce(math.gcd, np.diff(distinct).tolist()))

@@ -200,3 +200,20 @@ def test_affine_copy_with_the_outcome_sums_at_hand_is_the_same_check():
     near[9] += 1e-6
     for x in (1.0 + 4.0 * y, near, rng.normal(size=4000)):
         assert _affine_copy(x, y, _shifted_sums(y)) == _affine_copy(x, y)
+
+
+@pytest.mark.parametrize("periods", [
+    [2001, 2003, 2003, 2001, 2007],        # years: counted as they are
+    [0, 5, 5, 1],                          # from 0
+    [-3, -1, 4, 4],                        # below 0: shifted
+    [10**9, 10**9 + 2, 10**9 + 1],         # beyond the small calendar: shifted
+    [131071, 131070, 131072],              # across the limit of the unshifted count
+])
+def test_distinct_periods_equal_numpy_unique(periods):
+    from robustgmm.data.validate import _distinct, _period_step
+    ints = np.asarray(periods, dtype=np.int64)
+    want = np.unique(ints)
+    np.testing.assert_array_equal(_distinct(ints), want)
+    np.testing.assert_array_equal(_distinct(ints, int(ints.min()), int(ints.max())), want)
+    gaps = np.diff(want)
+    assert _period_step(ints) == (int(np.gcd.reduce(gaps)) if len(gaps) else 1)
