@@ -32,19 +32,25 @@ influence is ``(∂b/∂w_i)/se``: the standard error is held at its value (firs
 order in the estimate only); the search (:mod:`.dropping`) decides with exact refits,
 which do move the standard error.
 
-Cost of the per-unit sums: one pass over the chunks. When every unit's
-``Z_i'HZ_i`` is kept (below), each unit's instrument rows are laid out densely
-(``R`` rows, one per instrument block, × ``L`` kept columns) and ``Z_i'y_i``,
-``Z_i'X_i``, ``Z_i'HZ_i`` are batched products, ``O(n·R·L·(K + L))``; otherwise the
-per-unit ``Z_i'y_i``, ``Z_i'X_i`` come from the kernel of
-:func:`.moments.unit_moments_t` (``O(n·W·K)``). Memory: ``N·L·K`` numbers (laid
-out as ``(L, N, K)``, so that ``v'Z_i'X_i`` is one matrix-vector product) plus ``N·L²`` for the
-``Z_i'HZ_i``. These are kept only when ``8·N·L·(L + R)`` bytes (with the dense rows
-of the chunks) fit in a quarter of the core's memory budget
+Cost of the per-unit sums: one pass over the chunks, in one of two layouts
+(:class:`_UnitArrays`). Each unit's instrument rows are one row per laid-out block
+(``R`` blocks) with ``E`` instrument entries on the ``L`` kept columns.
+
+* **dense**: ``Z_i'X_i`` (``N·L·K`` numbers, laid out as ``(L, N, K)``, so that
+  ``v'Z_i'X_i`` is one matrix-vector product) and every unit's ``Z_i'HZ_i``
+  (``N·L²``), batched products ``O(N·R·L·(K + L))``; a form ``p'Z_i'HZ_i q`` is then
+  one product with the stored matrices;
+* **entries**: the entries themselves (``N·E`` numbers) and the block rows of ``X``
+  (``N·R·K``); every product with ``Z_i'X_i`` and every form ``p'Z_i'HZ_i q`` is a
+  pass over them, ``O(N·(E + R·K))``, with no pass over the data.
+
+The dense layout is taken when its ``8·N·L·(L + R)`` bytes (with the dense rows of
+the chunks) fit in a quarter of the core's memory budget
 (:func:`.engine.memory_budget`, ``ROBUSTGMM_MEMORY_MB``: half of it holds the
-prepared chunks, a quarter the chunk being built); otherwise every influence costs
-a pass over the data for the bilinear forms ``p'Z_i'HZ_i q`` (:class:`_HForms`,
-``O(n·W·K)``) and a refit one one-unit chunk per dropped unit.
+prepared chunks, a quarter the chunk being built) and its products are the cheaper,
+``L·K ≤ 1.5·(E + R·K)`` (:data:`DENSE_FACTOR`, measured): few instruments with many
+entries each (collapsed); per-period instruments (one entry each, ``L`` in the
+hundreds) take the entries.
 
 **Exact refit** (:meth:`UnitSums.refit`) without ``D``: the dropped units' stored
 ``Z_i'HZ_i``, ``Z_i'X_i``, ``Z_i'y_i`` are subtracted from ``M``, ``Q``, ``q``; the
@@ -55,11 +61,11 @@ dropped ones), ``O(N·L·(K + L))`` per evaluation, the residual moments ``g_i(b
 computed once per estimate and shared by ``S``, ``T`` and the influence.
 
 **One greedy step** (:meth:`UnitSums.state`: a refit and the influence of every unit
-on it) is therefore ``O(N·L·(K + L) + L³)`` with no pass over the data: the forms
-``(AQ)'Z_i'HZ_i a₁`` are one batched product of the stored ``Z_i'HZ_i`` with ``a₁``
-(``O(N·L²)``); measured 0.16-0.17 of a fit (CPU time) at N = 5,000 (``robustgmm bench``,
-workload 8). The estimators and variances are those of the fit itself
-(:func:`.family._solution_stage`, :mod:`.covariance`), so a refit equals a fit of
+on it) is therefore ``O(N·L·(K + L) + L³)`` (dense) or ``O(N·(E + R·K + L²) + L³)``
+(entries) with no pass over the data: the forms ``(AQ)'Z_i'HZ_i a₁`` are one
+product per unit of ``Z_i'HZ_i a₁`` with ``AQ``; measured 0.16-0.17 of a fit (CPU
+time) at N = 5,000 (``robustgmm bench``, workload 8). The estimators and variances
+are those of the fit itself (:func:`.family._solution_stage`, :mod:`.covariance`), so a refit equals a fit of
 the panel without ``D`` when the reduced panel keeps the same instrument and
 regressor columns (the test checks this to 1e-10).
 
@@ -75,76 +81,114 @@ from dataclasses import dataclass
 from types import SimpleNamespace
 
 import numpy as np
+from scipy import sparse
 
 from ..options import Errors, Steps, parse
 from . import covariance, diagnostics, longrun
 from .linalg import sym_pinv
-from .moments import first_moments, prepare, unit_moments_t
 from .problem import GMMProblem, _scale, efficient_gmm
 
 
-class _UnitArrays:
-    """Pass task: per-unit ``Z_i'y_i`` (N, L), ``Z_i'X_i`` (N, L, K; also laid out as
-    (L, N, K)), the transformed-row sums of ``y²``, ``x y``, ``x x'`` and rows (for
-    σ²) and, with ``with_zhz``, every unit's ``Z_i'HZ_i`` (N, L, L) on the kept
-    instrument columns, written chunk by chunk into arrays allocated once.
+#: The dense layout is chosen when ``L·K ≤ DENSE_FACTOR · (E + R·K)`` (and it fits
+#: the memory budget): one greedy step measured (CPU time, one BLAS thread, N = 1,500
+#: to 5,000) in six models, dense / entries in ms: collapsed lags 2-4 T = 10
+#: 4.6 / 8.3 and collapsed all lags T = 12 6.6 / 9.2 (dense); per-period T = 6
+#: 4.1 / 3.7, difference T = 7 4.4 / 3.3, lags 2-3 T = 12 19.3 / 9.5, all lags
+#: T = 12 29.7 / 9.1 (entries). The rule with 1.5 picks the faster layout in all six.
+DENSE_FACTOR = 1.5
 
-    With ``with_zhz`` each unit's instrument rows are laid out densely (``Z_i``: one
-    row per laid-out block × the kept columns) and ``Z_i'y_i``, ``Z_i'X_i``,
-    ``Z_i'(H Z_i)`` are batched products, ``H`` the one-step weight of
-    :func:`.moments.first_moments` on the blocks (their diagonal weights, −1 between
-    first-difference neighbours); without (less memory), ``Z_i'y_i`` and
-    ``Z_i'X_i`` come from the kernel :func:`.moments.unit_moments_t`."""
+
+def kept_entries(prob: GMMProblem) -> int:
+    """``E``: the instrument entries of a unit's laid-out blocks on the kept columns."""
+    return int(np.isin(prob.engine.layout.ent_col, prob.engine_cols).sum())
+
+
+def dense_layout(N: int, L: int, K: int, R: int, E: int, budget: int) -> bool:
+    """Whether the per-unit sums take the dense layout (module docstring): its
+    ``8·N·L·(L + R)`` bytes fit a quarter of the core's memory ``budget`` and its
+    products are the cheaper (:data:`DENSE_FACTOR`)."""
+    return 8 * N * L * (L + R) <= budget // 4 and L * K <= DENSE_FACTOR * (E + R * K)
+
+
+class _UnitArrays:
+    """Pass task: per-unit ``Z_i'y_i`` (N, L), the transformed-row sums of ``y²``,
+    ``x y``, ``x x'`` and rows (for σ²), and the per-unit arrays of one of two
+    layouts, written chunk by chunk into arrays allocated once.
+
+    Each unit's instrument rows are one row per laid-out block (``R`` blocks, the
+    transformed ``y`` and ``X`` rows of their slots) with the block's instrument
+    entries on the kept columns, as :func:`.moments.first_moments` sums them.
+
+    * ``with_zhz`` (dense): ``Z_i`` laid out densely (R × L), and ``Z_i'y_i``,
+      ``Z_i'X_i`` (stored as (L, N, K)), ``Z_i'(H Z_i)`` (N, L, L) batched products,
+      ``H`` the one-step weight on the blocks (their diagonal weights, −1 between
+      first-difference neighbours);
+    * otherwise (entries): the instrument entries themselves (``E`` kept entries × N),
+      the block rows of ``y`` (R, N) and ``X`` (R, N, K), from which every product
+      with ``Z_i'X_i`` and every form ``p'Z_i'HZ_i q`` is a pass over these arrays
+      (:class:`UnitSums`), ``O(N·(E + R·K))`` instead of ``O(N·L·K)``."""
 
     def __init__(self, prob: GMMProblem, with_zhz: bool = False, with_ssr: bool = True):
         self.prob = prob
         N, L, K = prob.design.panel.n_units, prob.L, prob.K
-        # Z_i'X_i is stored as (L, N, K) only (UnitSums.zx is its (N, L, K) view)
-        self.zy, self.zxl = np.empty((N, L)), np.empty((L, N, K))
+        self.zy = np.empty((N, L))
         self.yy, self.xy, self.xx = ((np.empty(N), np.empty((N, K)), np.empty((N, K, K)))
                                      if with_ssr else (None, None, None))
         self.n_t = np.empty(N)
-        self.zhz = np.empty((N, L, L)) if with_zhz else None
         self.lo = 0
+        lay = prob.engine.layout
+        pos = np.full(lay.L, -1, dtype=np.int64)
+        pos[prob.engine_cols] = np.arange(len(prob.engine_cols))
+        ent_pos = pos[lay.ent_col]
+        #: the kept entries (in block order), the block and kept column of each
+        self.keep = np.flatnonzero(ent_pos >= 0)
+        R = len(lay.block_slot)  # a row per laid-out block, as first_moments sums them
+        self.rows = np.repeat(np.arange(R), lay.stops - lay.starts)[self.keep]
+        self.cols = ent_pos[self.keep]
+        self.R = R
+        E = len(self.keep)
+        #: sums the entries into their columns (L × E) and their blocks (R × E)
+        self.col_sum = sparse.csr_matrix((np.ones(E), (self.cols, np.arange(E))), shape=(L, E))
+        self.block_sum = sparse.csr_matrix((np.ones(E), (self.rows, np.arange(E))),
+                                           shape=(R, E))
+        #: each block's range of kept entries (they are in block order)
+        self.block_bounds = np.searchsorted(self.rows, np.arange(R + 1))
+        self.dense = with_zhz
         if with_zhz:
-            lay = prob.engine.layout
-            pos = np.full(lay.L, -1, dtype=np.int64)
-            pos[prob.engine_cols] = np.arange(len(prob.engine_cols))
-            ent_pos = pos[lay.ent_col]
-            self.keep = np.flatnonzero(ent_pos >= 0)
-            R = len(lay.block_slot)  # a row per laid-out block, as first_moments sums them
-            self.rows = np.repeat(np.arange(R), lay.stops - lay.starts)[self.keep]
-            self.cols = ent_pos[self.keep]
+            # Z_i'X_i is stored as (L, N, K) only (UnitSums.zx is its (N, L, K) view)
+            self.zxl = np.empty((L, N, K))
+            self.zhz = np.empty((N, L, L))
             H = np.zeros((R, R))
             H[np.arange(R), np.arange(R)] = lay.block_diag
             for j, k, _, _ in lay.pairs:
                 H[j, k] -= 1.0
                 H[k, j] -= 1.0
-            self.H, self.R = H, R
+            self.H = H
+        else:
+            self.zxl = self.zhz = None
+            self.entries = np.empty((len(self.keep), N))
+            self.x_rows = np.empty((R, N, K))
 
     def __call__(self, ctx):
         prob, pc, lay = self.prob, ctx.pc, ctx.layout
         lo, hi = self.lo, self.lo + pc.n  # the engine passes the chunks in unit order
         self.lo = hi
-        if self.zhz is not None:
+        slots = lay.block_slot  # the row slot (equation · P + period) of each block
+        y = np.concatenate(pc.y, axis=1)[:, slots]
+        x = np.concatenate(pc.x, axis=1)[:, slots[:, None], prob.keep_x[None, :]]
+        if self.dense:
             Z = np.zeros((pc.n, self.R, prob.L))
             Z[:, self.rows, self.cols] = pc.ZT[self.keep].T
             ZT = Z.transpose(0, 2, 1)
-            slots = lay.block_slot  # the row slot (equation · P + period) of each block
-            y = np.concatenate(pc.y, axis=1)[:, slots]
-            x = np.concatenate(pc.x, axis=1)[:, slots[:, None], prob.keep_x[None, :]]
             np.matmul(ZT, y[:, :, None], out=self.zy[lo:hi, :, None])
             np.matmul(ZT, x, out=self.zxl[:, lo:hi].transpose(1, 0, 2))
             np.matmul(ZT, np.matmul(self.H, Z), out=self.zhz[lo:hi])
         else:
-            buf = ctx.scratch()
-            rows_y = np.concatenate([y.T for y in pc.y])
-            gy = unit_moments_t(pc, lay, rows_y, prob.scatter, buf, plan=prob.moment_plan)
-            self.zy[lo:hi] = gy.T
-            for j, col in enumerate(prob.keep_x):
-                rows_x = np.concatenate([x[:, :, col].T for x in pc.x])
-                gx = unit_moments_t(pc, lay, rows_x, prob.scatter, buf, plan=prob.moment_plan)
-                self.zxl[:, lo:hi, j] = gx
+            ent = pc.ZT[self.keep]
+            self.entries[:, lo:hi] = ent
+            self.x_rows[:, lo:hi] = x.transpose(1, 0, 2)
+            # Z_i'y_i = Σ over entries e of z_e y_(block of e), summed into its column
+            self.zy[lo:hi] = (self.col_sum @ (ent * y.T[self.rows])).T
         if self.yy is not None:
             yt, xt = pc.y[0], pc.x[0][:, :, prob.keep_x]
             xtt = xt.transpose(0, 2, 1)
@@ -152,37 +196,6 @@ class _UnitArrays:
             np.matmul(xtt, yt[:, :, None], out=self.xy[lo:hi, :, None])
             np.matmul(xtt, xt, out=self.xx[lo:hi])
         self.n_t[lo:hi] = pc.rows[0].sum(axis=1)
-
-
-class _HForms:
-    """Pass task: per-unit bilinear forms ``p_j' Z_i'HZ_i q_j`` for the columns of
-    ``P`` (L, m) and ``Qv`` (L, m, or L, 1 for one vector shared by every column):
-    the per-row values ``Z_i p`` of each block, then ``H`` (the diagonal weights of
-    the blocks and the first-difference neighbours), as in
-    :func:`.moments.first_moments`."""
-
-    def __init__(self, prob: GMMProblem, P: np.ndarray, Qv: np.ndarray):
-        L_all = prob.engine.layout.L
-        self.P = np.zeros((L_all, P.shape[1]))
-        self.P[prob.engine_cols] = P
-        self.Q = np.zeros((L_all, Qv.shape[1]))
-        self.Q[prob.engine_cols] = Qv
-        self.parts: list = []
-
-    def __call__(self, ctx):
-        pc, lay = ctx.pc, ctx.layout
-        nb = len(lay.block_slot)
-        hp = np.empty((nb, self.P.shape[1], pc.n))
-        hq = np.empty((nb, self.Q.shape[1], pc.n))
-        for j in range(nb):
-            lo, hi = lay.starts[j], lay.stops[j]
-            cols = lay.ent_col[lo:hi]
-            hp[j] = self.P[cols].T @ pc.ZT[lo:hi]
-            hq[j] = self.Q[cols].T @ pc.ZT[lo:hi]
-        out = np.einsum("b,bmn->nm", lay.block_diag, hp * hq)
-        for j, k, _, _ in lay.pairs:
-            out -= (hp[j] * hq[k] + hp[k] * hq[j]).T
-        self.parts.append(out)
 
 
 @dataclass(frozen=True)
@@ -228,8 +241,8 @@ class UnitSums:
         self.steps = parse(Steps, spec.steps)
         self.errors = parse(Errors, spec.errors)
         N, L, R = prob.design.panel.n_units, prob.L, len(prob.engine.layout.block_slot)
-        if store_zhz is None:  # the module docstring's memory rule
-            store_zhz = 8 * N * L * (L + R) <= prob.source.budget // 4
+        if store_zhz is None:  # the module docstring's layout rule
+            store_zhz = dense_layout(N, L, prob.K, R, kept_entries(prob), prob.source.budget)
         # the sum of squared residuals only feeds σ², which only the conventional
         # one-step variance reads: its per-unit sums are skipped otherwise
         with_ssr = covariance.estimator(self.steps, self.errors) is covariance.ConventionalOneStep
@@ -237,13 +250,22 @@ class UnitSums:
         prob.engine.run_pass([task])
         self.zy, self.yy, self.xy, self.xx, self.n_t = (
             task.zy, task.yy, task.xy, task.xx, task.n_t)
-        # Z_i'X_i of every unit stored as (L, N, K): v'Z_i'X_i for all units is then one
-        # matrix-vector product over long rows (measured about 2× faster than a batched
-        # product over N small matrices), Z_i'X_i b one over (L·N, K)
+        self.L, self.N, self.K = L, N, prob.K
+        # dense: Z_i'X_i of every unit stored as (L, N, K): v'Z_i'X_i for all units is
+        # then one matrix-vector product over long rows (measured about 2× faster than
+        # a batched product over N small matrices), Z_i'X_i b one over (L·N, K)
         self._zxl = task.zxl
-        self.L, self.N, self.K = self._zxl.shape
-        #: every unit's Z_i'HZ_i (N, L, L) when stored, else None (forms by a pass)
+        #: every unit's Z_i'HZ_i (N, L, L) when stored (dense layout), else None
         self.zhz_units = task.zhz
+        # entries: the kept instrument entries (E, N) and the block rows of X
+        self._entries = None if store_zhz else task.entries
+        self._x_rows = None if store_zhz else task.x_rows
+        self._ent_rows, self._ent_cols = task.rows, task.cols
+        self._col_sum, self._block_sum = task.col_sum, task.block_sum
+        self._block_bounds = task.block_bounds
+        lay = prob.engine.layout
+        self._block_diag = np.asarray(lay.block_diag, dtype=float)
+        self._pairs = [(j, k) for j, k, _, _ in lay.pairs]
         self.active = prob.design.unit_has_rows.copy()
         self.rows = (prob.design.sample_mask.sum(axis=1) if hasattr(prob.design, "sample_mask")
                      else None)
@@ -259,32 +281,59 @@ class UnitSums:
     # ----------------------------------------------------------- unit sums
     @property
     def zx(self) -> np.ndarray:
-        """Every unit's ``Z_i'X_i`` (N, L, K), a view of the stored (L, N, K) array."""
-        return self._zxl.transpose(1, 0, 2)
+        """Every unit's ``Z_i'X_i`` (N, L, K): a view of the stored (L, N, K) array
+        (dense layout), or built from the entries (a new array)."""
+        if self._zxl is not None:
+            return self._zxl.transpose(1, 0, 2)
+        vals = self._entries[:, :, None] * self._x_rows[self._ent_rows]   # (E, N, K)
+        return np.asarray(self._col_sum @ vals.reshape(len(vals), -1)).reshape(
+            self.L, self.N, self.K).transpose(1, 0, 2)
 
     def zx_times(self, b: np.ndarray) -> np.ndarray:
-        """``Z_i'X_i b`` of every unit (N, L)."""
-        return (self._zxl.reshape(-1, self.K) @ b).reshape(self.L, self.N).T
+        """``Z_i'X_i b`` of every unit (N, L): with entries, ``Σ_e z_e (x_(block e)'b)``
+        summed into each entry's column."""
+        if self._zxl is not None:
+            return (self._zxl.reshape(-1, self.K) @ b).reshape(self.L, self.N).T
+        xb = (self._x_rows.reshape(-1, self.K) @ b).reshape(-1, self.N)    # (R, N)
+        return np.asarray(self._col_sum @ (self._entries * xb[self._ent_rows])).T
 
     def times_zx(self, v: np.ndarray) -> np.ndarray:
-        """``v'Z_i'X_i`` of every unit (N, K)."""
-        return (v @ self._zxl.reshape(self.L, -1)).reshape(self.N, self.K)
+        """``v'Z_i'X_i`` of every unit (N, K): with entries, ``Σ_r (Z_i v)_r x_r``
+        over the blocks ``r``."""
+        if self._zxl is not None:
+            return (v @ self._zxl.reshape(self.L, -1)).reshape(self.N, self.K)
+        zv = np.asarray(self._block_sum @ (self._entries * v[self._ent_cols, None]))  # (R, N)
+        return np.einsum("rn,rnk->nk", zv, self._x_rows)
 
-    def weighted_zx(self, c: np.ndarray) -> np.ndarray:
-        """``Σ_i c_i Z_i'X_i`` (L, K)."""
-        return np.matmul(c, self._zxl)
+    def weighted_zx(self, c: np.ndarray, units=None) -> np.ndarray:
+        """``Σ_i c_i Z_i'X_i`` (L, K) over every unit, or over the positions ``units``
+        (``c`` then one weight per listed unit)."""
+        if self._zxl is not None:
+            zxl = self._zxl if units is None else self._zxl[:, units]
+            return np.matmul(c, zxl)
+        ent = self._entries if units is None else self._entries[:, units]
+        x_rows = self._x_rows if units is None else self._x_rows[:, units]
+        weighted = ent * c
+        per_entry = np.empty((len(ent), self.K))
+        bounds = self._block_bounds
+        for r in range(len(bounds) - 1):
+            lo, hi = bounds[r], bounds[r + 1]
+            per_entry[lo:hi] = weighted[lo:hi] @ x_rows[r]
+        return np.asarray(self._col_sum @ per_entry)
 
     def unit_zhz(self, i: int) -> np.ndarray:
-        """``Z_i'HZ_i`` of unit ``i`` on the kept instrument columns (one-unit chunk)."""
+        """``Z_i'HZ_i`` of unit ``i`` on the kept instrument columns."""
         if self.zhz_units is not None:
             return self.zhz_units[i]
         out = self._zhz.get(i)
         if out is None:
-            eng = self.prob.engine
-            pc = prepare(eng.design.chunk(i, i + 1), eng.layout)
-            zhz = first_moments(pc, eng.layout)[2]
-            cols = self.prob.engine_cols
-            out = self._zhz[i] = zhz[np.ix_(cols, cols)]
+            Z = np.zeros((len(self._block_diag), self.L))
+            Z[self._ent_rows, self._ent_cols] = self._entries[:, i]
+            HZ = self._block_diag[:, None] * Z
+            for j, k in self._pairs:
+                HZ[j] -= Z[k]
+                HZ[k] -= Z[j]
+            out = self._zhz[i] = Z.T @ HZ
         return out
 
     def _sums(self, dropped: np.ndarray, weights: np.ndarray | None = None):
@@ -298,7 +347,7 @@ class UnitSums:
             M = prob.zhz.copy()
             for i, c in zip(dropped, lost):
                 M -= c * self.unit_zhz(int(i))
-        Q = prob.zx - np.matmul(lost, self._zxl[:, dropped])
+        Q = prob.zx - self.weighted_zx(lost, dropped)
         q = prob.zy - lost @ self.zy[dropped]
         return M, Q, q
 
@@ -326,13 +375,21 @@ class UnitSums:
                 resid[key] = self.zy - self.zx_times(beta)
             return resid[key]
 
+        root_w = np.sqrt(w)
+
+        def outer_sum(g):
+            # Σ w_i g_i g_i' as G'G with G = √w g: the symmetric product, half the
+            # multiplications of (w g)'g (the weights are never negative)
+            gw = g * root_w[:, None]
+            return gw.T @ gw
+
         def moments_at(beta):
             g = g_at(beta)
             if self.xx is None:  # not needed by this model's variance (σ² unused)
-                return (g * w[:, None]).T @ g, math.nan
+                return outer_sum(g), math.nan
             xxb = (self.xx.reshape(-1, self.K) @ beta).reshape(self.N, self.K)
             ssr = float(w @ (self.yy - 2 * self.xy @ beta + xxb @ beta))
-            return (g * w[:, None]).T @ g, ssr
+            return outer_sum(g), ssr
 
         products: dict = {}
 
@@ -415,7 +472,7 @@ class UnitSums:
             b1 = one.beta
             a1 = one.A @ (q - Q @ b1)
             AQ = one.A @ Q
-            forms = self._h_forms(AQ, a1[:, None])
+            forms = self._h_forms(AQ, a1)
             d1 = (self.times_zx(a1) - forms + red.g_at(b1) @ AQ) @ one.bread
             if self.steps == Steps.ONE:
                 return refit, d1 * w[:, None]
@@ -447,19 +504,21 @@ class UnitSums:
                 return infl @ longrun.gradient(refit.beta, idx, ar)
         raise KeyError(label)
 
-    def _h_forms(self, P, Qv) -> np.ndarray:
-        """``p_j' Z_i'HZ_i q_j`` for every unit (N, m): ``P`` (L, m), ``Qv`` (L, m) or
-        (L, 1) (one vector for every column). From the stored ``Z_i'HZ_i`` (no pass
-        over the data) when kept, else one pass (:class:`_HForms`)."""
+    def _h_forms(self, P, q) -> np.ndarray:
+        """``p_j' Z_i'HZ_i q`` for every unit (N, m) and the columns ``p_j`` of ``P``
+        (L, m), one vector ``q`` (L,): ``(Z_i'HZ_i q)' P``. With the entries,
+        ``Z_i'H(Z_i q)`` is the per-block values ``Z_i q``, ``H`` applied on the blocks
+        and the entries summed back into their columns."""
         if self.zhz_units is not None:
-            hq = self.zhz_units @ Qv                      # (N, L, m or 1)
-            if Qv.shape[1] == 1:
-                return hq[:, :, 0] @ P
-            return np.einsum("nlm,lm->nm", hq, P)
-        task = _HForms(self.prob, P, Qv)
-        self.prob.engine.run_pass([task])
-        return np.concatenate(task.parts)
-
+            return (self.zhz_units @ q) @ P
+        ent = self._entries
+        zq = np.asarray(self._block_sum @ (ent * q[self._ent_cols, None]))     # (R, N)
+        hzq = self._block_diag[:, None] * zq
+        for j, k in self._pairs:
+            hzq[j] -= zq[k]
+            hzq[k] -= zq[j]
+        zhzq = np.asarray(self._col_sum @ (ent * hzq[self._ent_rows]))         # (L, N)
+        return zhzq.T @ P
 
 def unit_sums(spec, panel, store_zhz: bool | None = None, **kw) -> UnitSums:
     """The :class:`UnitSums` of ``spec`` on ``panel`` (its own moment problem;

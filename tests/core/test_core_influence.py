@@ -41,6 +41,13 @@ def reduced_panel(panel: Panel, dropped) -> Panel:
                  values={k: np.asarray(v)[keep] for k, v in panel.values.items()})
 
 
+#: the two layouts of the per-unit sums (robustgmm.core.influence._UnitArrays): every
+#: unit's Z_i'HZ_i stored (dense), or the instrument entries (when that does not fit
+#: the memory budget); the checks against full re-estimation and finite differences
+#: run on both
+LAYOUTS = pytest.mark.parametrize("store", [True, False], ids=["dense", "entries"])
+
+
 def _close(a, b, rel=1e-10):
     a, b = np.asarray(a), np.asarray(b)
     scale = max(float(np.max(np.abs(b))), 1e-300)
@@ -53,9 +60,10 @@ def small():
 
 
 @pytest.mark.parametrize("name", SPECS)
-def test_refit_equals_full_reestimation(small, name):
+@LAYOUTS
+def test_refit_equals_full_reestimation(small, name, store):
     spec = sim_spec(**SPECS[name])
-    us = unit_sums(spec, small)
+    us = unit_sums(spec, small, store_zhz=store)
     full = fit(spec, small)
     r0 = us.refit([])
     _close(r0.beta, [t.estimate for t in full.terms])
@@ -75,18 +83,18 @@ def test_unit_sums_add_up(small):
     _close(us.zy.sum(axis=0), prob.zy)
     _close(us.zx.sum(axis=0), prob.zx)
     rng = np.random.default_rng(0)
-    P, Qv = rng.normal(size=(us.L, 3)), rng.normal(size=(us.L, 3))
-    forms = us._h_forms(P, Qv).sum(axis=0)
-    _close(forms, np.einsum("lj,lm,mj->j", P, prob.zhz, Qv))
+    P, q = rng.normal(size=(us.L, 3)), rng.normal(size=us.L)
+    forms = us._h_forms(P, q).sum(axis=0)
+    _close(forms, np.einsum("lj,lm,m->j", P, prob.zhz, q))
     _close(sum(us.unit_zhz(i) for i in range(small.n_units)), prob.zhz)
 
 
 @pytest.mark.parametrize("name", ["system-two-step", "system-two-step-fod-time",
                                   "difference-one-step-robust"])
-def test_stored_unit_zhz_equal_the_pass(small, name):
-    """The stored per-unit ``Z_i'HZ_i`` (no pass per step) sum to the fit's ``Z'HZ``
-    and give the same per-unit moments, forms, refits and influence as the kernels
-    and the pass over the chunks (the fallback when they do not fit the memory
+def test_stored_unit_zhz_equal_the_entries(small, name):
+    """The stored per-unit ``Z_i'HZ_i`` and ``Z_i'X_i`` (dense layout) sum to the
+    fit's ``Z'HZ`` and give the same per-unit moments, products, forms, refits and
+    influence as the instrument entries (the layout when they do not fit the memory
     budget): the same sums, two routes."""
     spec = sim_spec(**SPECS[name])
     kept, passed = unit_sums(spec, small, store_zhz=True), unit_sums(spec, small, store_zhz=False)
@@ -97,9 +105,15 @@ def test_stored_unit_zhz_equal_the_pass(small, name):
     for i in (0, 13, 59):
         _close(kept.unit_zhz(i), passed.unit_zhz(i))
     rng = np.random.default_rng(1)
-    P, Qv = rng.normal(size=(kept.L, 3)), rng.normal(size=(kept.L, 3))
-    _close(kept._h_forms(P, Qv), passed._h_forms(P, Qv))
-    _close(kept._h_forms(P, Qv[:, :1]), passed._h_forms(P, np.repeat(Qv[:, :1], 3, axis=1)))
+    P, q = rng.normal(size=(kept.L, 3)), rng.normal(size=kept.L)
+    _close(kept._h_forms(P, q), passed._h_forms(P, q))
+    _close(passed._h_forms(P, q), np.einsum("lj,nlm,m->nj", P, kept.zhz_units, q))
+    b = rng.normal(size=kept.K)
+    _close(kept.zx_times(b), passed.zx_times(b))
+    _close(kept.times_zx(q), passed.times_zx(q))
+    c = rng.normal(size=kept.N)
+    _close(kept.weighted_zx(c), passed.weighted_zx(c))
+    _close(kept.weighted_zx(c[:3], [5, 9, 2]), passed.weighted_zx(c[:3], [5, 9, 2]))
     dropped = (4, 30)
     (r1, d1), (r2, d2) = kept.state(dropped), passed.state(dropped)
     _close(r1.beta, r2.beta)
@@ -107,18 +121,24 @@ def test_stored_unit_zhz_equal_the_pass(small, name):
     _close(d1, d2)
 
 
-def test_a_small_memory_budget_does_not_store_the_unit_zhz(small):
-    """The memory rule: the N·L² numbers are kept only within a quarter of the
-    budget (robustgmm.core.engine.memory_budget); a tiny budget takes the pass."""
-    spec = sim_spec(steps=2)
-    assert unit_sums(spec, small).zhz_units is not None
-    assert unit_sums(spec, small, memory_mb=0.01).zhz_units is None
+def test_the_layout_follows_memory_and_cost(small):
+    """The layout rule (robustgmm.core.influence.dense_layout): the N·L² numbers of
+    the dense layout are kept only within a quarter of the memory budget
+    (robustgmm.core.engine.memory_budget; a tiny budget takes the entries), and only
+    where its products are the cheaper: few instruments with many entries each
+    (collapsed), not many instruments of one entry each (per-period, all lags)."""
+    collapsed = sim_spec(steps=2, form="collapsed")
+    assert unit_sums(collapsed, small).zhz_units is not None
+    assert unit_sums(collapsed, small, memory_mb=0.01).zhz_units is None
+    per_period = unit_sums(sim_spec(steps=2, form="per-period"), small)
+    assert per_period.zhz_units is None and per_period.L > 20
 
 
 @pytest.mark.parametrize("name", SPECS)
-def test_influence_is_the_weight_derivative(small, name):
+@LAYOUTS
+def test_influence_is_the_weight_derivative(small, name, store):
     spec = sim_spec(**SPECS[name])
-    us = unit_sums(spec, small)
+    us = unit_sums(spec, small, store_zhz=store)
     infl = us.influence()
     eps = 1e-5
     for i in (5, 22, 59):
@@ -152,12 +172,13 @@ def _long_run_of(fit_result, label):
 
 
 @pytest.mark.parametrize("name", LONG_RUN)
-def test_long_run_refit_equals_the_long_run_effect_of_a_reduced_fit(small, name):
+@LAYOUTS
+def test_long_run_refit_equals_the_long_run_effect_of_a_reduced_fit(small, name, store):
     """An exact refit's long-run effect (estimate, delta-method SE, p) equals the
     long-run effect the fit reports on the panel without the units (the same
     formula, robustgmm.core.longrun, on an independently re-estimated model)."""
     spec = sim_spec(**SPECS[name])
-    us = unit_sums(spec, small)
+    us = unit_sums(spec, small, store_zhz=store)
     assert {"x[long-run]", "w[long-run]"} <= set(us.term_labels)
     for label in ("x[long-run]", "w[long-run]"):
         r0 = us.refit([]).term(label)
@@ -170,12 +191,13 @@ def test_long_run_refit_equals_the_long_run_effect_of_a_reduced_fit(small, name)
 
 
 @pytest.mark.parametrize("name", LONG_RUN)
-def test_long_run_influence_is_the_weight_derivative(small, name):
+@LAYOUTS
+def test_long_run_influence_is_the_weight_derivative(small, name, store):
     """``∂θ/∂w_i`` of a long-run effect (gradient times ``∂b/∂w_i``) equals a central
     finite difference of the exact refits' long-run effect in the unit's weight
     (Broderick, Giordano & Meager 2020, section 2: the influence is that derivative)."""
     spec = sim_spec(**SPECS[name])
-    us = unit_sums(spec, small)
+    us = unit_sums(spec, small, store_zhz=store)
     base, infl = us.state(())
     eps = 1e-5
     for label in ("x[long-run]", "w[long-run]"):
