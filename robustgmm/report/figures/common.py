@@ -4,7 +4,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 from matplotlib.lines import Line2D
-from scipy.stats import norm
+from scipy.special import ndtri
 
 from ..inputs import AuditFolder
 from ..labels import mathtext_safe, value_text
@@ -57,7 +57,10 @@ def no_data(ax, text: str):
 
 
 def critical(alpha: float) -> float:
-    return float(norm.ppf(1.0 - alpha / 2.0))
+    """The two-sided normal critical value ``Φ⁻¹(1 − α/2)`` (scipy.special.ndtri, the
+    function scipy.stats.norm.ppf evaluates, without importing scipy.stats: 0.45 s of
+    the report's start-up in a process that has not estimated anything)."""
+    return float(ndtri(1.0 - alpha / 2.0))
 
 
 def sorted_term(audit: AuditFolder, term: str) -> pd.DataFrame:

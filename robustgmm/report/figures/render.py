@@ -66,15 +66,36 @@ class FigureFile:
     paths: tuple[Path, ...] = field(default_factory=tuple)
 
 
+#: Resolution of the PNG figures (dots per inch).
+PNG_DPI = 150
+
+
+def _tight_box(fig: Figure):
+    """The figure's tight bounding box (inches, with the usual padding), measured
+    once at the PNG's resolution and used for every format: a tight box per format
+    would draw the figure twice per format (the PNG is pixel for pixel the one of a
+    tight box of its own; the vector formats' text extents agree to a fraction of a
+    point)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    dpi = fig.get_dpi()
+    fig.set_dpi(PNG_DPI)
+    try:
+        box = fig.get_tightbbox(FigureCanvasAgg(fig).get_renderer())
+    finally:
+        fig.set_dpi(dpi)
+    return box.padded(matplotlib.rcParams["savefig.pad_inches"])
+
+
 def _save(fig: Figure, out_dir: Path, name: str, formats) -> tuple[bytes, list[Path]]:
     paths, png = [], b""
     # Metadata without dates or versions so that a rebuild is byte-identical.
     metadata = {"png": {"Software": None}, "svg": {"Date": None},
                 "pdf": {"CreationDate": None, "ModDate": None, "Producer": None}}
+    box = _tight_box(fig)
     for fmt in formats:
         buf = io.BytesIO()
-        fig.savefig(buf, format=fmt, dpi=150 if fmt == "png" else None,
-                    bbox_inches="tight", metadata=metadata[fmt])
+        fig.savefig(buf, format=fmt, dpi=PNG_DPI if fmt == "png" else None,
+                    bbox_inches=box, metadata=metadata[fmt])
         data = buf.getvalue()
         if fmt == "svg":
             data = add_svg_tooltips(data.decode("utf-8"),
