@@ -67,6 +67,21 @@ def test_latin1_csv_is_read_by_the_c_engine(tmp_path):
     assert list(frame["id"]) == ["K\xf6ln", "K\xf6ln"]
 
 
+def _duplicates_against_pandas(units, periods, ids):
+    """The frame of ``units`` and ``periods`` with the ids of kind ``ids`` (dense
+    whole numbers, sparse whole numbers or text) and its duplicate cells, checked
+    against ``DataFrame.duplicated(keep=False)``."""
+    if ids == "sparse":
+        units = units * 10**9
+    frame = pd.DataFrame({"u": units, "t": periods})
+    if ids == "text":
+        frame["u"] = "firm" + frame["u"].astype(str)
+    want = frame.duplicated(["u", "t"], keep=False).to_numpy()
+    got = _duplicate_cells(frame["u"], frame["t"].to_numpy()).to_numpy()
+    np.testing.assert_array_equal(got, want)
+    return frame, got
+
+
 @pytest.mark.parametrize("repeats", [True, False])
 @pytest.mark.parametrize("ids", ["dense", "sparse", "text"])
 def test_duplicates_and_unit_codes_equal_pandas(ids, repeats):
@@ -77,14 +92,7 @@ def test_duplicates_and_unit_codes_equal_pandas(ids, repeats):
     else:  # every cell once, in shuffled order (the path without counts)
         cells = rng.permutation(400 * 20)[:n]
         units, periods = 1 + cells // 20, 1990 + cells % 20
-    if ids == "sparse":
-        units = units * 10**9
-    frame = pd.DataFrame({"u": units, "t": periods})
-    if ids == "text":
-        frame["u"] = "firm" + frame["u"].astype(str)
-    want = frame.duplicated(["u", "t"], keep=False).to_numpy()
-    got = _duplicate_cells(frame["u"], frame["t"].to_numpy()).to_numpy()
-    np.testing.assert_array_equal(got, want)
+    frame, got = _duplicates_against_pandas(units, periods, ids)
     codes, uniques = unit_codes(frame["u"])
     ref_codes, ref_uniques = pd.factorize(frame["u"], sort=True)
     np.testing.assert_array_equal(codes, ref_codes)
@@ -149,14 +157,7 @@ def test_duplicates_of_sorted_rows_equal_pandas(ids, repeats):
     periods = np.tile(np.arange(2000, 2006), 300)
     if repeats:  # the same unit-period twice, next to each other: still sorted
         units, periods = np.insert(units, 50, units[50]), np.insert(periods, 50, periods[50])
-    if ids == "sparse":
-        units = units * 10**9
-    frame = pd.DataFrame({"u": units, "t": periods})
-    if ids == "text":
-        frame["u"] = "firm" + frame["u"].astype(str)
-    want = frame.duplicated(["u", "t"], keep=False).to_numpy()
-    got = _duplicate_cells(frame["u"], frame["t"].to_numpy()).to_numpy()
-    np.testing.assert_array_equal(got, want)
+    frame, got = _duplicates_against_pandas(units, periods, ids)
     assert got.any() == repeats
 
 
