@@ -16,6 +16,7 @@ when every column is system GMM) is left out, and so is its line in the note.
 """
 from __future__ import annotations
 
+import math
 import re
 
 import pandas as pd
@@ -141,6 +142,18 @@ STARS = ((0.01, "***"), (0.05, "**"), (0.10, "*"))
 FLOAT_LINES = 40
 
 
+#: Characters of the note's LaTeX source per line of the table: at an article's
+#: default width a footnotesize line of the note takes about 98 source characters
+#: (measured: the demo's note, 1,867 characters, set in 19 lines) and is about 0.86
+#: of a small-type table row.
+NOTE_CHARACTERS_PER_LINE = 110
+
+
+def note_lines(note: str) -> int:
+    """The table lines the note takes (:func:`float_breaks`)."""
+    return 1 + math.ceil(len(note) / NOTE_CHARACTERS_PER_LINE)
+
+
 def float_breaks(n_panels: int, n_terms: int, n_diag: int, note_lines: int = 9) -> set[int]:
     """The panels that start a new ``table`` float, so that no float is taller than
     :data:`FLOAT_LINES` (a float taller than the page is never placed well). A panel
@@ -212,9 +225,23 @@ def diagnostic_rows(has_diff: bool, p: str, columns=()) -> list[tuple[str, str, 
         rows.append((f"Diff.-in-Hansen {p}", "diff_hansen_level_p", fmt_p))
     for col, label, _ in STRENGTH_ROWS:
         if col in columns:
-            rows.append((label.format(p=p), col, fmt_p if col.endswith("_p")
+            rows.append((label.format(p=p), col, fmt_p if col.startswith("underid_p")
                          else (lambda x: fmt(x, 2))))
     return rows
+
+
+def shown_diagnostic_rows(rows, vrow: pd.DataFrame, shown) -> list:
+    """The :func:`diagnostic_rows` worth a line for the columns ``shown`` (variant ids
+    of ``vrow``): a row n/a in every column says nothing (Sargan in system GMM), and
+    the per-equation rank tests only add to the whole system's where some column has
+    a level equation (in difference GMM the transformed equation's test is the
+    system's)."""
+    def says(col, f):
+        return any(f(vrow.loc[vid, col]) != "n/a" for vid in shown)
+    level = [r for r in rows if r[1] == "underid_p_level"]
+    with_level = bool(level) and says(level[0][1], level[0][2])
+    return [r for r in rows if says(r[1], r[2])
+            and (with_level or r[1] != "underid_p_transformed")]
 
 
 def fails(row) -> bool:
@@ -303,11 +330,45 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
 
     has_diff = "diff_hansen_level_p" in vrow.columns
     diag_rows = diagnostic_rows(has_diff, "$p$", vrow.columns)
-    # a test row that is n/a in every shown column says nothing (Sargan in system GMM)
     shown_ids = [vid for panel in panels for vid, _, _ in panel]
-    diag_rows = [r for r in diag_rows
-                 if any(r[2](vrow.loc[vid, r[1]]) != "n/a" for vid in shown_ids)]
-    breaks = float_breaks(len(panels), len(audit.focus), len(diag_rows))
+    diag_rows = shown_diagnostic_rows(diag_rows, vrow, shown_ids)
+    judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
+              f"their specification tests" if s.has_acceptable
+              else f"across all {s.n_ok} estimated variants")
+    # in the full-width note a term needs no break points
+    verdicts = "; ".join(f"{tex(names[t.term]) if t.term in names else chr(92) + 'texttt{' + tex(t.term) + '}'} "
+                         f"{tex(t.verdict)}" for t in s.terms)
+    failed = [row["variant"] for _, row in audit.variants.iterrows()
+              if row["status"] != "ok"]
+    se_text = se_note(audit, shown_ids, tex)
+    note = (f"{se_text} Column (1) is the base model (variant "
+            f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
+            + "; ".join([TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows}]
+                        + [tex(n) for c, _, n in STRENGTH_ROWS if n and c in {r[1] for r in diag_rows}])
+            + ". ")
+    if use_stars:
+        # math-mode signs: the text-mode < and dagger come from the text-companion
+        # font, which pdflatex renders as a bitmap (Type 3) font
+        note += ("$^{*}$ $p < 0.10$, $^{**}$ $p < 0.05$, $^{***}$ $p < 0.01$. ")
+    if any(vid in vrow.index and fails(vrow.loc[vid]) for vid in shown_ids):
+        note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
+                 "(Hansen, AR(2), difference-in-Hansen or the underidentification test at "
+                 "the audit's level) and does "
+                 "not count toward the verdicts. ")
+    note += (f"Verdicts ({judged}): {verdicts}. "
+             f"Statistical robustness does not establish instrument validity, which rests "
+             f"on economic reasoning.")
+    n_failed = sum(1 for _, row in audit.variants.iterrows() if row["status"] == "failed")
+    n_skipped = len(failed) - n_failed
+    if n_failed:
+        note += (f" {n_failed} variant{'s' if n_failed != 1 else ''} could not be estimated "
+                 f"(reasons in variants.csv).")
+    if n_skipped:
+        note += (f" {n_skipped} combination{'s' if n_skipped != 1 else ''} of settings "
+                 f"{'was' if n_skipped == 1 else 'were'} skipped (not identified or the same "
+                 f"estimation as another; reasons in variants.csv).")
+    breaks = float_breaks(len(panels), len(audit.focus), len(diag_rows),
+                          note_lines(note))
     lines = [
         "% robustgmm: focus terms across the base model and one-setting departures.",
         "% Requires \\usepackage{booktabs} and \\usepackage{tabularx} in the preamble.",
@@ -364,42 +425,6 @@ def render_latex(audit: AuditFolder, summary: AuditSummary | None = None, *,
             lines.append(f"{label} & " + " & ".join(cells + pad) + " \\\\")
         lines.append("\\bottomrule")
         lines.append("\\end{tabularx}")
-    judged = (f"judged on the {s.n_acceptable} of {s.n_ok} estimated variants that pass "
-              f"their specification tests" if s.has_acceptable
-              else f"across all {s.n_ok} estimated variants")
-    # in the full-width note a term needs no break points
-    verdicts = "; ".join(f"{tex(names[t.term]) if t.term in names else chr(92) + 'texttt{' + tex(t.term) + '}'} "
-                         f"{tex(t.verdict)}" for t in s.terms)
-    failed = [row["variant"] for _, row in audit.variants.iterrows()
-              if row["status"] != "ok"]
-    shown = [vid for panel in panels for vid, _, _ in panel]
-    se_text = se_note(audit, shown, tex)
-    note = (f"{se_text} Column (1) is the base model (variant "
-            f"\\texttt{{{tex(audit.base_variant)}}}); each other column changes {change_text}. "
-            + "; ".join([TEST_NOTES[c] for c in TEST_NOTES if c in {r[1] for r in diag_rows}]
-                        + [tex(n) for c, _, n in STRENGTH_ROWS if c in {r[1] for r in diag_rows}])
-            + ". ")
-    if use_stars:
-        # math-mode signs: the text-mode < and dagger come from the text-companion
-        # font, which pdflatex renders as a bitmap (Type 3) font
-        note += ("$^{*}$ $p < 0.10$, $^{**}$ $p < 0.05$, $^{***}$ $p < 0.01$. ")
-    if failing:
-        note += ("$^{\\dagger}$ The variant fails one of its own specification tests "
-                 "(Hansen, AR(2), difference-in-Hansen or the underidentification test at "
-                 "the audit's level) and does "
-                 "not count toward the verdicts. ")
-    note += (f"Verdicts ({judged}): {verdicts}. "
-             f"Statistical robustness does not establish instrument validity, which rests "
-             f"on economic reasoning.")
-    n_failed = sum(1 for _, row in audit.variants.iterrows() if row["status"] == "failed")
-    n_skipped = len(failed) - n_failed
-    if n_failed:
-        note += (f" {n_failed} variant{'s' if n_failed != 1 else ''} could not be estimated "
-                 f"(reasons in variants.csv).")
-    if n_skipped:
-        note += (f" {n_skipped} combination{'s' if n_skipped != 1 else ''} of settings "
-                 f"{'was' if n_skipped == 1 else 'were'} skipped (not identified or the same "
-                 f"estimation as another; reasons in variants.csv).")
     lines += ["", "\\par\\smallskip",
               "\\begin{minipage}{\\textwidth}\\footnotesize", note, "\\end{minipage}",
               "\\end{table}", ""]

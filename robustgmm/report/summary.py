@@ -324,11 +324,22 @@ def rule_figures_text(rule: Firing) -> str:
     return "; ".join(items)
 
 
+#: Records of a mapping shown in a rule's figures (e.g. the simulated figures of each
+#: unreliable variant): each is a line's worth of numbers, so fewer than the ids of a list.
+RECORDS_SHOWN = 3
+
+
+def _is_record(value) -> bool:
+    return isinstance(value, dict) or (isinstance(value, (list, tuple)) and bool(value)
+                                        and all(isinstance(v, dict) for v in value))
+
+
 def figure_value(value, limit: int = 8) -> str:
-    """One figure of a rule as text; long lists (e.g. variant ids) and long mappings
-    (e.g. the simulated figures of each unreliable variant) are cut at ``limit`` items
-    with the total stated (verdict.json keeps them all); a nested record is put in
-    parentheses so that its 'key = value' pairs do not run into the next one."""
+    """One figure of a rule as text; long lists (e.g. variant ids) are cut at ``limit``
+    items and mappings of records (e.g. the simulated figures of each unreliable
+    variant) at :data:`RECORDS_SHOWN`, with the total stated (verdict.json keeps them
+    all); a nested record is put in parentheses so that its 'key = value' pairs do not
+    run into the next one."""
     if value is None:
         return "n/a"
     if isinstance(value, bool):
@@ -342,8 +353,9 @@ def figure_value(value, limit: int = 8) -> str:
         more = f", … ({len(value)} in all)" if len(value) > limit else ""
         return ", ".join(items) + more
     if isinstance(value, dict):
-        items = [f"{k} = {_nested(v, limit)}" for k, v in list(value.items())[:limit]]
-        more = f"; … ({len(value)} in all)" if len(value) > limit else ""
+        shown = RECORDS_SHOWN if any(_is_record(v) for v in value.values()) else limit
+        items = [f"{k} = {_nested(v, limit)}" for k, v in list(value.items())[:shown]]
+        more = f"; … ({len(value)} in all)" if len(value) > shown else ""
         return "; ".join(items) + more
     return str(value)
 
@@ -426,6 +438,10 @@ STRENGTH_ROWS = (
      "underid. p (KP): the Kleibergen & Paap (2006) rank test (LM form, unit-clustered) "
      "of underidentification of all instruments, n/a where its chi-squared "
      "approximation is not valid (too many instruments for the units)"),
+    ("underid_p_transformed", "Underid. {p}, transformed eq.",
+     "underid. p, transformed eq. and level eq.: the same test on one equation's "
+     "instruments (system GMM)"),
+    ("underid_p_level", "Underid. {p}, level eq.", ""),
     ("weak_f_min", "Min. cond. F (SW)",
      "min. cond. F (SW): the smallest Sanderson & Windmeijer (2016) conditional "
      "first-stage F of the lagged outcome and the endogenous or predetermined terms, "

@@ -16,7 +16,7 @@ from html import escape
 from .inputs import AuditFolder
 from .labels import report_option, term_labels
 from .latex import (departure_label, diagnostic_rows, estimate_cells, fails, se_note,
-                    table_panels)
+                    shown_diagnostic_rows, table_panels)
 from .summary import STRENGTH_ROWS, AuditSummary, summarize
 
 FONT = "font-family:'Times New Roman',serif;font-size:10pt"
@@ -44,8 +44,9 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
     diag = diagnostic_rows(has_diff, "p", vrow.columns)
     shown = [vid for panel in panels for vid, _, _ in panel]
     # as in table.tex: a strength row that is n/a in every column says nothing
-    diag = [r for r in diag if r[1] not in {c for c, _, _ in STRENGTH_ROWS}
-            or any(r[2](vrow.loc[vid, r[1]]) != "n/a" for vid in shown)]
+    strength = {c for c, _, _ in STRENGTH_ROWS}
+    kept = shown_diagnostic_rows([r for r in diag if r[1] in strength], vrow, shown)
+    diag = [r for r in diag if r[1] not in strength or r in kept]
 
     def cells(vid, term):
         return estimate_cells(est, vid, term, use_stars, escape, lambda m: f"<sup>{m}</sup>")
@@ -103,7 +104,7 @@ def render_word_table(audit: AuditFolder, summary: AuditSummary | None = None, *
             "must not reject" + ("; difference-in-Hansen p: validity of the level-equation "
                                  "instruments of system GMM (Blundell & Bond 1998)"
                                  if has_diff else "")
-            + "".join("; " + n for c, _, n in STRENGTH_ROWS if c in {r[1] for r in diag})
+            + "".join("; " + n for c, _, n in STRENGTH_ROWS if n and c in {r[1] for r in diag})
             + "."]
     if use_stars:
         note.append("* p < 0.10, ** p < 0.05, *** p < 0.01.")

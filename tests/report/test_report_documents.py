@@ -569,9 +569,12 @@ def test_long_rule_figures_are_cut_and_nested_records_bracketed():
     from robustgmm.report.summary import figure_value
     per_variant = {f"v{i}": [{"term": "x[t]", "coverage": 0.5}] for i in range(20)}
     text = figure_value({"variants": 20, "terms": per_variant})
-    # 8 variants shown, the total stated, each record in parentheses
-    assert text.count("(term = x[t]; coverage = 0.500)") == 8
-    assert text.endswith("v7 = (term = x[t]; coverage = 0.500); … (20 in all))")
+    # 3 variants' records shown (robustgmm.report.summary.RECORDS_SHOWN), the total
+    # stated, each record in parentheses
+    assert text.count("(term = x[t]; coverage = 0.500)") == 3
+    assert text.endswith("v2 = (term = x[t]; coverage = 0.500); … (20 in all))")
+    # a mapping of plain numbers is a list's worth, cut at 8
+    assert figure_value({f"k{i}": i for i in range(9)}).endswith("k7 = 7; … (9 in all)")
     assert figure_value(["a"] * 9) == "a, a, a, a, a, a, a, a, … (9 in all)"
 
 

@@ -86,11 +86,37 @@ def test_journal_tables_have_strength_rows_with_their_notes(writable_folder):
     assert lines["Underid. $p$ (KP)"].split(" & ")[1] == fmt_p(row["underid_p"]).replace(
         "<", "$<$")
     assert lines["Min. cond. F (SW)"].split(" & ")[1] == fmt(row["weak_f_min"], 2)
+    # the base model is system GMM: each equation's rank test has its row
+    for label, col in (("Underid. $p$, transformed eq.", "underid_p_transformed"),
+                       ("Underid. $p$, level eq.", "underid_p_level")):
+        assert lines[label].split(" & ")[1] == fmt_p(row[col]).replace("<", "$<$"), label
+    assert "one equation's instruments" in tex
     assert "Kleibergen \\& Paap (2006)" in tex and "Sanderson \\& Windmeijer (2016)" in tex
     assert "no single critical value" in tex
     word = unescape((folder / "table.html").read_text(encoding="utf-8"))
     assert "Underid. p (KP)" in word and "Min. cond. F (SW)" in word
+    assert "Underid. p, level eq." in word and "Underid. p, transformed eq." in word
     assert "Sanderson & Windmeijer (2016)" in word and "no single critical value" in word
+
+
+def test_per_equation_rank_tests_only_where_a_column_has_a_level_equation(audit_folder):
+    """In difference GMM the transformed equation's rank test is the whole system's
+    (robustgmm.audit: underid_p_transformed), so a table of difference-GMM columns
+    has no per-equation rows; with a system column both appear."""
+    from robustgmm.report.latex import diagnostic_rows, shown_diagnostic_rows
+    audit = read_audit_folder(audit_folder("main"))
+    vrow = audit.variants.set_index("variant")
+    ok = vrow[vrow["status"] == "ok"]
+    difference = list(ok.index[ok["equations"] == "difference"])
+    system = list(ok.index[ok["equations"] == "system"])
+    assert difference and system
+    rows = diagnostic_rows(True, "p", vrow.columns)
+
+    def columns(shown):
+        return [r[1] for r in shown_diagnostic_rows(rows, vrow, shown)]
+    assert "underid_p" in columns(difference)
+    assert not {"underid_p_transformed", "underid_p_level"} & set(columns(difference))
+    assert {"underid_p_transformed", "underid_p_level"} <= set(columns(difference + system))
 
 
 def test_no_strength_table_when_no_variant_has_the_statistics(audit_folder):
