@@ -94,7 +94,9 @@ def test_workers_are_capped_by_free_memory(monkeypatch):
 def test_jobs_64_for_one_task_runs_in_process_and_says_so(tmp_path, capsys, monkeypatch):
     from robustgmm import cli
     monkeypatch.setattr(cli, "_report_builder", lambda: None)
-    model = write_model(tmp_path / "project", {"steps": [1, 2]})
+    # one share group and no dropping-units analysis (whose tasks would run in the
+    # same pool): one task
+    model = write_model(tmp_path / "project", {"steps": [1, 2]}, audit={"influence": "none"})
     code = cli.main(["audit", str(model), "--out", str(tmp_path / "out"), "--jobs", "64",
                      "--no-cache"])
     err = capsys.readouterr().err
