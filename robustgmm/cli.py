@@ -449,6 +449,9 @@ def cmd_bench(args) -> int:
 
 COMMANDS = {"fit": cmd_fit, "audit": cmd_audit, "simulate": cmd_simulate, "report": cmd_report,
             "demo": cmd_demo, "bench": cmd_bench}
+#: the commands that estimate: their process keeps freed memory for the next
+#: estimation (robustgmm.allocator); ``report`` estimates nothing
+ESTIMATING = frozenset({"fit", "audit", "simulate", "demo", "bench"})
 
 
 # ---------------------------------------------------------------------------
@@ -524,6 +527,9 @@ def _main(argv: list[str]) -> int:
         except SystemExit as exc:  # --help / --version
             return int(exc.code or 0) if not isinstance(exc.code, str) else EXIT_INPUT
         check_environment()
+        if args.command in ESTIMATING:
+            from .allocator import keep_freed_memory
+            keep_freed_memory()
         return COMMANDS[args.command](args)
     except _UsageError as exc:
         _error(str(exc))

@@ -9,7 +9,8 @@ workers.
   more than the available memory holds at the estimated footprint of one worker.
 * **Worker memory**: a loky worker that grows by more than 300 MB after its first
   task is taken for a leak and replaced by a new process (imports again); the
-  runner's workers allow the memory a worker may use (:func:`worker_footprint_mb`).
+  runner's workers allow the memory a worker may use (:func:`worker_footprint_mb`)
+  and keep freed memory for their next estimation (:mod:`robustgmm.allocator`).
 * **Parent death**: each worker watches the process that started it and exits when
   it is gone (killed with SIGKILL, out of memory), instead of computing on.
 * **Temporary files**: arrays joblib memory-maps for the workers go into a folder
@@ -271,6 +272,8 @@ def in_worker(parent: "int | Parent") -> None:
     if pid in _WATCHED:
         return
     _WATCHED.add(pid)
+    from ..allocator import keep_freed_memory
+    keep_freed_memory()  # a worker runs estimation after estimation
     _allow_worker_memory()
     threading.Thread(target=_watch_parent, args=(parent_pid,), daemon=True,
                      name="robustgmm-parent-watchdog").start()

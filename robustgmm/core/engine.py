@@ -128,7 +128,7 @@ class PassContext:
         return self._diffs
 
     def gt(self, prob, beta):
-        key = (id(prob), beta.tobytes())
+        key = (prob.serial, beta.tobytes())
         out = self._gt.get(key)
         if out is None and self._kept is not None:
             out = self._kept.get(key)
@@ -136,7 +136,7 @@ class PassContext:
             out = unit_moments_t(self.pc, self.layout, self.resid(prob.beta_all(beta)),
                                  prob.scatter, self.scratch(), plan=prob.moment_plan)
             if self._kept is not None:
-                self._kept.offer(key, prob, out)
+                self._kept.offer(key, out)
         self._gt[key] = out
         return out
 
@@ -162,13 +162,12 @@ class KeptChunk:
         self.owner, self.store = owner, store
 
     def get(self, key):
-        hit = self.store.get(key)
-        return None if hit is None else hit[1]
+        return self.store.get(key)
 
-    def offer(self, key, prob, gt: np.ndarray) -> None:
+    def offer(self, key, gt: np.ndarray) -> None:
         if self.owner.nbytes + gt.nbytes <= self.owner.limit:
             gt.flags.writeable = False  # shared between passes: never changed in place
-            self.store[key] = (prob, gt)
+            self.store[key] = gt
             self.owner.nbytes += gt.nbytes
 
 

@@ -30,6 +30,8 @@ the data never change which columns are kept.
 """
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 
 from ..data import Panel
@@ -39,6 +41,8 @@ from .design import Design
 from .engine import MomentEngine
 from .linalg import identified_columns, independent_columns, inverse_or_pinv, sym_pinv
 from .moments import ARSums, moment_plan, windmeijer_term
+
+_SERIALS = itertools.count()  # one number per problem, never reused (unlike id())
 
 
 class NotSubset(Exception):
@@ -122,6 +126,7 @@ class GMMProblem:
                  engine: MomentEngine | None = None, memory_mb: float | None = None,
                  design: Design | None = None):
         self.spec = spec
+        self.serial = next(_SERIALS)  # this problem's key in its engine's kept arrays
         self.design = design if design is not None else Design(spec, panel)
         if engine is None:
             engine = MomentEngine(self.design, chunk_units, memory_mb)
