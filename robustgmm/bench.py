@@ -738,7 +738,6 @@ def _command_child(args: list[str], threads: int) -> dict:
     estimation, the summary; standard output discarded), wall and CPU time. The
     interpreter's start-up and the imports, the same at any N, vary by ±0.2 s from
     process to process on a shared machine, more than the difference measured."""
-    import contextlib as _cl
     import io
     with _blas_limit(threads):
         from . import cli, core, data, modelfile  # noqa: F401
@@ -748,7 +747,7 @@ def _command_child(args: list[str], threads: int) -> dict:
             pass
         sink = io.StringIO()
         c0, t0 = time.process_time(), time.perf_counter()
-        with _cl.redirect_stdout(sink):
+        with contextlib.redirect_stdout(sink):
             code = cli.main(list(args))
         wall, cpu = time.perf_counter() - t0, time.process_time() - c0
     if code != 0:
@@ -827,9 +826,9 @@ def data_layer(sizes: Sizes, echo=print) -> Outcome:
     """Reading, validating and laying out the panel (:func:`robustgmm.data.load_panel`)
     against the fit it feeds, each once in a fresh process as a command runs them
     (:func:`_read_child`), for CSV and parquet (target ≤ 0.3); and the command line's
-    marginal cost: the extra time of ``robustgmm fit`` (a fresh process: reading the
-    CSV file included) from N₁ to N₂
-    units against the extra time of the dense ``Z'Z`` of the added rows (target ≤ 2)."""
+    marginal cost: the extra time of ``robustgmm fit`` (a fresh process, timed from the
+    command's start, reading the CSV file included: :func:`_command_child`) from N₁ to
+    N₂ units against the extra time of the dense ``Z'Z`` of the added rows (target ≤ 2)."""
     from .core.dense import dense_rows
     from .simulate import simulate_panel
     out = Outcome("7. Data layer: reading, validating and laying out against the fit")

@@ -146,7 +146,9 @@ class KeptMoments:
 
     The two-step fit's final pass needs the one-step ``G'`` (the Windmeijer term,
     at ``b₁``) that the weight's pass computed; kept, it is not computed twice. Keyed
-    by (problem, coefficient vector); the problem is held so its id stays its own."""
+    by (the problem's serial number, coefficient vector): holding the problem itself
+    would close a reference cycle (problem → engine → kept arrays → problem) that only
+    the cyclic garbage collector breaks, so a finished fit's arrays would outlive it."""
 
     def __init__(self, limit: int):
         self.limit = limit
